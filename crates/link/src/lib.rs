@@ -1,0 +1,554 @@
+//! # baton-link: links between devices and the transfers that share them
+//!
+//! A [`Topology`] is a set of directed links, each with a latency and a
+//! bandwidth, and a route (a list of links) for every ordered pair of devices.
+//! A full-duplex cable is two directed links, one per direction, so traffic one
+//! way never slows traffic the other way.
+//!
+//! A [`Network`] carries transfers over a topology as a fluid: a transfer of
+//! `b` bytes pushes its bytes at the rate it is granted, and is delivered the
+//! route's total latency after its last byte leaves. Rates are max-min fair
+//! (water-filling) over all transfers in flight on every directed link they
+//! cross; on a single link that is an equal share. Whenever a transfer starts
+//! or ends, only the transfers connected to it through shared links are
+//! re-rated, and their completion deadlines moved in the engine's movable
+//! queue. The cost of one start or end therefore grows with the number of
+//! transfers it shares links with (and their links), not with the size of the
+//! topology.
+//!
+//! Bytes are tracked as `f64` and a completion deadline is the exact finishing
+//! time rounded up to the next whole nanosecond (with a tolerance of 1e-6 ns so
+//! that floating-point noise never adds a nanosecond). A transfer alone on its
+//! route therefore takes exactly `latency + ceil(bytes * 1e9 / bandwidth)` ns.
+//!
+//! This crate deliberately knows nothing about pipelines, stages or schedules:
+//! it moves bytes between numbered devices.
+
+use baton_engine::{Scheduler, SimDuration, SimTime};
+
+/// One directed link's properties.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct LinkSpec {
+    /// Time for the first byte to cross the link.
+    pub latency_ns: u64,
+    /// How many bytes per second the link carries (must be positive).
+    pub bytes_per_s: u64,
+}
+
+/// Index of a directed link in a topology.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub struct LinkId(pub u32);
+
+/// Handle of a transfer in flight; used as the key of its completion deadline.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub struct TransferId(pub u32);
+
+/// Directed links plus a route for every ordered pair of devices.
+#[derive(Clone, Debug)]
+pub struct Topology {
+    devices: u32,
+    links: Vec<LinkSpec>,
+    names: Vec<String>,
+    /// Routes of pair (a, b) are `route_links[route_start[a*n+b] .. route_start[a*n+b+1]]`.
+    route_start: Vec<u32>,
+    route_links: Vec<LinkId>,
+    route_latency_ns: Vec<u64>,
+}
+
+impl Topology {
+    /// Every ordered pair of distinct devices joined by its own directed link
+    /// (so each unordered pair has one full-duplex link). A device sending to
+    /// itself uses no link.
+    pub fn full_mesh(devices: u32, spec: LinkSpec) -> Self {
+        let n = devices as usize;
+        let mut links = Vec::with_capacity(n * n.saturating_sub(1));
+        let mut names = Vec::with_capacity(links.capacity());
+        let mut route_start = Vec::with_capacity(n * n + 1);
+        let mut route_links = Vec::with_capacity(links.capacity());
+        let mut route_latency_ns = Vec::with_capacity(n * n);
+        for a in 0..n {
+            for b in 0..n {
+                route_start.push(route_links.len() as u32);
+                if a == b {
+                    route_latency_ns.push(0);
+                    continue;
+                }
+                let id = LinkId(links.len() as u32);
+                links.push(spec);
+                names.push(format!("dev{a}->dev{b}"));
+                route_links.push(id);
+                route_latency_ns.push(spec.latency_ns);
+            }
+        }
+        route_start.push(route_links.len() as u32);
+        Topology { devices, links, names, route_start, route_links, route_latency_ns }
+    }
+
+    /// A topology from explicit links and routes; `routes[a][b]` lists the
+    /// links from device `a` to device `b` in order.
+    pub fn from_routes(links: Vec<(String, LinkSpec)>, routes: &[Vec<Vec<LinkId>>]) -> Self {
+        let n = routes.len();
+        let (names, links): (Vec<_>, Vec<_>) = links.into_iter().unzip();
+        let mut route_start = Vec::with_capacity(n * n + 1);
+        let mut route_links = Vec::new();
+        let mut route_latency_ns = Vec::with_capacity(n * n);
+        for row in routes {
+            for route in row {
+                route_start.push(route_links.len() as u32);
+                route_latency_ns.push(route.iter().map(|l| links[l.0 as usize].latency_ns).sum());
+                route_links.extend_from_slice(route);
+            }
+        }
+        route_start.push(route_links.len() as u32);
+        Topology { devices: n as u32, links, names, route_start, route_links, route_latency_ns }
+    }
+
+    pub fn devices(&self) -> u32 {
+        self.devices
+    }
+
+    pub fn link_count(&self) -> usize {
+        self.links.len()
+    }
+
+    pub fn link(&self, id: LinkId) -> LinkSpec {
+        self.links[id.0 as usize]
+    }
+
+    pub fn link_name(&self, id: LinkId) -> &str {
+        &self.names[id.0 as usize]
+    }
+
+    fn pair(&self, src: u32, dst: u32) -> usize {
+        src as usize * self.devices as usize + dst as usize
+    }
+
+    /// The links from `src` to `dst`, in order (empty when `src == dst`).
+    pub fn route(&self, src: u32, dst: u32) -> &[LinkId] {
+        let p = self.pair(src, dst);
+        &self.route_links[self.route_start[p] as usize..self.route_start[p + 1] as usize]
+    }
+
+    /// Sum of the latencies along the route from `src` to `dst`.
+    pub fn route_latency(&self, src: u32, dst: u32) -> SimDuration {
+        SimDuration(self.route_latency_ns[self.pair(src, dst)])
+    }
+}
+
+/// Per-link counters over a run.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct LinkStats {
+    /// Bytes that finished crossing the link.
+    pub bytes: u64,
+    /// Time during which at least one transfer was pushing bytes over it.
+    pub busy_ns: u64,
+    /// Largest number of transfers sharing it at once.
+    pub peak_concurrent: u32,
+    active: u32,
+    busy_since: u64,
+}
+
+#[derive(Clone, Debug)]
+struct Flow {
+    remaining: f64,
+    /// Bytes per nanosecond.
+    rate: f64,
+    last_ns: u64,
+    bytes: u64,
+    src: u32,
+    dst: u32,
+    live: bool,
+    mark: u32,
+}
+
+/// What [`Network::finish`] returns about a transfer whose last byte left.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Finished {
+    pub src: u32,
+    pub dst: u32,
+    pub bytes: u64,
+    /// When the bytes arrive at `dst`: last byte out plus the route's latency.
+    pub delivered_at: SimTime,
+}
+
+/// Transfers in flight over a topology, with max-min fair rates.
+#[derive(Clone, Debug)]
+pub struct Network {
+    topo: Topology,
+    /// Capacity in bytes per nanosecond.
+    cap: Vec<f64>,
+    on_link: Vec<Vec<u32>>,
+    link_mark: Vec<u32>,
+    flows: Vec<Flow>,
+    free: Vec<u32>,
+    stats: Vec<LinkStats>,
+    epoch: u32,
+    in_flight: usize,
+    // Scratch space reused between calls.
+    comp_flows: Vec<u32>,
+    comp_links: Vec<u32>,
+    residual: Vec<f64>,
+    unfixed: Vec<u32>,
+    new_rates: Vec<(u32, f64)>,
+}
+
+/// Rounds a non-negative duration in ns up to a whole ns, ignoring float noise.
+fn ceil_ns(x: f64) -> u64 {
+    if !x.is_finite() || x <= 0.0 {
+        return if x.is_finite() { 0 } else { u64::MAX / 4 };
+    }
+    let c = (x - 1e-6).ceil();
+    if c <= 0.0 {
+        0
+    } else {
+        c as u64
+    }
+}
+
+impl Network {
+    pub fn new(topo: Topology) -> Self {
+        let n = topo.link_count();
+        let cap = topo.links.iter().map(|l| l.bytes_per_s as f64 / 1e9).collect();
+        Network {
+            topo,
+            cap,
+            on_link: vec![Vec::new(); n],
+            link_mark: vec![0; n],
+            flows: Vec::new(),
+            free: Vec::new(),
+            stats: vec![LinkStats::default(); n],
+            epoch: 0,
+            in_flight: 0,
+            comp_flows: Vec::new(),
+            comp_links: Vec::new(),
+            residual: vec![0.0; n],
+            unfixed: vec![0; n],
+            new_rates: Vec::new(),
+        }
+    }
+
+    pub fn topology(&self) -> &Topology {
+        &self.topo
+    }
+
+    /// Transfers whose bytes are still being pushed.
+    pub fn in_flight(&self) -> usize {
+        self.in_flight
+    }
+
+    /// Counters per link, indexed like the topology's links.
+    pub fn stats(&self) -> &[LinkStats] {
+        &self.stats
+    }
+
+    /// The rate (bytes per second) a transfer in flight is granted now.
+    pub fn rate_bytes_per_s(&self, id: TransferId) -> Option<f64> {
+        self.flows.get(id.0 as usize).filter(|f| f.live).map(|f| f.rate * 1e9)
+    }
+
+    /// Starts sending `bytes` from `src` to `dst` now. Sets the new transfer's
+    /// completion deadline (and moves those of the transfers it now shares
+    /// links with) in `sched`. When the deadline fires, call [`Network::finish`].
+    pub fn start<E>(&mut self, sched: &mut Scheduler<E, TransferId>, src: u32, dst: u32, bytes: u64) -> TransferId {
+        let now = sched.now().as_ns();
+        let flow = Flow { remaining: bytes as f64, rate: 0.0, last_ns: now, bytes, src, dst, live: true, mark: 0 };
+        let id = match self.free.pop() {
+            Some(i) => {
+                self.flows[i as usize] = flow;
+                i
+            }
+            None => {
+                self.flows.push(flow);
+                (self.flows.len() - 1) as u32
+            }
+        };
+        self.in_flight += 1;
+        let tid = TransferId(id);
+        let route_len = self.topo.route(src, dst).len();
+        if bytes == 0 || route_len == 0 {
+            // Nothing to share: the last byte leaves at once.
+            self.flows[id as usize].rate = f64::INFINITY;
+            sched.set_deadline(tid, SimTime(now));
+            return tid;
+        }
+        for i in 0..route_len {
+            let l = self.topo.route(src, dst)[i].0 as usize;
+            self.on_link[l].push(id);
+            let st = &mut self.stats[l];
+            if st.active == 0 {
+                st.busy_since = now;
+            }
+            st.active += 1;
+            st.peak_concurrent = st.peak_concurrent.max(st.active);
+        }
+        self.rerate(sched, id, true);
+        tid
+    }
+
+    /// Ends a transfer whose deadline fired: frees its share of bandwidth
+    /// (moving the deadlines of the transfers that gain from it) and says when
+    /// its bytes arrive.
+    pub fn finish<E>(&mut self, sched: &mut Scheduler<E, TransferId>, id: TransferId) -> Finished {
+        let now = sched.now().as_ns();
+        let i = id.0 as usize;
+        let (src, dst, bytes) = {
+            let f = &self.flows[i];
+            (f.src, f.dst, f.bytes)
+        };
+        let on_links = self.flows[i].rate.is_finite();
+        if on_links {
+            // Re-rate the neighbours first, while this flow still links them.
+            self.rerate(sched, id.0, false);
+            let route_len = self.topo.route(src, dst).len();
+            for r in 0..route_len {
+                let l = self.topo.route(src, dst)[r].0 as usize;
+                if let Some(pos) = self.on_link[l].iter().position(|&x| x == id.0) {
+                    self.on_link[l].swap_remove(pos);
+                }
+                let st = &mut self.stats[l];
+                st.bytes += bytes;
+                st.active -= 1;
+                if st.active == 0 {
+                    st.busy_ns += now - st.busy_since;
+                }
+            }
+        }
+        self.flows[i].live = false;
+        self.free.push(id.0);
+        self.in_flight -= 1;
+        Finished { src, dst, bytes, delivered_at: SimTime(now) + self.topo.route_latency(src, dst) }
+    }
+
+    /// Recomputes the max-min fair rates of the component of flows connected
+    /// to `root` through shared links. With `include_root == false` the root is
+    /// leaving: it is walked through (it connects the component) but gets no
+    /// bandwidth.
+    fn rerate<E>(&mut self, sched: &mut Scheduler<E, TransferId>, root: u32, include_root: bool) {
+        let now = sched.now().as_ns();
+        self.epoch = self.epoch.wrapping_add(1);
+        if self.epoch == 0 {
+            // Marks wrapped around: clear them so stale marks cannot match.
+            self.flows.iter_mut().for_each(|f| f.mark = 0);
+            self.link_mark.iter_mut().for_each(|m| *m = 0);
+            self.epoch = 1;
+        }
+        let epoch = self.epoch;
+        let mut comp_flows = std::mem::take(&mut self.comp_flows);
+        let mut comp_links = std::mem::take(&mut self.comp_links);
+        comp_flows.clear();
+        comp_links.clear();
+
+        // Breadth-first walk over flows and the links they cross.
+        self.flows[root as usize].mark = epoch;
+        comp_flows.push(root);
+        let mut head = 0;
+        while head < comp_flows.len() {
+            let f = comp_flows[head] as usize;
+            head += 1;
+            let (src, dst) = (self.flows[f].src, self.flows[f].dst);
+            for &LinkId(l) in self.topo.route(src, dst) {
+                let l = l as usize;
+                if self.link_mark[l] == epoch {
+                    continue;
+                }
+                self.link_mark[l] = epoch;
+                comp_links.push(l as u32);
+                for &g in &self.on_link[l] {
+                    if self.flows[g as usize].mark != epoch {
+                        self.flows[g as usize].mark = epoch;
+                        comp_flows.push(g);
+                    }
+                }
+            }
+        }
+
+        // Bring every member's progress up to now at its old rate.
+        for &f in &comp_flows {
+            let fl = &mut self.flows[f as usize];
+            if fl.rate.is_finite() && fl.rate > 0.0 {
+                fl.remaining = (fl.remaining - fl.rate * (now - fl.last_ns) as f64).max(0.0);
+            }
+            fl.last_ns = now;
+        }
+
+        // Water-filling: repeatedly saturate the link with the smallest fair share.
+        for &l in &comp_links {
+            let l = l as usize;
+            self.residual[l] = self.cap[l];
+            let members = self.on_link[l].len() as u32;
+            self.unfixed[l] = if include_root { members } else { members - self.on_link[l].contains(&root) as u32 };
+        }
+        // Flows still to fix are marked `epoch`; fixed ones get `epoch ^ FIXED`.
+        const FIXED: u32 = 1 << 31;
+        let mut new_rates = std::mem::take(&mut self.new_rates);
+        new_rates.clear();
+        if !include_root {
+            self.flows[root as usize].mark = epoch ^ FIXED;
+        }
+        let mut left = comp_flows.len() - (!include_root) as usize;
+        while left > 0 {
+            let mut best: Option<(f64, u32)> = None;
+            for &l in &comp_links {
+                let n = self.unfixed[l as usize];
+                if n == 0 {
+                    continue;
+                }
+                let share = self.residual[l as usize].max(0.0) / n as f64;
+                if best.is_none_or(|(s, _)| share < s) {
+                    best = Some((share, l));
+                }
+            }
+            let Some((share, l)) = best else { break };
+            for idx in 0..self.on_link[l as usize].len() {
+                let g = self.on_link[l as usize][idx];
+                let fl = &self.flows[g as usize];
+                if fl.mark != epoch {
+                    continue;
+                }
+                let (src, dst) = (fl.src, fl.dst);
+                self.flows[g as usize].mark = epoch ^ FIXED;
+                left -= 1;
+                new_rates.push((g, share));
+                for &LinkId(k) in self.topo.route(src, dst) {
+                    self.residual[k as usize] -= share;
+                    self.unfixed[k as usize] -= 1;
+                }
+            }
+        }
+
+        for &(g, rate) in &new_rates {
+            let fl = &mut self.flows[g as usize];
+            if fl.rate == rate && g != root {
+                continue; // Same rate: the deadline already set still holds.
+            }
+            fl.rate = rate;
+            let at = now.saturating_add(ceil_ns(fl.remaining / rate));
+            sched.set_deadline(TransferId(g), SimTime(at));
+        }
+        self.comp_flows = comp_flows;
+        self.comp_links = comp_links;
+        self.new_rates = new_rates;
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use baton_engine::Fired;
+
+    /// Runs transfers `(start_ns, src, dst, bytes)` to completion; returns each
+    /// one's delivery time in ns, in input order.
+    pub(crate) fn deliveries(topo: Topology, transfers: &[(u64, u32, u32, u64)]) -> Vec<u64> {
+        let mut net = Network::new(topo);
+        let mut sched: Scheduler<usize, TransferId> = Scheduler::new();
+        for (i, t) in transfers.iter().enumerate() {
+            sched.schedule(SimTime(t.0), i);
+        }
+        let mut ids = std::collections::HashMap::new();
+        let mut out = vec![0; transfers.len()];
+        while let Some((now, fired)) = sched.pop() {
+            match fired {
+                Fired::Event(i) => {
+                    let (_, s, d, b) = transfers[i];
+                    let id = net.start(&mut sched, s, d, b);
+                    ids.insert(id, i);
+                }
+                Fired::Deadline(id) => {
+                    let fin = net.finish(&mut sched, id);
+                    assert!(fin.delivered_at >= now);
+                    out[ids.remove(&id).unwrap()] = fin.delivered_at.0;
+                }
+            }
+        }
+        assert_eq!(net.in_flight(), 0);
+        out
+    }
+
+    const GBPS64: LinkSpec = LinkSpec { latency_ns: 5_000, bytes_per_s: 64_000_000_000 };
+
+    #[test]
+    fn single_transfer_is_latency_plus_bytes_over_bandwidth() {
+        // 8 MiB at 64 GB/s = 8388608 / 64 B/ns = 131072 ns, plus 5 us latency.
+        let t = deliveries(Topology::full_mesh(2, GBPS64), &[(0, 0, 1, 8 << 20)]);
+        assert_eq!(t, vec![5_000 + 131_072]);
+        // Rounding up: 1000 B at 3 B/s... here 1001 B at 1 GB/s -> 1001 ns exactly;
+        // 1 B at 3 GB/s -> 1/3 ns rounds up to 1 ns.
+        let slow = LinkSpec { latency_ns: 0, bytes_per_s: 3_000_000_000 };
+        assert_eq!(deliveries(Topology::full_mesh(2, slow), &[(0, 0, 1, 1)]), vec![1]);
+    }
+
+    #[test]
+    fn two_equal_transfers_share_and_finish_together_at_twice_the_time() {
+        // Processor sharing: each gets half of 64 B/ns, so 2 * 131072 ns.
+        let t = deliveries(Topology::full_mesh(2, GBPS64), &[(0, 0, 1, 8 << 20), (0, 0, 1, 8 << 20)]);
+        assert_eq!(t, vec![5_000 + 262_144, 5_000 + 262_144]);
+    }
+
+    #[test]
+    fn opposite_directions_do_not_share() {
+        let t = deliveries(Topology::full_mesh(2, GBPS64), &[(0, 0, 1, 8 << 20), (0, 1, 0, 8 << 20)]);
+        assert_eq!(t, vec![136_072, 136_072]);
+    }
+
+    #[test]
+    fn late_joiner_slows_then_first_finishes_and_second_speeds_up() {
+        // Link 1000 B/us = 1 B/ns, no latency. A: 1000 B at t=0. B: 1000 B at t=500.
+        // 0..500: A alone, 500 B done. 500..1500: both at 0.5 B/ns, A's last 500 B
+        // done at 1500; B has 500 B done. 1500..2000: B alone, its last 500 B.
+        let spec = LinkSpec { latency_ns: 0, bytes_per_s: 1_000_000_000 };
+        let t = deliveries(Topology::full_mesh(2, spec), &[(0, 0, 1, 1000), (500, 0, 1, 1000)]);
+        assert_eq!(t, vec![1500, 2000]);
+    }
+
+    #[test]
+    fn zero_bytes_and_self_sends_cost_only_latency() {
+        let t = deliveries(Topology::full_mesh(3, GBPS64), &[(10, 0, 2, 0), (10, 1, 1, 1 << 20)]);
+        assert_eq!(t, vec![5_010, 10]);
+    }
+
+    #[test]
+    fn stats_count_bytes_busy_time_and_concurrency() {
+        let spec = LinkSpec { latency_ns: 0, bytes_per_s: 1_000_000_000 };
+        let topo = Topology::full_mesh(2, spec);
+        let mut net = Network::new(topo);
+        let mut sched: Scheduler<(), TransferId> = Scheduler::new();
+        let a = net.start(&mut sched, 0, 1, 1000);
+        let b = net.start(&mut sched, 0, 1, 1000);
+        assert_eq!(net.rate_bytes_per_s(a), Some(5e8));
+        let mut done = 0;
+        while let Some((_, f)) = sched.pop() {
+            if let Fired::Deadline(id) = f {
+                assert!(id == a || id == b);
+                net.finish(&mut sched, id);
+                done += 1;
+            }
+        }
+        assert_eq!(done, 2);
+        let l = net.topology().route(0, 1)[0];
+        let st = &net.stats()[l.0 as usize];
+        assert_eq!((st.bytes, st.busy_ns, st.peak_concurrent), (2000, 2000, 2));
+        assert_eq!(net.topology().link_name(l), "dev0->dev1");
+    }
+
+    #[test]
+    fn water_filling_worked_example_on_two_links() {
+        // Max-min fair sharing (Bertsekas & Gallager, Data Networks, 2nd ed., 1992,
+        // sec. 6.5.2, water-filling). L1 capacity 10, L2 capacity 4 (here GB/s);
+        // A on L1, B on L1+L2, C on L2 -> rates (8, 2, 2) GB/s.
+        // Devices: 0 -L1-> 1 -L2-> 2. A: 0->1, B: 0->2, C: 1->2.
+        let gb = 1_000_000_000;
+        let l1 = LinkSpec { latency_ns: 0, bytes_per_s: 10 * gb };
+        let l2 = LinkSpec { latency_ns: 0, bytes_per_s: 4 * gb };
+        let (a, b) = (LinkId(0), LinkId(1));
+        let routes =
+            vec![vec![vec![], vec![a], vec![a, b]], vec![vec![], vec![], vec![b]], vec![vec![], vec![], vec![]]];
+        let topo = Topology::from_routes(vec![("L1".into(), l1), ("L2".into(), l2)], &routes);
+        let mut net = Network::new(topo);
+        let mut sched: Scheduler<(), TransferId> = Scheduler::new();
+        let fa = net.start(&mut sched, 0, 1, 1 << 30);
+        let fb = net.start(&mut sched, 0, 2, 1 << 30);
+        let fc = net.start(&mut sched, 1, 2, 1 << 30);
+        let rates: Vec<f64> = [fa, fb, fc].iter().map(|&f| net.rate_bytes_per_s(f).unwrap() / gb as f64).collect();
+        assert_eq!(rates, vec![8.0, 2.0, 2.0]);
+    }
+}

@@ -1,0 +1,260 @@
+//! SVG Gantt chart of one simulated step.
+//!
+//! `plotters` (SVG backend only, so no font files are needed to draw) lays out
+//! the frame: title, time axis with units, lane labels, legend and caption.
+//! The bars and idle marks are then written as plain SVG elements in the
+//! chart's pixel coordinates, because each carries a `<title>` tooltip (op,
+//! micro-batch, stage, start, end), which plotters has no element for.
+//!
+//! One lane per device; one bar per operation, coloured by kind (forward blue,
+//! backward orange: a pair that stays distinct under the common forms of colour
+//! blindness), later model chunks drawn lighter; the micro-batch number inside
+//! a bar when it fits, dropped when it does not; idle gaps hatched, with their
+//! cause as tooltip.
+
+use std::fmt::Write as _;
+
+use baton_engine::format_ns;
+use baton_executor::Trace;
+use baton_schedule::OpKind;
+use plotters::prelude::*;
+use plotters::style::text_anchor::{HPos, Pos, VPos};
+
+use crate::{Report, ReportError};
+
+/// A colour as red, green, blue.
+type Rgb = (u8, u8, u8);
+
+const FORWARD: Rgb = (0x2b, 0x6c, 0xb0);
+const BACKWARD: Rgb = (0xe3, 0x8b, 0x2c);
+const IDLE_INK: &str = "#b8474a";
+const LANE_H: f64 = 28.0;
+const LANE_GAP: f64 = 10.0;
+const LABEL_FONT_PX: f64 = 10.0;
+
+/// The colour of an op of `kind` on chunk `chunk` of `chunks`: later chunks lighter.
+fn bar_rgb(kind: OpKind, chunk: u32, chunks: u32) -> (u8, u8, u8) {
+    let base = match kind {
+        OpKind::Forward => FORWARD,
+        OpKind::Backward => BACKWARD,
+    };
+    if chunks <= 1 {
+        return base;
+    }
+    let t = 0.55 * chunk as f64 / (chunks - 1) as f64;
+    let mix = |c: u8| (c as f64 + (255.0 - c as f64) * t).round() as u8;
+    (mix(base.0), mix(base.1), mix(base.2))
+}
+
+fn hex((r, g, b): (u8, u8, u8)) -> String {
+    format!("#{r:02x}{g:02x}{b:02x}")
+}
+
+/// Text on a bar: white on dark colours, near-black on light ones.
+fn ink_on((r, g, b): (u8, u8, u8)) -> &'static str {
+    let luma = 0.299 * r as f64 + 0.587 * g as f64 + 0.114 * b as f64;
+    if luma < 140.0 {
+        "#ffffff"
+    } else {
+        "#1a1a1a"
+    }
+}
+
+/// Escapes text for XML content and attributes.
+pub fn xml_escape(s: &str) -> String {
+    let mut out = String::with_capacity(s.len());
+    for c in s.chars() {
+        match c {
+            '&' => out.push_str("&amp;"),
+            '<' => out.push_str("&lt;"),
+            '>' => out.push_str("&gt;"),
+            '"' => out.push_str("&quot;"),
+            '\'' => out.push_str("&apos;"),
+            c if (c as u32) < 0x20 && c != '\n' && c != '\t' => out.push(' '),
+            c => out.push(c),
+        }
+    }
+    out
+}
+
+fn draw_err<E: std::fmt::Debug>(e: E) -> ReportError {
+    ReportError::Draw(format!("{e:?}"))
+}
+
+/// Draws the chart; returns the SVG document.
+pub fn render(trace: &Trace, report: &Report) -> Result<String, ReportError> {
+    let lanes = trace.ops.len().max(1);
+    let per_device = trace.ops.iter().map(Vec::len).max().unwrap_or(0);
+    let width = (220 + per_device * 20).clamp(900, 12_000) as u32;
+    // Title and axis take about 110 px; each lane gets LANE_H plus a gap.
+    let chart_h = 24.0 + 110.0 + lanes as f64 * (LANE_H + LANE_GAP);
+    let legend_h = 70.0;
+    let height = (chart_h + legend_h).ceil() as u32;
+    let step_ns = report.step_time_ns.max(1);
+    let step_ms = step_ns as f64 / 1e6;
+    let t0 = trace.start().as_ns();
+
+    let mut svg = String::new();
+    let (x_range, y_range) = {
+        let root = SVGBackend::with_string(&mut svg, (width, height)).into_drawing_area();
+        root.fill(&WHITE).map_err(draw_err)?;
+        let (upper, lower) = root.split_vertically(chart_h as u32);
+        let mut chart = ChartBuilder::on(&upper)
+            .caption(&report.title, ("sans-serif", 20).into_font())
+            .margin(12)
+            .x_label_area_size(40)
+            .y_label_area_size(90)
+            .build_cartesian_2d(0f64..step_ms, 0f64..lanes as f64)
+            .map_err(draw_err)?;
+        chart
+            .configure_mesh()
+            .disable_y_mesh()
+            .y_labels(0)
+            .x_desc("time (ms)")
+            .x_labels(12)
+            .light_line_style(RGBColor(235, 235, 235))
+            .label_style(("sans-serif", 12))
+            .draw()
+            .map_err(draw_err)?;
+        let (xr, yr) = chart.plotting_area().get_pixel_range();
+        // Lane labels, left of the plot.
+        let pitch = (yr.end - yr.start) as f64 / lanes as f64;
+        for d in 0..lanes {
+            let y = yr.start as f64 + (d as f64 + 0.5) * pitch;
+            let style = TextStyle::from(("sans-serif", 13).into_font()).pos(Pos::new(HPos::Right, VPos::Center));
+            root.draw(&Text::new(format!("device {d}"), (xr.start - 8, y.round() as i32), style)).map_err(draw_err)?;
+        }
+        // Legend and caption.
+        let ly = 14;
+        let mut lx = xr.start;
+        let legend: [(&str, Option<Rgb>); 3] =
+            [("forward", Some(FORWARD)), ("backward", Some(BACKWARD)), ("idle (hover for cause)", None)];
+        for (name, colour) in legend {
+            let swatch = [(lx, ly), (lx + 16, ly + 12)];
+            match colour {
+                Some((r, g, b)) => lower.draw(&Rectangle::new(swatch, RGBColor(r, g, b).filled())),
+                None => {
+                    lower.draw(&Rectangle::new(swatch, ShapeStyle::from(&RGBColor(0xb8, 0x47, 0x4a)).stroke_width(1)))
+                }
+            }
+            .map_err(draw_err)?;
+            let style = TextStyle::from(("sans-serif", 12).into_font()).pos(Pos::new(HPos::Left, VPos::Center));
+            lower.draw(&Text::new(name.to_string(), (lx + 22, ly + 6), style)).map_err(draw_err)?;
+            lx += 40 + 8 * name.len() as i32;
+        }
+        let chunks_note = if report.chunks > 1 {
+            format!(", {} chunks per device (later chunks lighter)", report.chunks)
+        } else {
+            String::new()
+        };
+        let caption = format!(
+            "step time {} · bubble {:.2}% · {} · {} stages · {} micro-batches{} · seed {}",
+            format_ns(report.step_time_ns),
+            report.bubble_fraction * 100.0,
+            report.schedule,
+            report.stages,
+            report.micro_batches,
+            chunks_note,
+            report.seed
+        );
+        let style = TextStyle::from(("sans-serif", 13).into_font()).pos(Pos::new(HPos::Left, VPos::Center));
+        lower.draw(&Text::new(caption, (xr.start, ly + 36), style)).map_err(draw_err)?;
+        root.present().map_err(draw_err)?;
+        ((xr.start as f64, xr.end as f64), (yr.start as f64, yr.end as f64))
+    };
+
+    // Bars and idle marks, in pixel coordinates of the plotting area.
+    let px_per_ns = (x_range.1 - x_range.0) / step_ns as f64;
+    let x_of = |ns: u64| x_range.0 + (ns.saturating_sub(t0)) as f64 * px_per_ns;
+    let pitch = (y_range.1 - y_range.0) / lanes as f64;
+    let lane_h = pitch - LANE_GAP;
+    let lane_y = |d: usize| y_range.0 + LANE_GAP / 2.0 + d as f64 * pitch;
+    let mut body =
+        String::with_capacity(256 * (trace.ops.iter().map(Vec::len).sum::<usize>() + report.gaps.len()) + 512);
+    body.push_str(concat!(
+        "<defs><pattern id=\"idle-hatch\" patternUnits=\"userSpaceOnUse\" width=\"6\" height=\"6\" patternTransform=\"rotate(45)\">",
+        "<rect width=\"6\" height=\"6\" fill=\"#fbeeee\"/><line x1=\"0\" y1=\"0\" x2=\"0\" y2=\"6\" stroke=\"#b8474a\" stroke-width=\"1.2\"/>",
+        "</pattern></defs>\n<g id=\"idle\">\n"
+    ));
+    for g in &report.gaps {
+        let (x0, x1) = (x_of(g.start_ns), x_of(g.end_ns));
+        let y = lane_y(g.device as usize);
+        let _ = writeln!(
+            body,
+            "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"url(#idle-hatch)\" stroke=\"{IDLE_INK}\" stroke-width=\"0.5\"><title>idle on device {}, {} to {} ({}): {}</title></rect>",
+            x0,
+            y + 4.0,
+            (x1 - x0).max(0.5),
+            lane_h - 8.0,
+            g.device,
+            format_ns(g.start_ns),
+            format_ns(g.end_ns),
+            g.cause.as_str(),
+            xml_escape(&g.detail)
+        );
+    }
+    body.push_str("</g>\n<g id=\"ops\" font-family=\"sans-serif\" font-size=\"10\" text-anchor=\"middle\">\n");
+    let chunks = trace.plan.shape.chunks;
+    let p = trace.plan.shape.stages;
+    for (d, recs) in trace.ops.iter().enumerate() {
+        let y = lane_y(d);
+        for r in recs {
+            let (x0, x1) = (x_of(r.start.as_ns()), x_of(r.end.as_ns()));
+            let w = (x1 - x0).max(0.5);
+            let rgb = bar_rgb(r.op.kind, r.op.stage / p, chunks);
+            let _ = write!(
+                body,
+                "<g><title>{} of micro-batch {}, stage {}, device {}: {} to {}</title><rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\" stroke=\"#ffffff\" stroke-width=\"0.6\"/>",
+                r.op.kind.as_str(),
+                r.op.micro_batch,
+                r.op.stage,
+                d,
+                format_ns(r.start.as_ns()),
+                format_ns(r.end.as_ns()),
+                x0,
+                y,
+                w,
+                lane_h,
+                hex(rgb)
+            );
+            let label = r.op.micro_batch.to_string();
+            // About 0.62 em per digit plus a little padding.
+            if w >= label.len() as f64 * LABEL_FONT_PX * 0.62 + 3.0 {
+                let _ = write!(
+                    body,
+                    "<text x=\"{:.2}\" y=\"{:.2}\" fill=\"{}\" dominant-baseline=\"central\">{}</text>",
+                    x0 + w / 2.0,
+                    y + lane_h / 2.0,
+                    ink_on(rgb),
+                    label
+                );
+            }
+            body.push_str("</g>\n");
+        }
+    }
+    body.push_str("</g>\n");
+    let Some(pos) = svg.rfind("</svg>") else {
+        return Err(ReportError::Draw("the SVG backend produced no closing tag".into()));
+    };
+    svg.insert_str(pos, &body);
+    Ok(svg)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn escapes_markup() {
+        assert_eq!(xml_escape("a<b & \"c\""), "a&lt;b &amp; &quot;c&quot;");
+    }
+
+    #[test]
+    fn later_chunks_are_lighter_and_ink_contrasts() {
+        let a = bar_rgb(OpKind::Forward, 0, 2);
+        let b = bar_rgb(OpKind::Forward, 1, 2);
+        assert!(b.0 > a.0 && b.1 > a.1 && b.2 > a.2);
+        assert_eq!(ink_on(FORWARD), "#ffffff");
+        assert_eq!(ink_on((250, 250, 250)), "#1a1a1a");
+    }
+}

@@ -1,0 +1,471 @@
+//! # baton-report: what a simulated step means to a person
+//!
+//! Turns an executor [`Trace`] into a [`Report`] (step time, busy and idle time
+//! and bubble fraction per device, peak activations held, every idle gap with
+//! its cause), and writes it out as JSON, as a CSV trace of every operation and
+//! transfer, as a readable text summary, or as an SVG Gantt chart ([`gantt`]).
+//!
+//! Definitions used throughout:
+//! * step time = last operation end - first operation start;
+//! * a device's bubble fraction = its idle time / step time;
+//! * overall bubble fraction = total idle / (devices in use x step time);
+//! * peak activations = the largest number of (micro-batch, virtual stage)
+//!   activations a device holds at once, each held from its forward's start to
+//!   its backward's end (with one chunk per device: micro-batches).
+//!
+//! It deliberately knows nothing about scenario files or how the trace was
+//! simulated; it only reads the trace.
+
+pub mod gantt;
+
+use std::fmt::Write as _;
+use std::io;
+
+use baton_engine::{format_ns, SimTime};
+use baton_executor::{DataKind, Trace};
+use baton_schedule::OpKind;
+use serde::Serialize;
+use thiserror::Error;
+
+/// Writing a report failed.
+#[derive(Debug, Error)]
+pub enum ReportError {
+    #[error("cannot write: {0}")]
+    Io(#[from] io::Error),
+    #[error("cannot write CSV: {0}")]
+    Csv(#[from] csv::Error),
+    #[error("cannot write JSON: {0}")]
+    Json(#[from] serde_json::Error),
+    #[error("cannot draw the chart: {0}")]
+    Draw(String),
+}
+
+/// Why a device sat idle.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Cause {
+    /// Before the device's first operation: the pipeline filling up.
+    Fill,
+    /// After the device's last operation: the pipeline draining.
+    Drain,
+    /// Waiting for another device to finish a forward pass.
+    Activation,
+    /// Waiting for another device to finish a backward pass.
+    Gradient,
+    /// The data was computed but still in transit.
+    Link,
+}
+
+impl Cause {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Cause::Fill => "fill",
+            Cause::Drain => "drain",
+            Cause::Activation => "activation",
+            Cause::Gradient => "gradient",
+            Cause::Link => "link",
+        }
+    }
+}
+
+/// One idle interval of one device, with its cause.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Gap {
+    pub device: u32,
+    pub start_ms: f64,
+    pub end_ms: f64,
+    pub duration_ms: f64,
+    pub cause: Cause,
+    /// A sentence saying what the device waited for.
+    pub detail: String,
+    /// The device that produced the awaited data (activation, gradient, link).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub from_device: Option<u32>,
+    /// The awaited micro-batch (activation, gradient, link).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub micro_batch: Option<u32>,
+    /// The virtual stage the device was about to run (activation, gradient, link).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub stage: Option<u32>,
+    #[serde(skip)]
+    pub start_ns: u64,
+    #[serde(skip)]
+    pub end_ns: u64,
+}
+
+/// One device's totals.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct DeviceReport {
+    pub device: u32,
+    pub busy_ms: f64,
+    pub idle_ms: f64,
+    pub bubble_fraction: f64,
+    pub peak_activations: u32,
+    pub ops: usize,
+    #[serde(skip)]
+    pub busy_ns: u64,
+    #[serde(skip)]
+    pub idle_ns: u64,
+}
+
+/// Everything a run reports.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Report {
+    pub title: String,
+    pub schedule: String,
+    pub stages: u32,
+    pub micro_batches: u32,
+    pub chunks: u32,
+    pub seed: u64,
+    pub step_time_ms: f64,
+    pub step_time_ns: u64,
+    pub bubble_fraction: f64,
+    pub ops: usize,
+    pub transfers: usize,
+    pub devices: Vec<DeviceReport>,
+    /// Every idle interval, by device then start time.
+    pub gaps: Vec<Gap>,
+}
+
+fn ms(ns: u64) -> f64 {
+    ns as f64 / 1e6
+}
+
+/// Labels shown with a report that come from outside the trace.
+#[derive(Clone, Debug, Default)]
+pub struct Labels {
+    pub title: String,
+    pub seed: u64,
+}
+
+/// Builds the report of `trace`.
+pub fn build(trace: &Trace, labels: &Labels) -> Report {
+    let shape = trace.plan.shape;
+    let t0 = trace.start();
+    let t1 = trace.end();
+    let step_ns = t1.saturating_since(t0).as_ns();
+    let mut devices = Vec::with_capacity(trace.ops.len());
+    let mut gaps = Vec::new();
+    for (d, recs) in trace.ops.iter().enumerate() {
+        let device = d as u32;
+        let busy_ns: u64 = recs.iter().map(|r| r.end.saturating_since(r.start).as_ns()).sum();
+        let idle_ns = step_ns - busy_ns.min(step_ns);
+        devices.push(DeviceReport {
+            device,
+            busy_ms: ms(busy_ns),
+            idle_ms: ms(idle_ns),
+            bubble_fraction: if step_ns == 0 { 0.0 } else { idle_ns as f64 / step_ns as f64 },
+            peak_activations: peak_held(trace, d),
+            ops: recs.len(),
+            busy_ns,
+            idle_ns,
+        });
+        device_gaps(trace, d, t0, t1, &mut gaps);
+    }
+    let total_idle: u64 = devices.iter().map(|d| d.idle_ns).sum();
+    let denom = step_ns as f64 * devices.len() as f64;
+    Report {
+        title: labels.title.clone(),
+        schedule: trace.plan.kind.name().to_string(),
+        stages: shape.stages,
+        micro_batches: shape.micro_batches,
+        chunks: shape.chunks,
+        seed: labels.seed,
+        step_time_ms: ms(step_ns),
+        step_time_ns: step_ns,
+        bubble_fraction: if denom == 0.0 { 0.0 } else { total_idle as f64 / denom },
+        ops: trace.ops.iter().map(Vec::len).sum(),
+        transfers: trace.transfers.len(),
+        devices,
+        gaps,
+    }
+}
+
+/// Largest number of activations device `d` holds at once.
+fn peak_held(trace: &Trace, d: usize) -> u32 {
+    // +1 at a forward's start, -1 at the matching backward's end; at equal
+    // times releases go first, since memory freed at t can be reused at t.
+    let mut events: Vec<(u64, i32)> = trace.ops[d]
+        .iter()
+        .map(|r| match r.op.kind {
+            OpKind::Forward => (r.start.as_ns(), 1),
+            OpKind::Backward => (r.end.as_ns(), -1),
+        })
+        .collect();
+    events.sort_unstable();
+    let (mut held, mut peak) = (0i32, 0i32);
+    for (_, delta) in events {
+        held += delta;
+        peak = peak.max(held);
+    }
+    peak as u32
+}
+
+fn push_gap(
+    gaps: &mut Vec<Gap>,
+    device: u32,
+    start: SimTime,
+    end: SimTime,
+    cause: Cause,
+    detail: String,
+    who: Option<(u32, u32, u32)>,
+) {
+    if end <= start {
+        return;
+    }
+    gaps.push(Gap {
+        device,
+        start_ms: ms(start.as_ns()),
+        end_ms: ms(end.as_ns()),
+        duration_ms: ms(end.as_ns() - start.as_ns()),
+        cause,
+        detail,
+        from_device: who.map(|w| w.0),
+        micro_batch: who.map(|w| w.1),
+        stage: who.map(|w| w.2),
+        start_ns: start.as_ns(),
+        end_ns: end.as_ns(),
+    });
+}
+
+fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec<Gap>) {
+    let device = d as u32;
+    let recs = &trace.ops[d];
+    let (Some(first), Some(last)) = (recs.first(), recs.last()) else {
+        push_gap(gaps, device, t0, t1, Cause::Fill, "no work on this device".into(), None);
+        return;
+    };
+    push_gap(gaps, device, t0, first.start, Cause::Fill, format!("pipeline fill before {}", first.op), None);
+    for w in recs.windows(2) {
+        let (a, b) = (&w[0], &w[1]);
+        if b.start <= a.end {
+            continue;
+        }
+        let Some(dep) = trace.dependency(b.op) else {
+            // Every waiting operation waits on data from another stage; the
+            // interval is attributed to the next op's own stage if not.
+            push_gap(gaps, device, a.end, b.start, Cause::Fill, format!("waiting to start {}", b.op), None);
+            continue;
+        };
+        let mb = b.op.micro_batch;
+        let who = Some((dep.producer_device, mb, b.op.stage));
+        let what = dep.kind.as_str();
+        let waiting_until = dep.produced_at.min(b.start);
+        let cause = match dep.kind {
+            DataKind::Activation => Cause::Activation,
+            DataKind::Gradient => Cause::Gradient,
+        };
+        push_gap(
+            gaps,
+            device,
+            a.end,
+            waiting_until,
+            cause,
+            format!(
+                "waiting for the {what} of micro-batch {mb} from device {} ({})",
+                dep.producer_device, dep.producer
+            ),
+            who,
+        );
+        let link_from = dep.produced_at.max(a.end);
+        let route = dep.transfer.map(|t| {
+            let tr = &trace.transfers[t];
+            format!("device {} -> device {}", tr.src, tr.dst)
+        });
+        push_gap(
+            gaps,
+            device,
+            link_from,
+            b.start,
+            Cause::Link,
+            format!(
+                "the {what} of micro-batch {mb} was in transit on {}",
+                route.unwrap_or_else(|| format!("the link from device {}", dep.producer_device))
+            ),
+            who,
+        );
+    }
+    push_gap(gaps, device, last.end, t1, Cause::Drain, format!("pipeline drain after {}", last.op), None);
+}
+
+/// The `n` longest gaps, longest first (ties: by device, then start).
+pub fn longest_gaps(report: &Report, n: usize) -> Vec<&Gap> {
+    let mut v: Vec<&Gap> = report.gaps.iter().collect();
+    v.sort_by(|a, b| {
+        (b.end_ns - b.start_ns)
+            .cmp(&(a.end_ns - a.start_ns))
+            .then(a.device.cmp(&b.device))
+            .then(a.start_ns.cmp(&b.start_ns))
+    });
+    v.truncate(n);
+    v
+}
+
+/// The report as pretty JSON.
+pub fn to_json(report: &Report) -> Result<String, ReportError> {
+    let mut s = serde_json::to_string_pretty(report)?;
+    s.push('\n');
+    Ok(s)
+}
+
+/// Writes the CSV trace: header `device,kind,micro_batch,stage,start_ns,end_ns`,
+/// one row per operation and per transfer (`kind` is `forward`, `backward` or
+/// `send`; for a send `device` is the sender, `stage` the sending virtual stage
+/// and `end_ns` the arrival). Rows are ordered by start, then end, device, kind.
+pub fn write_trace_csv<W: io::Write>(trace: &Trace, out: W) -> Result<(), ReportError> {
+    let mut rows: Vec<(u64, u64, u32, u8, u32, u32)> =
+        Vec::with_capacity(trace.ops.iter().map(Vec::len).sum::<usize>() + trace.transfers.len());
+    for (d, recs) in trace.ops.iter().enumerate() {
+        for r in recs {
+            let k = match r.op.kind {
+                OpKind::Forward => 0,
+                OpKind::Backward => 1,
+            };
+            rows.push((r.start.as_ns(), r.end.as_ns(), d as u32, k, r.op.micro_batch, r.op.stage));
+        }
+    }
+    for t in &trace.transfers {
+        rows.push((t.start.as_ns(), t.end.as_ns(), t.src, 2, t.micro_batch, t.from_stage));
+    }
+    rows.sort_unstable();
+    let mut w = csv::Writer::from_writer(out);
+    w.write_record(["device", "kind", "micro_batch", "stage", "start_ns", "end_ns"])?;
+    for (start, end, device, kind, mb, stage) in rows {
+        let kind = ["forward", "backward", "send"][kind as usize];
+        w.serialize((device, kind, mb, stage, start, end))?;
+    }
+    w.flush()?;
+    Ok(())
+}
+
+/// The readable summary printed by `baton run`.
+pub fn summary(report: &Report) -> String {
+    let mut s = String::new();
+    let _ = writeln!(s, "{}", report.title);
+    let _ = writeln!(
+        s,
+        "schedule {}, {} stages, {} micro-batches{}, seed {}",
+        report.schedule,
+        report.stages,
+        report.micro_batches,
+        if report.chunks > 1 { format!(", {} chunks per device", report.chunks) } else { String::new() },
+        report.seed
+    );
+    let _ = writeln!(s);
+    let _ = writeln!(s, "step time        {}", format_ns(report.step_time_ns));
+    let _ = writeln!(s, "bubble fraction  {:.2}% (idle / (devices x step time))", report.bubble_fraction * 100.0);
+    let _ = writeln!(s, "simulated        {} ops, {} transfers", report.ops, report.transfers);
+    let _ = writeln!(s);
+    let _ = writeln!(s, "{:>6}  {:>12}  {:>12}  {:>8}  {:>16}", "device", "busy", "idle", "bubble", "peak activations");
+    for d in &report.devices {
+        let _ = writeln!(
+            s,
+            "{:>6}  {:>12}  {:>12}  {:>7.2}%  {:>16}",
+            d.device,
+            format_ns(d.busy_ns),
+            format_ns(d.idle_ns),
+            d.bubble_fraction * 100.0,
+            d.peak_activations
+        );
+    }
+    let top = longest_gaps(report, 5);
+    if !top.is_empty() {
+        let _ = writeln!(s);
+        let _ = writeln!(s, "longest idle gaps");
+        for g in top {
+            let _ = writeln!(
+                s,
+                "  device {:<3} {:>12} .. {:<12} {:>12}  {:<10} {}",
+                g.device,
+                format_ns(g.start_ns),
+                format_ns(g.end_ns),
+                format_ns(g.end_ns - g.start_ns),
+                g.cause.as_str(),
+                g.detail
+            );
+        }
+    }
+    s
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use baton_engine::SimDuration;
+    use baton_executor::{simulate, StageCost};
+    use baton_link::{LinkSpec, Topology};
+    use baton_schedule::{build as plan, ScheduleKind, Shape};
+
+    fn run(kind: ScheduleKind, p: u32, m: u32, f: u64, b: u64, link: LinkSpec, bytes: u64) -> (Trace, Report) {
+        let pl = plan(kind, Shape::new(p, m, 1)).unwrap();
+        let costs =
+            vec![StageCost { forward: SimDuration(f), backward: SimDuration(b), send_bytes: bytes }; p as usize];
+        let tr = simulate(&pl, &costs, Topology::full_mesh(p, link), &(0..p).collect::<Vec<_>>()).unwrap();
+        let rep = build(&tr, &Labels { title: "t".into(), seed: 7 });
+        (tr, rep)
+    }
+
+    const FREE: LinkSpec = LinkSpec { latency_ns: 0, bytes_per_s: 1_000_000_000 };
+
+    #[test]
+    fn gaps_cover_idle_time_exactly() {
+        let (_, rep) =
+            run(ScheduleKind::OneFOneB, 4, 6, 10, 20, LinkSpec { latency_ns: 7, bytes_per_s: 1_000_000_000 }, 50);
+        for d in &rep.devices {
+            let gap_ns: u64 = rep.gaps.iter().filter(|g| g.device == d.device).map(|g| g.end_ns - g.start_ns).sum();
+            assert_eq!(gap_ns, d.idle_ns, "device {}", d.device);
+            assert_eq!(d.busy_ns + d.idle_ns, rep.step_time_ns);
+        }
+        assert!(rep.gaps.iter().any(|g| g.cause == Cause::Link));
+    }
+
+    #[test]
+    fn two_stage_gaps_by_hand() {
+        // p=2, m=2 fill-drain, F=10, B=20, free links. Device 1: fill 0-10,
+        // busy 10-70, no drain. Device 0: F0 0-10, F1 10-20, waits 20-50 for the
+        // gradient of micro-batch 0 from device 1 (B0@1 ends at 50), B0 50-70, B1 70-90.
+        let (_, rep) = run(ScheduleKind::FillDrain, 2, 2, 10, 20, FREE, 0);
+        assert_eq!(rep.step_time_ns, 90);
+        let g0: Vec<_> = rep.gaps.iter().filter(|g| g.device == 0).collect();
+        assert_eq!(g0.len(), 1);
+        assert_eq!((g0[0].start_ns, g0[0].end_ns, g0[0].cause), (20, 50, Cause::Gradient));
+        assert_eq!((g0[0].from_device, g0[0].micro_batch), (Some(1), Some(0)));
+        let g1: Vec<_> = rep.gaps.iter().filter(|g| g.device == 1).map(|g| (g.start_ns, g.end_ns, g.cause)).collect();
+        assert_eq!(g1, vec![(0, 10, Cause::Fill), (70, 90, Cause::Drain)]);
+        // Overall bubble = (30 + 30) / (2 x 90).
+        assert!((rep.bubble_fraction - 60.0 / 180.0).abs() < 1e-12);
+        assert_eq!(rep.devices[0].peak_activations, 2);
+    }
+
+    #[test]
+    fn transit_time_is_attributed_to_the_link() {
+        // p=2, m=1, 1000 B at 1 GB/s + 500 ns latency: the gradient leaves device 1
+        // at 1900 and arrives at 3400; device 0 idles 100-3400: 100-1900 waiting for
+        // device 1, 1900-3400 link.
+        let (_, rep) =
+            run(ScheduleKind::OneFOneB, 2, 1, 100, 200, LinkSpec { latency_ns: 500, bytes_per_s: 1_000_000_000 }, 1000);
+        let g0: Vec<_> = rep.gaps.iter().filter(|g| g.device == 0).map(|g| (g.start_ns, g.end_ns, g.cause)).collect();
+        assert_eq!(g0, vec![(100, 1900, Cause::Gradient), (1900, 3400, Cause::Link)]);
+        let top = longest_gaps(&rep, 1);
+        assert_eq!((top[0].device, top[0].cause), (0, Cause::Gradient), "1800 ns, longer than device 1's 1600 ns fill");
+        let text = summary(&rep);
+        assert!(text.contains("step time") && text.contains("longest idle gaps") && text.contains("seed 7"), "{text}");
+    }
+
+    #[test]
+    fn trace_csv_has_a_row_per_op_and_transfer() {
+        let (tr, _) = run(ScheduleKind::OneFOneB, 2, 2, 10, 20, FREE, 8);
+        let mut out = Vec::new();
+        write_trace_csv(&tr, &mut out).unwrap();
+        let text = String::from_utf8(out).unwrap();
+        let lines: Vec<&str> = text.lines().collect();
+        assert_eq!(lines[0], "device,kind,micro_batch,stage,start_ns,end_ns");
+        assert_eq!(lines.len(), 1 + 8 + 4);
+        assert_eq!(lines[1], "0,forward,0,0,0,10");
+        assert!(lines.iter().any(|l| l.starts_with("0,send,0,0,10,")));
+        let json = to_json(&build(&tr, &Labels::default())).unwrap();
+        let v: serde_json::Value = serde_json::from_str(&json).unwrap();
+        assert!(v["devices"][1]["peak_activations"].is_u64());
+        assert!(v["gaps"][0]["cause"].is_string());
+    }
+}

@@ -1,0 +1,578 @@
+//! # baton-scenario: the scenario file
+//!
+//! Reads a YAML scenario (a model's layers, the cluster, the pipeline layout),
+//! applies `--set KEY=VALUE` overrides, and validates it into a [`Scenario`]
+//! whose every number carries its unit in its name. Every refusal names the key
+//! path (`pipeline.split`) and where the value was written (line and column, or
+//! the `--set` argument); see [`ScenarioError`].
+//!
+//! Quantities are parsed exactly (see [`units`]). Defaults: `backward` is twice
+//! `forward` (common practice, no source), `repeat` is 1, `split` is `even`,
+//! `chunks` is 1, `seed` is 1, `title` is the file name.
+//!
+//! This crate deliberately knows nothing about simulation, links or reports: it
+//! turns text into checked numbers.
+
+pub mod node;
+pub mod units;
+
+use std::path::Path;
+
+use baton_schedule::{check_shape, ScheduleError, ScheduleKind, Shape};
+use thiserror::Error;
+
+pub use node::{Node, Origin, Value};
+
+/// One layer of the model, after `repeat` is expanded.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Layer {
+    pub name: String,
+    pub forward_ns: u64,
+    pub backward_ns: u64,
+    /// Bytes this layer sends on per micro-batch (and receives back as gradient).
+    pub activation_bytes: u64,
+}
+
+/// One direction of a link between two devices.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct LinkParams {
+    pub latency_ns: u64,
+    pub bytes_per_s: u64,
+}
+
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Cluster {
+    pub devices: u32,
+    pub link: LinkParams,
+}
+
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Pipeline {
+    pub stages: u32,
+    /// Layers per piece (virtual stage), `stages * chunks` entries, in model order.
+    pub split: Vec<u32>,
+    pub micro_batches: u32,
+    pub schedule: ScheduleKind,
+    pub chunks: u32,
+}
+
+/// A validated scenario.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Scenario {
+    pub title: String,
+    pub seed: u64,
+    pub layers: Vec<Layer>,
+    pub cluster: Cluster,
+    pub pipeline: Pipeline,
+}
+
+/// The summed cost of one piece of the model (one virtual stage).
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Piece {
+    /// Index of its first layer.
+    pub first_layer: usize,
+    pub layers: usize,
+    pub forward_ns: u64,
+    pub backward_ns: u64,
+    /// Its last layer's activation: what it sends on per micro-batch.
+    pub send_bytes: u64,
+}
+
+impl Scenario {
+    /// The pipeline's shape for the schedule crate.
+    pub fn shape(&self) -> Shape {
+        Shape::new(self.pipeline.stages, self.pipeline.micro_batches, self.pipeline.chunks)
+    }
+
+    /// The pieces the split cuts the model into, in order (virtual stages).
+    pub fn pieces(&self) -> Vec<Piece> {
+        let mut first = 0usize;
+        self.pipeline
+            .split
+            .iter()
+            .map(|&n| {
+                let layers = &self.layers[first..first + n as usize];
+                let piece = Piece {
+                    first_layer: first,
+                    layers: n as usize,
+                    forward_ns: layers.iter().map(|l| l.forward_ns).sum(),
+                    backward_ns: layers.iter().map(|l| l.backward_ns).sum(),
+                    send_bytes: layers.last().map_or(0, |l| l.activation_bytes),
+                };
+                first += n as usize;
+                piece
+            })
+            .collect()
+    }
+}
+
+/// Why a scenario was refused.
+#[derive(Debug, Error, PartialEq)]
+pub enum ScenarioError {
+    #[error("cannot read {file}: {message}")]
+    Read { file: String, message: String },
+    #[error("{file}:{line}:{column}: YAML syntax error: {message}")]
+    Syntax { file: String, line: u32, column: u32, message: String },
+    #[error("{}", invalid_text(.file, .key, .origin, .message))]
+    Invalid { file: String, key: String, origin: Origin, message: String },
+    #[error("--set {arg}: {message}")]
+    Override { arg: String, message: String },
+}
+
+fn invalid_text(file: &str, key: &str, origin: &Origin, message: &str) -> String {
+    match origin {
+        Origin::File { line, column } => format!("{file}:{line}:{column}: {key}: {message}"),
+        Origin::Set(arg) => format!("{key} (from --set {arg}): {message}"),
+        Origin::Default => format!("{file}: {key}: {message}"),
+    }
+}
+
+impl ScenarioError {
+    /// The key path the error is about, if it is about one.
+    pub fn key(&self) -> Option<&str> {
+        match self {
+            ScenarioError::Invalid { key, .. } => Some(key),
+            _ => None,
+        }
+    }
+}
+
+/// Most layers a scenario may expand to (after `repeat`).
+pub const MAX_LAYERS: u64 = 1_000_000;
+/// Most devices a cluster may have.
+pub const MAX_DEVICES: i128 = 65_536;
+
+/// Reads, overrides and validates a scenario file.
+pub fn load(path: &Path, overrides: &[String]) -> Result<Scenario, ScenarioError> {
+    let file = path.display().to_string();
+    let text = std::fs::read_to_string(path)
+        .map_err(|e| ScenarioError::Read { file: file.clone(), message: e.to_string() })?;
+    let default_title = path.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+    parse(&text, &file, &default_title, overrides)
+}
+
+/// Parses scenario text; `file` labels error messages.
+pub fn parse(text: &str, file: &str, default_title: &str, overrides: &[String]) -> Result<Scenario, ScenarioError> {
+    let mut doc = node::parse_document(text, file)?;
+    for arg in overrides {
+        node::apply_override(&mut doc, arg)?;
+    }
+    from_tree(&doc, file, default_title)
+}
+
+/// A value being read, with its key path.
+#[derive(Clone, Copy)]
+struct At<'a> {
+    cx: &'a Cx<'a>,
+    path: &'a str,
+    node: &'a Node,
+}
+
+struct Cx<'a> {
+    file: &'a str,
+}
+
+impl Cx<'_> {
+    fn err(&self, key: &str, origin: &Origin, message: impl Into<String>) -> ScenarioError {
+        ScenarioError::Invalid {
+            file: self.file.to_string(),
+            key: key.to_string(),
+            origin: origin.clone(),
+            message: message.into(),
+        }
+    }
+}
+
+/// A mapping being read: each key may be taken once; leftovers are unknown keys.
+struct MapAt<'a> {
+    cx: &'a Cx<'a>,
+    path: &'a str,
+    origin: &'a Origin,
+    entries: &'a [(String, Origin, Node)],
+}
+
+fn join(path: &str, key: &str) -> String {
+    if path.is_empty() {
+        key.to_string()
+    } else {
+        format!("{path}.{key}")
+    }
+}
+
+impl<'a> At<'a> {
+    fn err(&self, message: impl Into<String>) -> ScenarioError {
+        self.cx.err(self.path, &self.node.origin, message)
+    }
+
+    fn map(&self, allowed: &[&str]) -> Result<MapAt<'a>, ScenarioError> {
+        let Value::Map(entries) = &self.node.value else {
+            return Err(self.err(format!(
+                "expected a mapping with keys {}, found {}",
+                allowed.join(", "),
+                self.node.value.kind()
+            )));
+        };
+        if let Some((k, origin, _)) = entries.iter().find(|(k, _, _)| !allowed.contains(&k.as_str())) {
+            return Err(self.cx.err(
+                &join(self.path, k),
+                origin,
+                format!("unknown key `{k}`; expected one of: {}", allowed.join(", ")),
+            ));
+        }
+        Ok(MapAt { cx: self.cx, path: self.path, origin: &self.node.origin, entries })
+    }
+
+    fn str(&self) -> Result<&'a str, ScenarioError> {
+        match &self.node.value {
+            Value::Str(s) => Ok(s),
+            other => Err(self.err(format!("expected text, found {}", other.kind()))),
+        }
+    }
+
+    /// Text or a number, as text (for names and titles).
+    fn text(&self) -> Result<String, ScenarioError> {
+        match &self.node.value {
+            Value::Str(s) => Ok(s.clone()),
+            Value::Int(i) => Ok(i.to_string()),
+            Value::Float(f) => Ok(f.to_string()),
+            Value::Bool(b) => Ok(b.to_string()),
+            other => Err(self.err(format!("expected text, found {}", other.kind()))),
+        }
+    }
+
+    fn int(&self, min: i128, max: i128) -> Result<i128, ScenarioError> {
+        let v = match &self.node.value {
+            Value::Int(i) => *i,
+            Value::Float(f) => return Err(self.err(format!("expected a whole number, found {f}"))),
+            other => return Err(self.err(format!("expected a whole number, found {}", other.kind()))),
+        };
+        if v < min {
+            return Err(self.err(format!("must be at least {min}, found {v}")));
+        }
+        if v > max {
+            return Err(self.err(format!("must be at most {max}, found {v}")));
+        }
+        Ok(v)
+    }
+
+    fn u32(&self, min: u32) -> Result<u32, ScenarioError> {
+        self.int(min as i128, u32::MAX as i128).map(|v| v as u32)
+    }
+
+    fn quantity(&self, parse: fn(&str) -> Result<u64, String>, accepted: &str) -> Result<u64, ScenarioError> {
+        match &self.node.value {
+            Value::Str(s) => parse(s).map_err(|m| self.err(m)),
+            Value::Int(_) | Value::Float(_) => {
+                Err(self.err(format!("a bare number needs a unit; accepted units: {accepted}")))
+            }
+            other => Err(self.err(format!("expected a quantity with a unit ({accepted}), found {}", other.kind()))),
+        }
+    }
+
+    fn duration_ns(&self) -> Result<u64, ScenarioError> {
+        self.quantity(units::parse_duration_ns, units::DURATION_UNITS)
+    }
+
+    fn bytes(&self) -> Result<u64, ScenarioError> {
+        self.quantity(units::parse_bytes, units::SIZE_UNITS)
+    }
+
+    fn bytes_per_s(&self) -> Result<u64, ScenarioError> {
+        self.quantity(units::parse_bytes_per_s, units::BANDWIDTH_UNITS)
+    }
+}
+
+impl<'a> MapAt<'a> {
+    fn get(&self, key: &str) -> Option<(String, &'a Node)> {
+        self.entries
+            .iter()
+            .find(|(k, _, _)| k == key)
+            .map(|(_, _, n)| (join(self.path, key), n))
+            .filter(|(_, n)| n.value != Value::Null)
+    }
+
+    /// Reads an optional key with `f`.
+    fn opt<T>(
+        &self,
+        key: &str,
+        f: impl FnOnce(At<'_>) -> Result<T, ScenarioError>,
+    ) -> Result<Option<T>, ScenarioError> {
+        match self.get(key) {
+            Some((path, node)) => f(At { cx: self.cx, path: &path, node }).map(Some),
+            None => Ok(None),
+        }
+    }
+
+    /// Reads a required key with `f`.
+    fn req<T>(&self, key: &str, f: impl FnOnce(At<'_>) -> Result<T, ScenarioError>) -> Result<T, ScenarioError> {
+        self.opt(key, f)?
+            .ok_or_else(|| self.cx.err(&join(self.path, key), self.origin, format!("missing required key `{key}`")))
+    }
+}
+
+fn from_tree(doc: &Node, file: &str, default_title: &str) -> Result<Scenario, ScenarioError> {
+    let cx = Cx { file };
+    let root = At { cx: &cx, path: "", node: doc };
+    let top = root.map(&["title", "seed", "model", "cluster", "pipeline"])?;
+    let title = top.opt("title", |a| a.text())?.unwrap_or_else(|| default_title.to_string());
+    let seed = top.opt("seed", |a| a.int(0, u64::MAX as i128).map(|v| v as u64))?.unwrap_or(1);
+
+    let layers = top.req("model", |model| {
+        let m = model.map(&["layers"])?;
+        m.req("layers", read_layers)
+    })?;
+
+    let cluster = top.req("cluster", |c| {
+        let c = c.map(&["devices", "link"])?;
+        let devices = c.req("devices", |a| a.int(1, MAX_DEVICES).map(|v| v as u32))?;
+        let link = c.req("link", |l| {
+            let l = l.map(&["latency", "bandwidth"])?;
+            let latency_ns = l.req("latency", |a| a.duration_ns())?;
+            let bytes_per_s = l.req("bandwidth", |a| {
+                let v = a.bytes_per_s()?;
+                if v == 0 {
+                    return Err(a.err("must be more than zero"));
+                }
+                Ok(v)
+            })?;
+            Ok(LinkParams { latency_ns, bytes_per_s })
+        })?;
+        Ok(Cluster { devices, link })
+    })?;
+
+    let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster))?;
+    Ok(Scenario { title, seed, layers, cluster, pipeline })
+}
+
+fn read_layers(list: At<'_>) -> Result<Vec<Layer>, ScenarioError> {
+    let Value::Seq(items) = &list.node.value else {
+        return Err(list.err(format!("expected a list of layers, found {}", list.node.value.kind())));
+    };
+    if items.is_empty() {
+        return Err(list.err("the model needs at least one layer"));
+    }
+    let mut layers = Vec::new();
+    for (i, item) in items.iter().enumerate() {
+        let path = format!("{}.{i}", list.path);
+        let at = At { cx: list.cx, path: &path, node: item };
+        let m = at.map(&["name", "repeat", "forward", "backward", "activation"])?;
+        let name = m.opt("name", |a| a.text())?.unwrap_or_else(|| format!("layer{i}"));
+        let repeat = m.opt("repeat", |a| a.int(1, MAX_LAYERS as i128))?.unwrap_or(1) as u64;
+        let forward_ns = m.req("forward", |a| {
+            let v = a.duration_ns()?;
+            if v == 0 {
+                return Err(a.err("must be more than zero"));
+            }
+            Ok(v)
+        })?;
+        let backward_ns = m.opt("backward", |a| a.duration_ns())?.unwrap_or(forward_ns.saturating_mul(2));
+        let activation_bytes = m.req("activation", |a| a.bytes())?;
+        if layers.len() as u64 + repeat > MAX_LAYERS {
+            return Err(at.err(format!("the model expands to more than {MAX_LAYERS} layers")));
+        }
+        for r in 0..repeat {
+            let name = if repeat > 1 { format!("{name}.{r}") } else { name.clone() };
+            layers.push(Layer { name, forward_ns, backward_ns, activation_bytes });
+        }
+    }
+    Ok(layers)
+}
+
+fn read_pipeline(p: At<'_>, layers: &[Layer], cluster: &Cluster) -> Result<Pipeline, ScenarioError> {
+    let m = p.map(&["stages", "split", "micro_batches", "schedule", "chunks"])?;
+    let stages = m.req("stages", |a| {
+        let v = a.u32(1)?;
+        if v > cluster.devices {
+            return Err(a.err(format!("{v} stages need {v} devices, but cluster.devices is {}", cluster.devices)));
+        }
+        Ok(v)
+    })?;
+    let micro_batches = m.req("micro_batches", |a| a.u32(1))?;
+    let schedule = m.req("schedule", |a| a.str()?.parse::<ScheduleKind>().map_err(|e| a.err(e.to_string())))?;
+    let chunks = m.opt("chunks", |a| a.u32(1))?.unwrap_or(1);
+    let pieces = stages as u64 * chunks as u64;
+    let n_layers = layers.len() as u64;
+    let field_origin = |key: &str| m.get(key).map(|(_, n)| n.origin.clone()).unwrap_or_else(|| m.origin.clone());
+    if pieces > n_layers {
+        let key = if chunks > 1 { "chunks" } else { "stages" };
+        return Err(p.cx.err(
+            &join(p.path, key),
+            &field_origin(key),
+            format!("stages x chunks = {pieces} pieces, but the model has only {n_layers} layers"),
+        ));
+    }
+    let split = match m.get("split") {
+        None => even_split(n_layers, pieces),
+        Some((path, node)) => {
+            let at = At { cx: p.cx, path: &path, node };
+            match &node.value {
+                Value::Str(s) if s == "even" => even_split(n_layers, pieces),
+                Value::Seq(items) => {
+                    if items.len() as u64 != pieces {
+                        return Err(at.err(format!(
+                            "has {} entries, but stages x chunks = {pieces} pieces need one each",
+                            items.len()
+                        )));
+                    }
+                    let mut split = Vec::with_capacity(items.len());
+                    for (i, item) in items.iter().enumerate() {
+                        let ip = format!("{path}.{i}");
+                        split.push(At { cx: p.cx, path: &ip, node: item }.u32(1)?);
+                    }
+                    let sum: u64 = split.iter().map(|&x| x as u64).sum();
+                    if sum != n_layers {
+                        return Err(
+                            at.err(format!("the pieces hold {sum} layers in all, but the model has {n_layers}"))
+                        );
+                    }
+                    split
+                }
+                other => {
+                    return Err(at.err(format!("expected `even` or a list of layer counts, found {}", other.kind())))
+                }
+            }
+        }
+    };
+    let shape = Shape::new(stages, micro_batches, chunks);
+    check_shape(schedule, shape).map_err(|e| {
+        let key = match e {
+            ScheduleError::ChunksNotSupported { .. } => "chunks",
+            ScheduleError::NotMultiple { .. } | ScheduleError::TooLarge(_) => "micro_batches",
+            _ => "schedule",
+        };
+        p.cx.err(&join(p.path, key), &field_origin(key), e.to_string())
+    })?;
+    Ok(Pipeline { stages, split, micro_batches, schedule, chunks })
+}
+
+/// `layers` split into `pieces` contiguous runs whose sizes differ by at most
+/// one; the earlier pieces take the extra layers.
+pub fn even_split(layers: u64, pieces: u64) -> Vec<u32> {
+    let base = layers / pieces;
+    let extra = layers % pieces;
+    (0..pieces).map(|i| (base + (i < extra) as u64) as u32).collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const EXAMPLE: &str = r#"
+title: "Four stages on one box"
+model:
+  layers:
+    - { name: embed, forward: 1.2ms, backward: 2.4ms, activation: 8MiB }
+    - { name: block, repeat: 6, forward: 1ms, backward: 2ms, activation: 8MiB }
+    - { name: head,  forward: 0.8ms, backward: 1.6ms, activation: 8MiB }
+cluster:
+  devices: 4
+  link: { latency: 5us, bandwidth: 64GB/s }
+pipeline:
+  stages: 4
+  split: [2, 2, 2, 2]
+  micro_batches: 8
+  schedule: 1f1b
+  chunks: 1
+"#;
+
+    fn parse_with(text: &str, sets: &[&str]) -> Result<Scenario, ScenarioError> {
+        let sets: Vec<String> = sets.iter().map(|s| s.to_string()).collect();
+        parse(text, "t.yaml", "t", &sets)
+    }
+
+    #[test]
+    fn reads_the_reference_example() {
+        let s = parse_with(EXAMPLE, &[]).unwrap();
+        assert_eq!(s.title, "Four stages on one box");
+        assert_eq!(s.layers.len(), 8);
+        assert_eq!(s.layers[0].forward_ns, 1_200_000);
+        assert_eq!(s.layers[3].name, "block.2");
+        assert_eq!(s.cluster.link, LinkParams { latency_ns: 5_000, bytes_per_s: 64_000_000_000 });
+        assert_eq!(s.pipeline.schedule, ScheduleKind::OneFOneB);
+        let pieces = s.pieces();
+        assert_eq!(pieces[0].forward_ns, 2_200_000);
+        assert_eq!(pieces[3].backward_ns, 3_600_000);
+        assert_eq!(pieces[3].send_bytes, 8 << 20);
+    }
+
+    #[test]
+    fn defaults_apply() {
+        let text = "model:\n  layers:\n    - {forward: 1ms, activation: 0B, repeat: 5}\ncluster: {devices: 2, link: {latency: 0ns, bandwidth: 1GB/s}}\npipeline: {stages: 2, micro_batches: 4, schedule: fill-drain}\n";
+        let s = parse_with(text, &[]).unwrap();
+        assert_eq!(s.title, "t");
+        assert_eq!(s.seed, 1);
+        assert_eq!(s.layers[0].backward_ns, 2_000_000, "backward defaults to 2 x forward");
+        assert_eq!(s.pipeline.split, vec![3, 2]);
+        assert_eq!(s.pipeline.chunks, 1);
+    }
+
+    #[test]
+    fn overrides_apply_before_validation() {
+        let s = parse_with(EXAMPLE, &["pipeline.micro_batches=16", "pipeline.split=even"]).unwrap();
+        assert_eq!(s.pipeline.micro_batches, 16);
+        let e = parse_with(EXAMPLE, &["pipeline.micro_batches=0"]).unwrap_err();
+        assert_eq!(e.key(), Some("pipeline.micro_batches"));
+        assert!(e.to_string().contains("--set pipeline.micro_batches=0"), "{e}");
+    }
+
+    fn refusal(sets: &[&str]) -> (String, String) {
+        let e = parse_with(EXAMPLE, sets).unwrap_err();
+        (e.key().unwrap_or("").to_string(), e.to_string())
+    }
+
+    #[test]
+    fn refusals_name_the_key() {
+        let cases: &[(&[&str], &str, &str)] = &[
+            (&["pipeline.split=[2, 2, 2, 1]"], "pipeline.split", "7 layers in all"),
+            (&["pipeline.split=[2, 2, 4]"], "pipeline.split", "3 entries"),
+            (&["pipeline.split=[0, 4, 2, 2]"], "pipeline.split.0", "at least 1"),
+            (&["pipeline.stages=5"], "pipeline.stages", "cluster.devices is 4"),
+            (&["cluster.devices=16", "pipeline.stages=9"], "pipeline.stages", "only 8 layers"),
+            (&["pipeline.schedule=zigzag"], "pipeline.schedule", "expected one of"),
+            (
+                &[
+                    "pipeline.schedule=interleaved",
+                    "pipeline.chunks=2",
+                    "pipeline.split=even",
+                    "pipeline.micro_batches=6",
+                ],
+                "pipeline.micro_batches",
+                "multiple of",
+            ),
+            (&["pipeline.chunks=2", "pipeline.split=even"], "pipeline.chunks", "interleaved"),
+            (&["cluster.link.bandwidth=0GB/s"], "cluster.link.bandwidth", "more than zero"),
+            (&["cluster.link.latency=5"], "cluster.link.latency", "needs a unit"),
+            (&["cluster.link.latency=-5us"], "cluster.link.latency", "number"),
+            (&["model.layers.0.forward=0ms"], "model.layers.0.forward", "more than zero"),
+            (&["model.layers.0.speed=fast"], "model.layers.0.speed", "unknown key"),
+            (&["pipeline.micro_batches=2.5"], "pipeline.micro_batches", "whole number"),
+            (&["model.layers=[]"], "model.layers", "at least one layer"),
+            (&["cluster.devices=0"], "cluster.devices", "at least 1"),
+        ];
+        for (sets, key, text) in cases {
+            let (k, msg) = refusal(sets);
+            assert_eq!(&k, key, "{sets:?}: {msg}");
+            assert!(msg.contains(text), "{sets:?}: {msg}");
+        }
+    }
+
+    #[test]
+    fn missing_and_unknown_keys_carry_line_and_column() {
+        let text = EXAMPLE.replace("  micro_batches: 8\n", "");
+        let e = parse_with(&text, &[]).unwrap_err();
+        assert_eq!(e.key(), Some("pipeline.micro_batches"));
+        assert!(e.to_string().starts_with("t.yaml:12:3: pipeline.micro_batches: missing"), "{e}");
+        let text = EXAMPLE.replace("  chunks: 1\n", "  chunk: 1\n");
+        let e = parse_with(&text, &[]).unwrap_err();
+        assert_eq!(e.to_string(), "t.yaml:16:3: pipeline.chunk: unknown key `chunk`; expected one of: stages, split, micro_batches, schedule, chunks");
+        let e = parse_with(&EXAMPLE.replace("cluster:", "klaster:"), &[]).unwrap_err();
+        assert_eq!(e.key(), Some("klaster"));
+    }
+
+    #[test]
+    fn even_split_spreads_the_remainder_first() {
+        assert_eq!(even_split(8, 4), vec![2, 2, 2, 2]);
+        assert_eq!(even_split(10, 4), vec![3, 3, 2, 2]);
+        assert_eq!(even_split(3, 3), vec![1, 1, 1]);
+    }
+}

@@ -1,0 +1,63 @@
+//! # baton: simulate pipeline-parallel training steps
+//!
+//! The library half of the `baton` command: it connects the concept crates.
+//! A [`Scenario`] (from `baton-scenario`) becomes a schedule plan
+//! (`baton-schedule`), per-stage costs and a link topology (`baton-link`); the
+//! executor (`baton-executor`) plays the step on the event engine
+//! (`baton-engine`), and `baton-report` turns the trace into numbers and charts.
+
+pub use baton_engine as engine;
+pub use baton_executor as executor;
+pub use baton_link as link;
+pub use baton_report as report;
+pub use baton_scenario as scenario;
+pub use baton_schedule as schedule;
+
+use baton_engine::SimDuration;
+use baton_executor::{ExecError, StageCost, Trace};
+use baton_link::{LinkSpec, Topology};
+use baton_report::{Labels, Report};
+use baton_scenario::Scenario;
+use thiserror::Error;
+
+/// A simulated step and its report.
+#[derive(Clone, Debug)]
+pub struct Outcome {
+    pub trace: Trace,
+    pub report: Report,
+}
+
+#[derive(Debug, Error)]
+pub enum SimulateError {
+    #[error("cannot build the schedule: {0}")]
+    Schedule(#[from] baton_schedule::ScheduleError),
+    #[error("cannot simulate: {0}")]
+    Exec(#[from] ExecError),
+}
+
+/// Per-virtual-stage costs of a scenario's split.
+pub fn stage_costs(s: &Scenario) -> Vec<StageCost> {
+    s.pieces()
+        .iter()
+        .map(|p| StageCost {
+            forward: SimDuration(p.forward_ns),
+            backward: SimDuration(p.backward_ns),
+            send_bytes: p.send_bytes,
+        })
+        .collect()
+}
+
+/// The scenario's link topology: every ordered pair of devices joined directly.
+pub fn topology(s: &Scenario) -> Topology {
+    let l = s.cluster.link;
+    Topology::full_mesh(s.cluster.devices, LinkSpec { latency_ns: l.latency_ns, bytes_per_s: l.bytes_per_s })
+}
+
+/// Simulates one training step of `s` and reports on it.
+pub fn simulate(s: &Scenario) -> Result<Outcome, SimulateError> {
+    let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
+    let placement: Vec<u32> = (0..s.pipeline.stages).collect();
+    let trace = baton_executor::simulate(&plan, &stage_costs(s), topology(s), &placement)?;
+    let report = baton_report::build(&trace, &Labels { title: s.title.clone(), seed: s.seed });
+    Ok(Outcome { trace, report })
+}
