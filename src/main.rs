@@ -116,6 +116,12 @@ impl Pending {
     fn commit(self) -> Result<()> {
         let dest = self.dest;
         self.tmp.as_file().sync_all().with_context(|| format!("cannot write {}", dest.display()))?;
+        // Temporary files are private; a report is an ordinary file.
+        #[cfg(unix)]
+        {
+            use std::os::unix::fs::PermissionsExt;
+            let _ = self.tmp.as_file().set_permissions(std::fs::Permissions::from_mode(0o644));
+        }
         self.tmp.persist(&dest).map_err(|e| e.error).with_context(|| format!("cannot write {}", dest.display()))?;
         Ok(())
     }

@@ -1,0 +1,210 @@
+//! The `baton` command as a user runs it: outputs, exit statuses, refusals.
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+use quick_xml::events::Event;
+use quick_xml::Reader;
+
+fn baton(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_baton")).args(args).current_dir(env!("CARGO_MANIFEST_DIR")).output().unwrap()
+}
+
+fn text(b: &[u8]) -> String {
+    String::from_utf8_lossy(b).into_owned()
+}
+
+fn tmp() -> tempfile::TempDir {
+    tempfile::tempdir().unwrap()
+}
+
+fn files_in(dir: &Path) -> Vec<PathBuf> {
+    std::fs::read_dir(dir).unwrap().map(|e| e.unwrap().path()).collect()
+}
+
+const DEMO: &str = "scenarios/unbalanced-split.yaml";
+
+#[test]
+fn run_writes_all_outputs() {
+    let dir = tmp();
+    let (svg, json, csv) = (dir.path().join("t.svg"), dir.path().join("r.json"), dir.path().join("t.csv"));
+    let out = baton(&["run", DEMO, "--svg", svg.to_str().unwrap(), "--json", json.to_str().unwrap(), "--trace", csv.to_str().unwrap()]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let stdout = text(&out.stdout);
+    for needle in ["step time", "bubble fraction", "peak activations", "longest idle gaps", "seed 1"] {
+        assert!(stdout.contains(needle), "summary lacks {needle}: {stdout}");
+    }
+
+    let v: serde_json::Value = serde_json::from_slice(&std::fs::read(&json).unwrap()).unwrap();
+    assert!(v["step_time_ms"].as_f64().unwrap() > 0.0);
+    assert!(v["bubble_fraction"].as_f64().unwrap() > 0.0);
+    assert_eq!(v["seed"], 1);
+    let devices = v["devices"].as_array().unwrap();
+    assert_eq!(devices.len(), 4);
+    for key in ["device", "busy_ms", "idle_ms", "bubble_fraction", "peak_activations"] {
+        assert!(!devices[0][key].is_null(), "devices[].{key}");
+    }
+    let gaps = v["gaps"].as_array().unwrap();
+    assert!(!gaps.is_empty());
+    for key in ["device", "start_ms", "end_ms", "cause"] {
+        assert!(!gaps[0][key].is_null(), "gaps[].{key}");
+    }
+
+    let trace = std::fs::read_to_string(&csv).unwrap();
+    let mut lines = trace.lines();
+    assert_eq!(lines.next(), Some("device,kind,micro_batch,stage,start_ns,end_ns"));
+    let rows: Vec<&str> = lines.collect();
+    // 4 devices x 8 micro-batches x 2 ops, and 3 boundaries x 8 x 2 sends.
+    assert_eq!(rows.len(), 64 + 48);
+    assert_eq!(rows.iter().filter(|r| r.contains(",send,")).count(), 48);
+
+    let svg_text = std::fs::read_to_string(&svg).unwrap();
+    let titles = check_xml(&svg_text);
+    assert!(titles >= 64, "every bar has a tooltip: {titles}");
+    assert!(svg_text.contains("Harbor-7") && svg_text.contains("time (ms)") && svg_text.contains("device 3"));
+    assert!(svg_text.contains("step time") && svg_text.contains("bubble"));
+    assert!(files_in(dir.path()).len() == 3, "no temporary files left behind");
+}
+
+/// Parses the whole document as XML; returns the number of `<title>` elements.
+fn check_xml(svg: &str) -> usize {
+    let mut reader = Reader::from_str(svg);
+    let mut titles = 0;
+    loop {
+        match reader.read_event() {
+            Ok(Event::Eof) => break,
+            Ok(Event::Start(e)) if e.name().as_ref() == b"title" => titles += 1,
+            Ok(_) => {}
+            Err(e) => panic!("invalid XML at {}: {e}", reader.buffer_position()),
+        }
+    }
+    titles
+}
+
+#[test]
+fn json_to_stdout_and_overrides() {
+    let out = baton(&["run", DEMO, "--json", "-", "--set", "pipeline.micro_batches=16", "--set", "pipeline.schedule=fill-drain"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).expect("stdout is exactly the JSON report");
+    assert_eq!(v["micro_batches"], 16);
+    assert_eq!(v["schedule"], "fill-drain");
+    assert_eq!(v["devices"][0]["peak_activations"], 16);
+    assert!(text(&out.stderr).contains("step time"), "summary goes to stderr");
+}
+
+#[test]
+fn invalid_scenarios_exit_2_and_write_nothing() {
+    let dir = tmp();
+    let svg = dir.path().join("t.svg");
+    let json = dir.path().join("r.json");
+    let cases: &[(&[&str], &str)] = &[
+        (&["--set", "pipeline.split=[3, 3, 3, 2]"], "pipeline.split"),
+        (&["--set", "pipeline.stages=5"], "pipeline.stages"),
+        (&["--set", "cluster.link.latency=5"], "cluster.link.latency"),
+        (&["--set", "pipeline.colour=red"], "pipeline.colour"),
+        (&["--set", "pipeline.micro_batches=-1"], "pipeline.micro_batches"),
+        (&["--set", "nonsense"], "KEY=VALUE"),
+    ];
+    for (extra, key) in cases {
+        let mut args = vec!["run", DEMO, "--svg", svg.to_str().unwrap(), "--json", json.to_str().unwrap()];
+        args.extend_from_slice(extra);
+        let out = baton(&args);
+        assert_eq!(out.status.code(), Some(2), "{extra:?}");
+        assert!(text(&out.stderr).contains(key), "{extra:?}: {}", text(&out.stderr));
+        assert!(files_in(dir.path()).is_empty(), "{extra:?} left a file");
+    }
+}
+
+#[test]
+fn syntax_errors_give_line_and_column() {
+    let dir = tmp();
+    let bad = dir.path().join("bad.yaml");
+    std::fs::write(&bad, "title: x\nmodel:\n  layers: [ {forward: 1ms\ncluster: {}\n").unwrap();
+    let out = baton(&["run", bad.to_str().unwrap()]);
+    assert_eq!(out.status.code(), Some(2));
+    let err = text(&out.stderr);
+    assert!(err.contains("bad.yaml:") && err.contains("YAML syntax error"), "{err}");
+    let missing = baton(&["run", "no/such/file.yaml"]);
+    assert_eq!(missing.status.code(), Some(2));
+    assert!(text(&missing.stderr).contains("cannot read no/such/file.yaml"));
+}
+
+#[test]
+fn unwritable_output_exits_1_without_partial_files() {
+    let dir = tmp();
+    let json = dir.path().join("r.json");
+    let out = baton(&["run", DEMO, "--json", json.to_str().unwrap(), "--svg", "/no/such/dir/t.svg"]);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(text(&out.stderr).contains("/no/such/dir/t.svg"));
+    assert!(files_in(dir.path()).is_empty(), "nothing is written when one output fails");
+}
+
+#[test]
+fn usage_errors_exit_2_and_help_has_examples() {
+    assert_eq!(baton(&["run"]).status.code(), Some(2));
+    assert_eq!(baton(&["frobnicate"]).status.code(), Some(2));
+    let help = baton(&["run", "--help"]);
+    assert_eq!(help.status.code(), Some(0));
+    let h = text(&help.stdout);
+    for needle in ["--svg", "--json", "--trace", "--set", "Examples", "pipeline.micro_batches=16"] {
+        assert!(h.contains(needle), "run --help lacks {needle}");
+    }
+    assert!(text(&baton(&["--help"]).stdout).contains("Examples"));
+}
+
+#[test]
+fn large_chart_drops_labels_that_do_not_fit() {
+    // 8 devices x 64 micro-batches: every label drawn must fit inside its bar,
+    // and bars of one lane must not overlap.
+    let dir = tmp();
+    let svg = dir.path().join("big.svg");
+    let out = baton(&[
+        "run",
+        "scenarios/interleaved.yaml",
+        "--svg",
+        svg.to_str().unwrap(),
+        "--set",
+        "cluster.devices=8",
+        "--set",
+        "pipeline.stages=8",
+        "--set",
+        "pipeline.micro_batches=64",
+        "--set",
+        "pipeline.schedule=1f1b",
+        "--set",
+        "pipeline.chunks=1",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let doc = std::fs::read_to_string(&svg).unwrap();
+    assert!(check_xml(&doc) >= 8 * 128);
+    let attr = |s: &str, name: &str| -> f64 {
+        let key = format!(" {name}=\"");
+        let i = s.find(&key).unwrap() + key.len();
+        s[i..].split('"').next().unwrap().parse().unwrap()
+    };
+    let mut labels = 0;
+    let mut lanes: std::collections::BTreeMap<i64, Vec<(f64, f64)>> = Default::default();
+    for bar in doc.split("<g><title>").skip(1) {
+        let bar = &bar[..bar.find("</g>").unwrap()];
+        let rect = &bar[bar.find("<rect").unwrap()..];
+        let (x, w, y) = (attr(rect, "x"), attr(rect, "width"), attr(rect, "y"));
+        lanes.entry(y.round() as i64).or_default().push((x, w));
+        if let Some(t) = bar.find("<text") {
+            let label = &bar[t..];
+            let digits = label[label.find('>').unwrap() + 1..label.find("</text>").unwrap()].len();
+            // 10 px font: a digit is at most 0.62 em wide.
+            assert!(digits as f64 * 6.2 <= w, "label of {digits} digits overprints a {w:.1} px bar");
+            let cx = attr(label, "x");
+            assert!((cx - (x + w / 2.0)).abs() < 0.02, "label centred on its bar");
+            labels += 1;
+        }
+    }
+    assert_eq!(lanes.len(), 8);
+    for bars in lanes.values_mut() {
+        bars.sort_by(|a, b| a.0.partial_cmp(&b.0).unwrap());
+        for w in bars.windows(2) {
+            assert!(w[0].0 + w[0].1 <= w[1].0 + 0.02, "bars overlap");
+        }
+    }
+    assert!(labels > 0, "labels that fit are kept");
+}
