@@ -57,7 +57,7 @@ pub fn topology(s: &Scenario) -> Topology {
 pub fn simulate(s: &Scenario) -> Result<Outcome, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
     let placement: Vec<u32> = (0..s.pipeline.stages).collect();
-    let trace = baton_executor::simulate(&plan, &stage_costs(s), topology(s), &placement)?;
+    let trace = baton_executor::simulate(plan, &stage_costs(s), topology(s), &placement)?;
     let report = baton_report::build(&trace, &Labels { title: s.title.clone(), seed: s.seed });
     Ok(Outcome { trace, report })
 }

@@ -327,8 +327,8 @@ impl Model for Exec<'_> {
 ///
 /// `costs[s]` is virtual stage `s`'s cost; `placement[d]` is the topology
 /// device that pipeline device `d` runs on (identity for a flat cluster).
-pub fn simulate(plan: &Plan, costs: &[StageCost], topology: Topology, placement: &[u32]) -> Result<Trace, ExecError> {
-    validate(plan)?;
+pub fn simulate(plan: Plan, costs: &[StageCost], topology: Topology, placement: &[u32]) -> Result<Trace, ExecError> {
+    validate(&plan)?;
     let shape = plan.shape;
     let n_stages = shape.virtual_stages() as usize;
     let p = shape.stages as usize;
@@ -352,7 +352,7 @@ pub fn simulate(plan: &Plan, costs: &[StageCost], topology: Topology, placement:
     let link_names =
         (0..topology.link_count()).map(|l| topology.link_name(baton_link::LinkId(l as u32)).to_string()).collect();
     let mut exec = Exec {
-        plan,
+        plan: &plan,
         costs,
         placement,
         net: Network::new(topology),
@@ -384,16 +384,9 @@ pub fn simulate(plan: &Plan, costs: &[StageCost], topology: Topology, placement:
             op_index[k * cells + r.op.micro_batch as usize * n_stages + r.op.stage as usize] = (d as u32, i as u32);
         }
     }
-    Ok(Trace {
-        plan: plan.clone(),
-        ops: exec.ops,
-        transfers: exec.transfers,
-        link_stats: exec.net.stats().to_vec(),
-        link_names,
-        events: sched.delivered(),
-        op_index,
-        transfer_index: exec.transfer_index,
-    })
+    let link_stats = exec.net.stats().to_vec();
+    let Exec { ops, transfers, transfer_index, .. } = exec;
+    Ok(Trace { plan, ops, transfers, link_stats, link_names, events: sched.delivered(), op_index, transfer_index })
 }
 
 #[cfg(test)]
@@ -417,7 +410,7 @@ mod tests {
     #[test]
     fn single_device_runs_back_to_back() {
         let plan = build(ScheduleKind::OneFOneB, Shape::new(1, 3, 1)).unwrap();
-        let tr = simulate(&plan, &uniform(1, 10, 20, 0), ideal(1), &[0]).unwrap();
+        let tr = simulate(plan.clone(), &uniform(1, 10, 20, 0), ideal(1), &[0]).unwrap();
         assert_eq!(tr.step_time(), SimDuration(90));
         assert!(tr.transfers.is_empty());
     }
@@ -428,7 +421,7 @@ mod tests {
         // Dev0: F0 0-10, F1 10-20; dev1: F0 10-20, F1 20-30, B0 30-50, B1 50-70;
         // dev0: B0 50-70, B1 70-90. Step 90.
         let plan = build(ScheduleKind::FillDrain, Shape::new(2, 2, 1)).unwrap();
-        let tr = simulate(&plan, &uniform(2, 10, 20, 0), ideal(2), &identity(2)).unwrap();
+        let tr = simulate(plan.clone(), &uniform(2, 10, 20, 0), ideal(2), &identity(2)).unwrap();
         let starts: Vec<u64> = tr.ops[0].iter().map(|r| r.start.0).collect();
         assert_eq!(starts, vec![0, 10, 50, 70]);
         let starts: Vec<u64> = tr.ops[1].iter().map(|r| r.start.0).collect();
@@ -447,7 +440,7 @@ mod tests {
         // 1000 bytes at 1 GB/s = 1000 ns, plus 500 ns latency, per hop.
         let plan = build(ScheduleKind::OneFOneB, Shape::new(2, 1, 1)).unwrap();
         let topo = Topology::full_mesh(2, LinkSpec { latency_ns: 500, bytes_per_s: 1_000_000_000 });
-        let tr = simulate(&plan, &uniform(2, 100, 200, 1000), topo, &identity(2)).unwrap();
+        let tr = simulate(plan.clone(), &uniform(2, 100, 200, 1000), topo, &identity(2)).unwrap();
         // F0@0 0-100, send 100-1600, F0@1 1600-1700, B0@1 1700-1900, send 1900-3400, B0@0 3400-3600.
         assert_eq!(tr.step_time(), SimDuration(3600));
         assert_eq!(tr.transfers[0].sent, SimTime(1100));
@@ -458,11 +451,11 @@ mod tests {
     fn errors_on_mismatched_inputs() {
         let plan = build(ScheduleKind::OneFOneB, Shape::new(2, 2, 1)).unwrap();
         assert_eq!(
-            simulate(&plan, &uniform(3, 1, 1, 0), ideal(2), &identity(2)).unwrap_err(),
+            simulate(plan.clone(), &uniform(3, 1, 1, 0), ideal(2), &identity(2)).unwrap_err(),
             ExecError::CostCount { found: 3, expected: 2 }
         );
         assert!(matches!(
-            simulate(&plan, &uniform(2, 1, 1, 0), ideal(2), &[0, 5]),
+            simulate(plan.clone(), &uniform(2, 1, 1, 0), ideal(2), &[0, 5]),
             Err(ExecError::PlacementRange { .. })
         ));
     }
@@ -470,7 +463,7 @@ mod tests {
     #[test]
     fn one_device_with_chunks_moves_nothing() {
         let plan = build(ScheduleKind::Interleaved, Shape::new(1, 2, 3)).unwrap();
-        let tr = simulate(&plan, &uniform(3, 10, 20, 99), ideal(1), &[0]).unwrap();
+        let tr = simulate(plan.clone(), &uniform(3, 10, 20, 99), ideal(1), &[0]).unwrap();
         assert!(tr.transfers.is_empty());
         assert_eq!(tr.step_time(), SimDuration(2 * 3 * 30));
     }

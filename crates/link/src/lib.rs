@@ -123,6 +123,11 @@ impl Topology {
         src as usize * self.devices as usize + dst as usize
     }
 
+    fn route_bounds(&self, src: u32, dst: u32) -> (u32, u32) {
+        let p = self.pair(src, dst);
+        (self.route_start[p], self.route_start[p + 1])
+    }
+
     /// The links from `src` to `dst`, in order (empty when `src == dst`).
     pub fn route(&self, src: u32, dst: u32) -> &[LinkId] {
         let p = self.pair(src, dst);
@@ -157,6 +162,8 @@ struct Flow {
     bytes: u64,
     src: u32,
     dst: u32,
+    /// The route's links are `topo.route_links[route.0 .. route.1]`.
+    route: (u32, u32),
     live: bool,
     mark: u32,
 }
@@ -178,6 +185,8 @@ pub struct Network {
     /// Capacity in bytes per nanosecond.
     cap: Vec<f64>,
     on_link: Vec<Vec<u32>>,
+    /// Flows on each link whose route has more than one link.
+    multi_hop: Vec<u32>,
     link_mark: Vec<u32>,
     flows: Vec<Flow>,
     free: Vec<u32>,
@@ -213,6 +222,7 @@ impl Network {
             topo,
             cap,
             on_link: vec![Vec::new(); n],
+            multi_hop: vec![0; n],
             link_mark: vec![0; n],
             flows: Vec::new(),
             free: Vec::new(),
@@ -251,7 +261,8 @@ impl Network {
     /// links with) in `sched`. When the deadline fires, call [`Network::finish`].
     pub fn start<E>(&mut self, sched: &mut Scheduler<E, TransferId>, src: u32, dst: u32, bytes: u64) -> TransferId {
         let now = sched.now().as_ns();
-        let flow = Flow { remaining: bytes as f64, rate: 0.0, last_ns: now, bytes, src, dst, live: true, mark: 0 };
+        let route = self.topo.route_bounds(src, dst);
+        let flow = Flow { remaining: bytes as f64, rate: 0.0, last_ns: now, bytes, src, dst, route, live: true, mark: 0 };
         let id = match self.free.pop() {
             Some(i) => {
                 self.flows[i as usize] = flow;
@@ -264,7 +275,7 @@ impl Network {
         };
         self.in_flight += 1;
         let tid = TransferId(id);
-        let route_len = self.topo.route(src, dst).len();
+        let route_len = (route.1 - route.0) as usize;
         if bytes == 0 || route_len == 0 {
             // Nothing to share: the last byte leaves at once.
             self.flows[id as usize].rate = f64::INFINITY;
@@ -272,8 +283,9 @@ impl Network {
             return tid;
         }
         for i in 0..route_len {
-            let l = self.topo.route(src, dst)[i].0 as usize;
+            let l = self.topo.route_links[route.0 as usize + i].0 as usize;
             self.on_link[l].push(id);
+            self.multi_hop[l] += (route_len > 1) as u32;
             let st = &mut self.stats[l];
             if st.active == 0 {
                 st.busy_since = now;
@@ -299,12 +311,14 @@ impl Network {
         if on_links {
             // Re-rate the neighbours first, while this flow still links them.
             self.rerate(sched, id.0, false);
-            let route_len = self.topo.route(src, dst).len();
+            let route = self.flows[i].route;
+            let route_len = (route.1 - route.0) as usize;
             for r in 0..route_len {
-                let l = self.topo.route(src, dst)[r].0 as usize;
+                let l = self.topo.route_links[route.0 as usize + r].0 as usize;
                 if let Some(pos) = self.on_link[l].iter().position(|&x| x == id.0) {
                     self.on_link[l].swap_remove(pos);
                 }
+                self.multi_hop[l] -= (route_len > 1) as u32;
                 let st = &mut self.stats[l];
                 st.bytes += bytes;
                 st.active -= 1;
@@ -319,12 +333,48 @@ impl Network {
         Finished { src, dst, bytes, delivered_at: SimTime(now) + self.topo.route_latency(src, dst) }
     }
 
+    /// The common case: every flow on link `l` crosses only `l`, so max-min
+    /// fairness is an equal share of its capacity.
+    fn rerate_one_link<E>(&mut self, sched: &mut Scheduler<E, TransferId>, l: usize, root: u32, include_root: bool) {
+        let now = sched.now().as_ns();
+        let members = self.on_link[l].len() - (!include_root) as usize;
+        if members == 0 {
+            return;
+        }
+        let share = self.cap[l] / members as f64;
+        for idx in 0..self.on_link[l].len() {
+            let g = self.on_link[l][idx];
+            if g == root && !include_root {
+                continue;
+            }
+            let fl = &mut self.flows[g as usize];
+            if fl.rate.is_finite() && fl.rate > 0.0 {
+                fl.remaining = (fl.remaining - fl.rate * (now - fl.last_ns) as f64).max(0.0);
+            }
+            fl.last_ns = now;
+            if fl.rate == share && g != root {
+                continue;
+            }
+            fl.rate = share;
+            let at = now.saturating_add(ceil_ns(fl.remaining / share));
+            sched.set_deadline(TransferId(g), SimTime(at));
+        }
+    }
+
     /// Recomputes the max-min fair rates of the component of flows connected
     /// to `root` through shared links. With `include_root == false` the root is
     /// leaving: it is walked through (it connects the component) but gets no
     /// bandwidth.
     fn rerate<E>(&mut self, sched: &mut Scheduler<E, TransferId>, root: u32, include_root: bool) {
         let now = sched.now().as_ns();
+        let route = self.flows[root as usize].route;
+        if route.1 - route.0 == 1 {
+            let l = self.topo.route_links[route.0 as usize].0;
+            if self.multi_hop[l as usize] == 0 {
+                self.rerate_one_link(sched, l as usize, root, include_root);
+                return;
+            }
+        }
         self.epoch = self.epoch.wrapping_add(1);
         if self.epoch == 0 {
             // Marks wrapped around: clear them so stale marks cannot match.
@@ -345,8 +395,8 @@ impl Network {
         while head < comp_flows.len() {
             let f = comp_flows[head] as usize;
             head += 1;
-            let (src, dst) = (self.flows[f].src, self.flows[f].dst);
-            for &LinkId(l) in self.topo.route(src, dst) {
+            let route = self.flows[f].route;
+            for &LinkId(l) in &self.topo.route_links[route.0 as usize..route.1 as usize] {
                 let l = l as usize;
                 if self.link_mark[l] == epoch {
                     continue;
@@ -405,11 +455,11 @@ impl Network {
                 if fl.mark != epoch {
                     continue;
                 }
-                let (src, dst) = (fl.src, fl.dst);
+                let route = fl.route;
                 self.flows[g as usize].mark = epoch ^ FIXED;
                 left -= 1;
                 new_rates.push((g, share));
-                for &LinkId(k) in self.topo.route(src, dst) {
+                for &LinkId(k) in &self.topo.route_links[route.0 as usize..route.1 as usize] {
                     self.residual[k as usize] -= share;
                     self.unfixed[k as usize] -= 1;
                 }

@@ -400,7 +400,7 @@ mod tests {
         let pl = plan(kind, Shape::new(p, m, 1)).unwrap();
         let costs =
             vec![StageCost { forward: SimDuration(f), backward: SimDuration(b), send_bytes: bytes }; p as usize];
-        let tr = simulate(&pl, &costs, Topology::full_mesh(p, link), &(0..p).collect::<Vec<_>>()).unwrap();
+        let tr = simulate(pl, &costs, Topology::full_mesh(p, link), &(0..p).collect::<Vec<_>>()).unwrap();
         let rep = build(&tr, &Labels { title: "t".into(), seed: 7 });
         (tr, rep)
     }
