@@ -14,7 +14,7 @@ pub use baton_scenario as scenario;
 pub use baton_schedule as schedule;
 
 use baton_engine::SimDuration;
-use baton_executor::{ExecError, StageCost, Trace};
+use baton_executor::{ExecError, StageCost, Trace, Variation};
 use baton_link::{LinkSpec, Topology};
 use baton_report::{Labels, Report};
 use baton_scenario::Scenario;
@@ -57,7 +57,9 @@ pub fn topology(s: &Scenario) -> Topology {
 pub fn simulate(s: &Scenario) -> Result<Outcome, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
     let placement: Vec<u32> = (0..s.pipeline.stages).collect();
-    let trace = baton_executor::simulate(plan, &stage_costs(s), topology(s), &placement)?;
-    let report = baton_report::build(&trace, &Labels { title: s.title.clone(), seed: s.seed });
+    let variation = Variation { jitter: s.cluster.jitter, seed: s.seed };
+    let trace = baton_executor::simulate_with(plan, &stage_costs(s), topology(s), &placement, variation)?;
+    let report =
+        baton_report::build(&trace, &Labels { title: s.title.clone(), seed: s.seed, jitter: s.cluster.jitter });
     Ok(Outcome { trace, report })
 }

@@ -28,7 +28,16 @@ const DEMO: &str = "scenarios/unbalanced-split.yaml";
 fn run_writes_all_outputs() {
     let dir = tmp();
     let (svg, json, csv) = (dir.path().join("t.svg"), dir.path().join("r.json"), dir.path().join("t.csv"));
-    let out = baton(&["run", DEMO, "--svg", svg.to_str().unwrap(), "--json", json.to_str().unwrap(), "--trace", csv.to_str().unwrap()]);
+    let out = baton(&[
+        "run",
+        DEMO,
+        "--svg",
+        svg.to_str().unwrap(),
+        "--json",
+        json.to_str().unwrap(),
+        "--trace",
+        csv.to_str().unwrap(),
+    ]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let stdout = text(&out.stdout);
     for needle in ["step time", "bubble fraction", "peak activations", "longest idle gaps", "seed 1"] {
@@ -83,7 +92,16 @@ fn check_xml(svg: &str) -> usize {
 
 #[test]
 fn json_to_stdout_and_overrides() {
-    let out = baton(&["run", DEMO, "--json", "-", "--set", "pipeline.micro_batches=16", "--set", "pipeline.schedule=fill-drain"]);
+    let out = baton(&[
+        "run",
+        DEMO,
+        "--json",
+        "-",
+        "--set",
+        "pipeline.micro_batches=16",
+        "--set",
+        "pipeline.schedule=fill-drain",
+    ]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).expect("stdout is exactly the JSON report");
     assert_eq!(v["micro_batches"], 16);
@@ -207,4 +225,24 @@ fn large_chart_drops_labels_that_do_not_fit() {
         }
     }
     assert!(labels > 0, "labels that fit are kept");
+}
+
+#[test]
+fn jitter_follows_the_seed() {
+    let step = |sets: &[&str]| -> f64 {
+        let mut args = vec!["run", DEMO, "--json", "-"];
+        for s in sets {
+            args.extend_from_slice(&["--set", s]);
+        }
+        let out = baton(&args);
+        assert!(out.status.success(), "{}", text(&out.stderr));
+        let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+        v["step_time_ms"].as_f64().unwrap()
+    };
+    let plain = step(&[]);
+    let a = step(&["cluster.jitter=0.1", "seed=11"]);
+    assert_eq!(a, step(&["cluster.jitter=0.1", "seed=11"]), "same seed, same step");
+    assert_ne!(a, step(&["cluster.jitter=0.1", "seed=12"]), "the seed matters");
+    assert_ne!(a, plain);
+    assert_eq!(plain, step(&["seed=12"]), "without jitter the seed changes nothing");
 }

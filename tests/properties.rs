@@ -24,15 +24,8 @@ fn case() -> impl Strategy<Value = Case> {
             let (m, v) = if schedule == "interleaved" { (p * mult, v) } else { (p * mult + extra, 1) };
             let pieces = (p * v) as usize;
             // Forward 1..200 us, backward 0..400 us, activation 0..8 MB.
-            prop::collection::vec((1u32..200, 0u32..400, 0u32..8_000), pieces..pieces + 6).prop_map(move |layers| Case {
-                p,
-                m,
-                v,
-                schedule,
-                layers,
-                latency_ns,
-                gbps,
-            })
+            prop::collection::vec((1u32..200, 0u32..400, 0u32..8_000), pieces..pieces + 6)
+                .prop_map(move |layers| Case { p, m, v, schedule, layers, latency_ns, gbps })
         },
     )
 }

@@ -9,7 +9,17 @@ use baton::scenario::{parse, Scenario};
 
 /// A scenario of `layers` identical layers (forward `f_ns`, backward `b_ns`),
 /// split evenly, on a flat cluster.
-fn uniform(p: u32, m: u32, v: u32, schedule: &str, layers: u32, f_ns: u64, b_ns: u64, link: &str, act: &str) -> Scenario {
+fn uniform(
+    p: u32,
+    m: u32,
+    v: u32,
+    schedule: &str,
+    layers: u32,
+    f_ns: u64,
+    b_ns: u64,
+    link: &str,
+    act: &str,
+) -> Scenario {
     let text = format!(
         "title: check\nmodel:\n  layers:\n    - {{ name: l, repeat: {layers}, forward: {f_ns}ns, backward: {b_ns}ns, activation: {act} }}\n\
          cluster:\n  devices: {p}\n  link: {link}\n\
@@ -128,6 +138,7 @@ fn link_latency_and_bandwidth_worked_by_hand() {
     let ends: Vec<u64> = out.trace.transfers.iter().map(|t| t.end.as_ns() / 1_000).collect();
     assert_eq!(ends, vec![4_010, 4_110, 8_020, 8_320]);
     assert_eq!(out.report.step_time_ns, 8_520_000);
-    let d0: Vec<(u64, u64)> = out.trace.ops[0].iter().map(|r| (r.start.as_ns() / 1_000, r.end.as_ns() / 1_000)).collect();
+    let d0: Vec<(u64, u64)> =
+        out.trace.ops[0].iter().map(|r| (r.start.as_ns() / 1_000, r.end.as_ns() / 1_000)).collect();
     assert_eq!(d0, vec![(0, 100), (100, 200), (8_020, 8_220), (8_320, 8_520)]);
 }

@@ -163,7 +163,7 @@ impl Trace {
 }
 
 /// Why a step could not be simulated.
-#[derive(Debug, Error, PartialEq, Eq)]
+#[derive(Debug, Error, PartialEq)]
 pub enum ExecError {
     #[error("invalid schedule: {0}")]
     Schedule(#[from] ScheduleError),
@@ -173,6 +173,8 @@ pub enum ExecError {
     PlacementCount { found: usize, expected: usize },
     #[error("placement names device {device}, but the topology has {devices}")]
     PlacementRange { device: u32, devices: u32 },
+    #[error("jitter must be at least 0 and below 1, found {0}")]
+    Jitter(f64),
     #[error("the step stopped with operations left: device {device} waits at {op}")]
     Stuck { device: u32, op: Op },
 }
@@ -199,6 +201,8 @@ struct Exec<'a> {
     transfers: Vec<TransferRecord>,
     transfer_index: Vec<u32>,
     in_flight: Vec<u32>,
+    /// Per device and op: the factor its compute time is scaled by.
+    jitter: Option<Vec<Vec<f64>>>,
 }
 
 impl Exec<'_> {
@@ -223,10 +227,13 @@ impl Exec<'_> {
             return;
         }
         let cost = &self.costs[op.stage as usize];
-        let dur = match op.kind {
+        let mut dur = match op.kind {
             OpKind::Forward => cost.forward,
             OpKind::Backward => cost.backward,
         };
+        if let Some(factors) = &self.jitter {
+            dur = SimDuration((dur.as_ns() as f64 * factors[d][self.next[d]]).round() as u64);
+        }
         self.busy[d] = true;
         let now = sched.now();
         self.ops[d].push(OpRecord { op, start: now, end: now + dur });
@@ -323,12 +330,44 @@ impl Model for Exec<'_> {
     }
 }
 
-/// Simulates one step of `plan`.
+/// How compute times vary from op to op.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct Variation {
+    /// Each op's compute time is scaled by a factor drawn uniformly from
+    /// `[1 - jitter, 1 + jitter]`; 0 means every op takes exactly its cost.
+    pub jitter: f64,
+    /// Seed of the generator the factors are drawn from, in plan order
+    /// (device 0's ops in order, then device 1's, ...), so the draws do not
+    /// depend on timing.
+    pub seed: u64,
+}
+
+/// Simulates one step of `plan` with every op taking exactly its cost.
 ///
 /// `costs[s]` is virtual stage `s`'s cost; `placement[d]` is the topology
 /// device that pipeline device `d` runs on (identity for a flat cluster).
 pub fn simulate(plan: Plan, costs: &[StageCost], topology: Topology, placement: &[u32]) -> Result<Trace, ExecError> {
+    simulate_with(plan, costs, topology, placement, Variation::default())
+}
+
+/// [`simulate`] with compute times varied as `variation` says.
+pub fn simulate_with(
+    plan: Plan,
+    costs: &[StageCost],
+    topology: Topology,
+    placement: &[u32],
+    variation: Variation,
+) -> Result<Trace, ExecError> {
     validate(&plan)?;
+    if !(0.0..1.0).contains(&variation.jitter) {
+        return Err(ExecError::Jitter(variation.jitter));
+    }
+    let jitter = (variation.jitter > 0.0).then(|| {
+        use rand::RngExt;
+        let mut rng = baton_engine::seeded_rng(variation.seed);
+        let j = variation.jitter;
+        plan.per_device.iter().map(|ops| ops.iter().map(|_| rng.random_range(1.0 - j..=1.0 + j)).collect()).collect()
+    });
     let shape = plan.shape;
     let n_stages = shape.virtual_stages() as usize;
     let p = shape.stages as usize;
@@ -366,6 +405,7 @@ pub fn simulate(plan: Plan, costs: &[StageCost], topology: Topology, placement: 
         transfers: Vec::with_capacity(2 * cells),
         transfer_index: vec![NONE; 2 * cells],
         in_flight: Vec::new(),
+        jitter,
     };
     let mut sched = Scheduler::with_capacity(2 * p + 16);
     for d in 0..p {
@@ -457,6 +497,30 @@ mod tests {
         assert!(matches!(
             simulate(plan.clone(), &uniform(2, 1, 1, 0), ideal(2), &[0, 5]),
             Err(ExecError::PlacementRange { .. })
+        ));
+    }
+
+    #[test]
+    fn jitter_varies_times_within_bounds_and_repeats_with_the_seed() {
+        let plan = build(ScheduleKind::OneFOneB, Shape::new(3, 6, 1)).unwrap();
+        let run = |jitter, seed| {
+            simulate_with(plan.clone(), &uniform(3, 1000, 2000, 0), ideal(3), &identity(3), Variation { jitter, seed })
+                .unwrap()
+        };
+        let exact = simulate(plan.clone(), &uniform(3, 1000, 2000, 0), ideal(3), &identity(3)).unwrap();
+        assert_eq!(run(0.0, 5).ops, exact.ops, "no jitter, no change");
+        let a = run(0.2, 5);
+        assert_eq!(a.ops, run(0.2, 5).ops, "same seed, same step");
+        assert_ne!(a.ops, run(0.2, 6).ops, "another seed, another step");
+        for r in a.ops.iter().flatten() {
+            let base = if r.op.kind == OpKind::Forward { 1000.0 } else { 2000.0 };
+            let d = (r.end.as_ns() - r.start.as_ns()) as f64;
+            assert!(d >= (base * 0.8f64).floor() && d <= (base * 1.2f64).ceil(), "{d} outside +-20% of {base}");
+        }
+        assert_ne!(a.ops, exact.ops);
+        assert!(matches!(
+            simulate_with(plan, &uniform(3, 1, 1, 0), ideal(3), &identity(3), Variation { jitter: 1.5, seed: 0 }),
+            Err(ExecError::Jitter(_))
         ));
     }
 

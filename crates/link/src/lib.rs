@@ -262,7 +262,8 @@ impl Network {
     pub fn start<E>(&mut self, sched: &mut Scheduler<E, TransferId>, src: u32, dst: u32, bytes: u64) -> TransferId {
         let now = sched.now().as_ns();
         let route = self.topo.route_bounds(src, dst);
-        let flow = Flow { remaining: bytes as f64, rate: 0.0, last_ns: now, bytes, src, dst, route, live: true, mark: 0 };
+        let flow =
+            Flow { remaining: bytes as f64, rate: 0.0, last_ns: now, bytes, src, dst, route, live: true, mark: 0 };
         let id = match self.free.pop() {
             Some(i) => {
                 self.flows[i as usize] = flow;

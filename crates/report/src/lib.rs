@@ -117,6 +117,7 @@ pub struct Report {
     pub micro_batches: u32,
     pub chunks: u32,
     pub seed: u64,
+    pub jitter: f64,
     pub step_time_ms: f64,
     pub step_time_ns: u64,
     pub bubble_fraction: f64,
@@ -136,6 +137,8 @@ fn ms(ns: u64) -> f64 {
 pub struct Labels {
     pub title: String,
     pub seed: u64,
+    /// The compute-time jitter the step was simulated with (0: none).
+    pub jitter: f64,
 }
 
 /// Builds the report of `trace`.
@@ -171,6 +174,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         micro_batches: shape.micro_batches,
         chunks: shape.chunks,
         seed: labels.seed,
+        jitter: labels.jitter,
         step_time_ms: ms(step_ns),
         step_time_ns: step_ns,
         bubble_fraction: if denom == 0.0 { 0.0 } else { total_idle as f64 / denom },
@@ -344,12 +348,13 @@ pub fn summary(report: &Report) -> String {
     let _ = writeln!(s, "{}", report.title);
     let _ = writeln!(
         s,
-        "schedule {}, {} stages, {} micro-batches{}, seed {}",
+        "schedule {}, {} stages, {} micro-batches{}, seed {}{}",
         report.schedule,
         report.stages,
         report.micro_batches,
         if report.chunks > 1 { format!(", {} chunks per device", report.chunks) } else { String::new() },
-        report.seed
+        report.seed,
+        if report.jitter > 0.0 { format!(", compute jitter +-{}%", report.jitter * 100.0) } else { String::new() }
     );
     let _ = writeln!(s);
     let _ = writeln!(s, "step time        {}", format_ns(report.step_time_ns));
@@ -401,7 +406,7 @@ mod tests {
         let costs =
             vec![StageCost { forward: SimDuration(f), backward: SimDuration(b), send_bytes: bytes }; p as usize];
         let tr = simulate(pl, &costs, Topology::full_mesh(p, link), &(0..p).collect::<Vec<_>>()).unwrap();
-        let rep = build(&tr, &Labels { title: "t".into(), seed: 7 });
+        let rep = build(&tr, &Labels { title: "t".into(), seed: 7, jitter: 0.0 });
         (tr, rep)
     }
 

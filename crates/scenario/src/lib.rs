@@ -8,7 +8,7 @@
 //!
 //! Quantities are parsed exactly (see [`units`]). Defaults: `backward` is twice
 //! `forward` (common practice, no source), `repeat` is 1, `split` is `even`,
-//! `chunks` is 1, `seed` is 1, `title` is the file name.
+//! `chunks` is 1, `seed` is 1, `cluster.jitter` is 0, `title` is the file name.
 //!
 //! This crate deliberately knows nothing about simulation, links or reports: it
 //! turns text into checked numbers.
@@ -40,10 +40,14 @@ pub struct LinkParams {
     pub bytes_per_s: u64,
 }
 
-#[derive(Clone, Debug, PartialEq, Eq)]
+#[derive(Clone, Debug, PartialEq)]
 pub struct Cluster {
     pub devices: u32,
     pub link: LinkParams,
+    /// Each op's compute time is scaled by a factor drawn uniformly from
+    /// `[1 - jitter, 1 + jitter]` with the scenario's seed; 0 (the default)
+    /// makes every op take exactly its cost.
+    pub jitter: f64,
 }
 
 #[derive(Clone, Debug, PartialEq, Eq)]
@@ -57,7 +61,7 @@ pub struct Pipeline {
 }
 
 /// A validated scenario.
-#[derive(Clone, Debug, PartialEq, Eq)]
+#[derive(Clone, Debug, PartialEq)]
 pub struct Scenario {
     pub title: String,
     pub seed: u64,
@@ -255,6 +259,23 @@ impl<'a> At<'a> {
         Ok(v)
     }
 
+    /// A number in `[0, 1)`.
+    fn fraction(&self) -> Result<f64, ScenarioError> {
+        let v = match &self.node.value {
+            Value::Int(i) => *i as f64,
+            Value::Float(f) => *f,
+            other => {
+                return Err(
+                    self.err(format!("expected a number from 0 up to (not including) 1, found {}", other.kind()))
+                )
+            }
+        };
+        if !(0.0..1.0).contains(&v) {
+            return Err(self.err(format!("must be at least 0 and below 1, found {v}")));
+        }
+        Ok(v)
+    }
+
     fn u32(&self, min: u32) -> Result<u32, ScenarioError> {
         self.int(min as i128, u32::MAX as i128).map(|v| v as u32)
     }
@@ -323,7 +344,7 @@ fn from_tree(doc: &Node, file: &str, default_title: &str) -> Result<Scenario, Sc
     })?;
 
     let cluster = top.req("cluster", |c| {
-        let c = c.map(&["devices", "link"])?;
+        let c = c.map(&["devices", "link", "jitter"])?;
         let devices = c.req("devices", |a| a.int(1, MAX_DEVICES).map(|v| v as u32))?;
         let link = c.req("link", |l| {
             let l = l.map(&["latency", "bandwidth"])?;
@@ -337,7 +358,8 @@ fn from_tree(doc: &Node, file: &str, default_title: &str) -> Result<Scenario, Sc
             })?;
             Ok(LinkParams { latency_ns, bytes_per_s })
         })?;
-        Ok(Cluster { devices, link })
+        let jitter = c.opt("jitter", |a| a.fraction())?.unwrap_or(0.0);
+        Ok(Cluster { devices, link, jitter })
     })?;
 
     let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster))?;
@@ -548,6 +570,8 @@ pipeline:
             (&["pipeline.micro_batches=2.5"], "pipeline.micro_batches", "whole number"),
             (&["model.layers=[]"], "model.layers", "at least one layer"),
             (&["cluster.devices=0"], "cluster.devices", "at least 1"),
+            (&["cluster.jitter=1.5"], "cluster.jitter", "below 1"),
+            (&["cluster.jitter=lots"], "cluster.jitter", "expected a number"),
         ];
         for (sets, key, text) in cases {
             let (k, msg) = refusal(sets);
