@@ -8,7 +8,8 @@
 use baton::scenario::{parse, Scenario};
 
 /// A scenario of `layers` identical layers (forward `f_ns`, backward `b_ns`),
-/// split evenly, on a flat cluster.
+/// split evenly, on a flat cluster whose links cost nothing (zero latency, and
+/// activations of zero bytes).
 fn uniform(
     p: u32,
     m: u32,
@@ -21,14 +22,12 @@ fn uniform(
     act: &str,
 ) -> Scenario {
     let text = format!(
-        "title: check\nmodel:\n  layers:\n    - {{ name: l, repeat: {layers}, forward: {f_ns}ns, backward: {b_ns}ns, activation: {act} }}\n\
-         cluster:\n  devices: {p}\n  link: {link}\n\
+        "title: check\nmodel:\n  layers:\n    - {{ name: l, repeat: {layers}, forward: {f_ns}ns, backward: {b_ns}ns, activation: 0B }}\n\
+         cluster:\n  devices: {p}\n  link: {{ latency: 0ns, bandwidth: 1GB/s }}\n\
          pipeline:\n  stages: {p}\n  split: even\n  micro_batches: {m}\n  schedule: {schedule}\n  chunks: {v}\n"
     );
     parse(&text, "check.yaml", "check", &[]).unwrap()
 }
-
-const FREE_LINK: &str = "{ latency: 0ns, bandwidth: 1GB/s }";
 
 #[test]
 fn fill_drain_bubble_matches_gpipe() {
@@ -37,14 +36,14 @@ fn fill_drain_bubble_matches_gpipe() {
     // and M micro-batches the bubble is (K-1)/(M+K-1) of the total time; exact
     // when links cost nothing. p=4, m=8 -> 3/11.
     for (p, m) in [(4u32, 8u32), (4, 16), (4, 1), (2, 3), (8, 32), (1, 5)] {
-        let s = uniform(p, m, 1, "fill-drain", p, 1_000, 2_000, FREE_LINK, "0B");
+        let s = uniform(p, m, 1, "fill-drain", p, 1_000, 2_000);
         let r = baton::simulate(&s).unwrap().report;
         // Step = (m + p - 1) slots of forward then (m + p - 1) of backward.
         assert_eq!(r.step_time_ns, (m + p - 1) as u64 * 3_000, "p={p} m={m}");
         let expected = (p - 1) as f64 / (m + p - 1) as f64;
         assert!((r.bubble_fraction - expected).abs() < 1e-12, "p={p} m={m}: {} vs {expected}", r.bubble_fraction);
     }
-    let r = baton::simulate(&uniform(4, 8, 1, "fill-drain", 4, 1_000, 2_000, FREE_LINK, "0B")).unwrap().report;
+    let r = baton::simulate(&uniform(4, 8, 1, "fill-drain", 4, 1_000, 2_000)).unwrap().report;
     assert!((r.bubble_fraction - 3.0 / 11.0).abs() < 1e-12);
 }
 
@@ -57,8 +56,8 @@ fn one_f_one_b_has_the_fill_drain_bubble_and_less_memory() {
     // Training", ICML 2021, sec. 3: in-flight micro-batches per stage at most the
     // pipeline depth. On device d (0-based): min(p - d, m); fill-drain: m.
     for (p, m) in [(4u32, 8u32), (4, 2), (3, 7), (6, 24)] {
-        let fd = baton::simulate(&uniform(p, m, 1, "fill-drain", p, 1_000, 2_000, FREE_LINK, "0B")).unwrap().report;
-        let ob = baton::simulate(&uniform(p, m, 1, "1f1b", p, 1_000, 2_000, FREE_LINK, "0B")).unwrap().report;
+        let fd = baton::simulate(&uniform(p, m, 1, "fill-drain", p, 1_000, 2_000)).unwrap().report;
+        let ob = baton::simulate(&uniform(p, m, 1, "1f1b", p, 1_000, 2_000)).unwrap().report;
         assert_eq!(ob.step_time_ns, fd.step_time_ns, "p={p} m={m}");
         let expected = (p - 1) as f64 / (m + p - 1) as f64;
         assert!((ob.bubble_fraction - expected).abs() < 1e-12);
@@ -68,7 +67,7 @@ fn one_f_one_b_has_the_fill_drain_bubble_and_less_memory() {
         assert!(fd.devices.iter().all(|d| d.peak_activations == m), "fill-drain holds all m");
     }
     // The worked values: p=4, m=8 -> [4, 3, 2, 1] versus [8, 8, 8, 8].
-    let ob = baton::simulate(&uniform(4, 8, 1, "1f1b", 4, 1_000, 2_000, FREE_LINK, "0B")).unwrap().report;
+    let ob = baton::simulate(&uniform(4, 8, 1, "1f1b", 4, 1_000, 2_000)).unwrap().report;
     assert_eq!(ob.devices.iter().map(|d| d.peak_activations).collect::<Vec<_>>(), vec![4, 3, 2, 1]);
 }
 
@@ -79,14 +78,14 @@ fn interleaved_bubble_matches_megatron_formula() {
     // multiple of p. p=4, m=8, v=2 -> 3/16 of ideal (= 3/19 of total).
     for (p, m, v) in [(4u32, 8u32, 2u32), (4, 4, 2), (4, 16, 4), (2, 6, 3), (8, 64, 4), (3, 9, 2)] {
         // Chunk times t_f/v and t_b/v: a whole stage takes 1200 + 2400 ns.
-        let s = uniform(p, m, v, "interleaved", p * v, 1_200 / v as u64, 2_400 / v as u64, FREE_LINK, "0B");
+        let s = uniform(p, m, v, "interleaved", p * v, 1_200 / v as u64, 2_400 / v as u64);
         let r = baton::simulate(&s).unwrap().report;
         let ideal = m as u64 * 3_600;
         let bubble = r.step_time_ns - ideal;
         // bubble / ideal = (p-1)/(v m)  <=>  bubble * v * m = (p-1) * ideal.
         assert_eq!(bubble * (v * m) as u64, (p - 1) as u64 * ideal, "p={p} m={m} v={v}");
     }
-    let r = baton::simulate(&uniform(4, 8, 2, "interleaved", 8, 600, 1_200, FREE_LINK, "0B")).unwrap().report;
+    let r = baton::simulate(&uniform(4, 8, 2, "interleaved", 8, 600, 1_200)).unwrap().report;
     assert!((r.bubble_fraction - 3.0 / 19.0).abs() < 1e-12, "3/16 of ideal is 3/19 of total");
 }
 
