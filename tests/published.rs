@@ -10,17 +10,7 @@ use baton::scenario::{parse, Scenario};
 /// A scenario of `layers` identical layers (forward `f_ns`, backward `b_ns`),
 /// split evenly, on a flat cluster whose links cost nothing (zero latency, and
 /// activations of zero bytes).
-fn uniform(
-    p: u32,
-    m: u32,
-    v: u32,
-    schedule: &str,
-    layers: u32,
-    f_ns: u64,
-    b_ns: u64,
-    link: &str,
-    act: &str,
-) -> Scenario {
+fn uniform(p: u32, m: u32, v: u32, schedule: &str, layers: u32, f_ns: u64, b_ns: u64) -> Scenario {
     let text = format!(
         "title: check\nmodel:\n  layers:\n    - {{ name: l, repeat: {layers}, forward: {f_ns}ns, backward: {b_ns}ns, activation: 0B }}\n\
          cluster:\n  devices: {p}\n  link: {{ latency: 0ns, bandwidth: 1GB/s }}\n\
