@@ -89,6 +89,18 @@ proptest! {
             }
         }
 
+        // Peak activations equal a brute-force count over every instant at
+        // which some activation is taken.
+        for (d, recs) in trace.ops.iter().enumerate() {
+            let held: Vec<(u64, u64)> = recs
+                .iter()
+                .filter(|r| r.op.kind == OpKind::Forward)
+                .map(|f| (f.start.as_ns(), trace.record(baton::schedule::Op::backward(f.op.micro_batch, f.op.stage)).1.end.as_ns()))
+                .collect();
+            let brute = held.iter().map(|&(t, _)| held.iter().filter(|&&(a, b)| a <= t && t < b).count()).max().unwrap_or(0);
+            prop_assert_eq!(report.devices[d].peak_activations as usize, brute, "device {}", d);
+        }
+
         // Busy + idle = step time; bubbles in [0, 1]; gaps cover idle exactly.
         prop_assert!(report.bubble_fraction >= 0.0 && report.bubble_fraction <= 1.0);
         for d in &report.devices {

@@ -190,7 +190,7 @@ pub fn render(trace: &Trace, report: &Report) -> Result<String, ReportError> {
             format_ns(g.start_ns),
             format_ns(g.end_ns),
             g.cause.as_str(),
-            xml_escape(&g.detail)
+            xml_escape(&g.detail.to_string())
         );
     }
     body.push_str("</g>\n<g id=\"ops\" font-family=\"sans-serif\" font-size=\"10\" text-anchor=\"middle\">\n");

@@ -18,12 +18,12 @@
 
 pub mod gantt;
 
-use std::fmt::Write as _;
+use std::fmt::{self, Write as _};
 use std::io;
 
 use baton_engine::{format_ns, SimTime};
 use baton_executor::{DataKind, Trace};
-use baton_schedule::OpKind;
+use baton_schedule::{Op, OpKind};
 use serde::Serialize;
 use thiserror::Error;
 
@@ -68,6 +68,47 @@ impl Cause {
     }
 }
 
+/// The facts behind a gap, turned into a sentence only when shown.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct GapDetail {
+    pub cause: Cause,
+    /// The op the device was about to run (fill, activation, gradient, link)
+    /// or had just run (drain).
+    pub op: Op,
+    /// The op that produced the awaited data, and its device.
+    pub producer: Option<(Op, u32)>,
+    /// Sender and receiver of the transfer that carried it.
+    pub route: Option<(u32, u32)>,
+}
+
+impl fmt::Display for GapDetail {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let what = match self.producer.map(|(p, _)| p.kind) {
+            Some(OpKind::Backward) => "gradient",
+            _ => "activation",
+        };
+        let mb = self.op.micro_batch;
+        match (self.cause, self.producer) {
+            (Cause::Fill, _) => write!(f, "pipeline fill before {}", self.op),
+            (Cause::Drain, _) => write!(f, "pipeline drain after {}", self.op),
+            (Cause::Link, Some((_, from))) => match self.route {
+                Some((src, dst)) => {
+                    write!(f, "the {what} of micro-batch {mb} was in transit on the link device {src} -> device {dst}")
+                }
+                None => write!(f, "the {what} of micro-batch {mb} from device {from} was in transit"),
+            },
+            (_, Some((p, from))) => write!(f, "waiting for the {what} of micro-batch {mb} from device {from} ({p})"),
+            (_, None) => write!(f, "waiting to start {}", self.op),
+        }
+    }
+}
+
+impl Serialize for GapDetail {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.collect_str(self)
+    }
+}
+
 /// One idle interval of one device, with its cause.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct Gap {
@@ -76,8 +117,8 @@ pub struct Gap {
     pub end_ms: f64,
     pub duration_ms: f64,
     pub cause: Cause,
-    /// A sentence saying what the device waited for.
-    pub detail: String,
+    /// What the device waited for; serialized as a sentence.
+    pub detail: GapDetail,
     /// The device that produced the awaited data (activation, gradient, link).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub from_device: Option<u32>,
@@ -187,42 +228,38 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
 
 /// Largest number of activations device `d` holds at once.
 fn peak_held(trace: &Trace, d: usize) -> u32 {
-    // +1 at a forward's start, -1 at the matching backward's end; at equal
-    // times releases go first, since memory freed at t can be reused at t.
-    let mut events: Vec<(u64, i32)> = trace.ops[d]
-        .iter()
-        .map(|r| match r.op.kind {
-            OpKind::Forward => (r.start.as_ns(), 1),
-            OpKind::Backward => (r.end.as_ns(), -1),
-        })
-        .collect();
-    events.sort_unstable();
-    let (mut held, mut peak) = (0i32, 0i32);
-    for (_, delta) in events {
-        held += delta;
-        peak = peak.max(held);
+    // Held from a forward's start to the matching backward's end. A device runs
+    // one op at a time, so forward starts and backward ends each come in time
+    // order: merge the two lists. At equal times the release goes first, since
+    // memory freed at t can be reused at t.
+    let recs = &trace.ops[d];
+    let mut acquire = recs.iter().filter(|r| r.op.kind == OpKind::Forward).map(|r| r.start).peekable();
+    let mut release = recs.iter().filter(|r| r.op.kind == OpKind::Backward).map(|r| r.end).peekable();
+    let (mut held, mut peak) = (0u32, 0u32);
+    while let Some(&t) = acquire.peek() {
+        if release.peek().is_some_and(|&r| r <= t) {
+            release.next();
+            held = held.saturating_sub(1);
+        } else {
+            acquire.next();
+            held += 1;
+            peak = peak.max(held);
+        }
     }
-    peak as u32
+    peak
 }
 
-fn push_gap(
-    gaps: &mut Vec<Gap>,
-    device: u32,
-    start: SimTime,
-    end: SimTime,
-    cause: Cause,
-    detail: String,
-    who: Option<(u32, u32, u32)>,
-) {
+fn push_gap(gaps: &mut Vec<Gap>, device: u32, start: SimTime, end: SimTime, detail: GapDetail) {
     if end <= start {
         return;
     }
+    let who = detail.producer.map(|(_, from)| (from, detail.op.micro_batch, detail.op.stage));
     gaps.push(Gap {
         device,
         start_ms: ms(start.as_ns()),
         end_ms: ms(end.as_ns()),
         duration_ms: ms(end.as_ns() - start.as_ns()),
-        cause,
+        cause: detail.cause,
         detail,
         from_device: who.map(|w| w.0),
         micro_batch: who.map(|w| w.1),
@@ -236,72 +273,44 @@ fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec
     let device = d as u32;
     let recs = &trace.ops[d];
     let (Some(first), Some(last)) = (recs.first(), recs.last()) else {
-        push_gap(gaps, device, t0, t1, Cause::Fill, "no work on this device".into(), None);
         return;
     };
-    push_gap(gaps, device, t0, first.start, Cause::Fill, format!("pipeline fill before {}", first.op), None);
+    let plain = |cause, op| GapDetail { cause, op, producer: None, route: None };
+    push_gap(gaps, device, t0, first.start, plain(Cause::Fill, first.op));
     for w in recs.windows(2) {
         let (a, b) = (&w[0], &w[1]);
         if b.start <= a.end {
             continue;
         }
-        let Some(dep) = trace.dependency(b.op) else {
-            // Every waiting operation waits on data from another stage; the
-            // interval is attributed to the next op's own stage if not.
-            push_gap(gaps, device, a.end, b.start, Cause::Fill, format!("waiting to start {}", b.op), None);
-            continue;
-        };
-        let mb = b.op.micro_batch;
-        let who = Some((dep.producer_device, mb, b.op.stage));
-        let what = dep.kind.as_str();
-        let waiting_until = dep.produced_at.min(b.start);
+        // Only an op that needs data from another stage can find its device
+        // free but itself not ready, so a dependency always exists here.
+        let Some(dep) = trace.dependency(b.op) else { continue };
         let cause = match dep.kind {
             DataKind::Activation => Cause::Activation,
             DataKind::Gradient => Cause::Gradient,
         };
-        push_gap(
-            gaps,
-            device,
-            a.end,
-            waiting_until,
-            cause,
-            format!(
-                "waiting for the {what} of micro-batch {mb} from device {} ({})",
-                dep.producer_device, dep.producer
-            ),
-            who,
-        );
+        let route = dep.transfer.map(|t| (trace.transfers[t].src, trace.transfers[t].dst));
+        let producer = Some((dep.producer, dep.producer_device));
+        let waiting_until = dep.produced_at.min(b.start);
+        push_gap(gaps, device, a.end, waiting_until, GapDetail { cause, op: b.op, producer, route });
         let link_from = dep.produced_at.max(a.end);
-        let route = dep.transfer.map(|t| {
-            let tr = &trace.transfers[t];
-            format!("device {} -> device {}", tr.src, tr.dst)
-        });
-        push_gap(
-            gaps,
-            device,
-            link_from,
-            b.start,
-            Cause::Link,
-            format!(
-                "the {what} of micro-batch {mb} was in transit on {}",
-                route.unwrap_or_else(|| format!("the link from device {}", dep.producer_device))
-            ),
-            who,
-        );
+        push_gap(gaps, device, link_from, b.start, GapDetail { cause: Cause::Link, op: b.op, producer, route });
     }
-    push_gap(gaps, device, last.end, t1, Cause::Drain, format!("pipeline drain after {}", last.op), None);
+    push_gap(gaps, device, last.end, t1, plain(Cause::Drain, last.op));
 }
 
 /// The `n` longest gaps, longest first (ties: by device, then start).
 pub fn longest_gaps(report: &Report, n: usize) -> Vec<&Gap> {
+    let key = |g: &Gap| (std::cmp::Reverse(g.end_ns - g.start_ns), g.device, g.start_ns);
     let mut v: Vec<&Gap> = report.gaps.iter().collect();
-    v.sort_by(|a, b| {
-        (b.end_ns - b.start_ns)
-            .cmp(&(a.end_ns - a.start_ns))
-            .then(a.device.cmp(&b.device))
-            .then(a.start_ns.cmp(&b.start_ns))
-    });
-    v.truncate(n);
+    if n < v.len() {
+        if n == 0 {
+            return Vec::new();
+        }
+        v.select_nth_unstable_by_key(n - 1, |g| key(g));
+        v.truncate(n);
+    }
+    v.sort_unstable_by_key(|g| key(g));
     v
 }
 
