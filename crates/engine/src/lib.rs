@@ -23,7 +23,7 @@
 use std::cmp::Reverse;
 use std::collections::BinaryHeap;
 use std::fmt;
-use std::hash::Hash;
+use std::hash::{BuildHasherDefault, Hash, Hasher};
 use std::ops::{Add, AddAssign, Sub};
 
 use priority_queue::PriorityQueue;
@@ -147,17 +147,29 @@ pub fn format_ns(ns: u64) -> String {
     }
 }
 
-/// Key of an entry in the fixed queue: earliest time first, then first scheduled.
+/// An entry of the fixed queue. Its key packs `(time, sequence)` into one
+/// `u128` (time in the high half), so ordering is a single comparison.
 #[derive(Debug)]
 struct Fixed<E> {
-    at: SimTime,
-    seq: u64,
+    key: u128,
     event: E,
+}
+
+impl<E> Fixed<E> {
+    fn new(at: SimTime, seq: u64, event: E) -> Self {
+        Fixed { key: ((at.0 as u128) << 64) | seq as u128, event }
+    }
+    fn at(&self) -> SimTime {
+        SimTime((self.key >> 64) as u64)
+    }
+    fn seq(&self) -> u64 {
+        self.key as u64
+    }
 }
 
 impl<E> PartialEq for Fixed<E> {
     fn eq(&self, other: &Self) -> bool {
-        (self.at, self.seq) == (other.at, other.seq)
+        self.key == other.key
     }
 }
 impl<E> Eq for Fixed<E> {}
@@ -168,7 +180,33 @@ impl<E> PartialOrd for Fixed<E> {
 }
 impl<E> Ord for Fixed<E> {
     fn cmp(&self, other: &Self) -> std::cmp::Ordering {
-        (self.at, self.seq).cmp(&(other.at, other.seq))
+        self.key.cmp(&other.key)
+    }
+}
+
+/// A fast, deterministic hasher for the small integer keys of movable
+/// deadlines (transfer ids): multiplicative (Fibonacci) hashing. Keys are made
+/// by the simulation, not by users, so flooding resistance is not needed.
+#[derive(Default, Clone, Copy)]
+pub struct KeyHasher(u64);
+
+impl Hasher for KeyHasher {
+    fn finish(&self) -> u64 {
+        self.0
+    }
+    fn write(&mut self, bytes: &[u8]) {
+        for &b in bytes {
+            self.0 = (self.0.rotate_left(8) ^ b as u64).wrapping_mul(0x9E37_79B9_7F4A_7C15);
+        }
+    }
+    fn write_u32(&mut self, i: u32) {
+        self.write_u64(i as u64);
+    }
+    fn write_u64(&mut self, i: u64) {
+        self.0 = (self.0 ^ i).wrapping_mul(0x9E37_79B9_7F4A_7C15);
+    }
+    fn write_usize(&mut self, i: usize) {
+        self.write_u64(i as u64);
     }
 }
 
@@ -186,7 +224,7 @@ pub struct Scheduler<E, K: Hash + Eq> {
     now: SimTime,
     next_seq: u64,
     fixed: BinaryHeap<Reverse<Fixed<E>>>,
-    movable: PriorityQueue<K, Reverse<(SimTime, u64)>>,
+    movable: PriorityQueue<K, Reverse<(SimTime, u64)>, BuildHasherDefault<KeyHasher>>,
     delivered: u64,
 }
 
@@ -202,7 +240,7 @@ impl<E, K: Hash + Eq> Scheduler<E, K> {
             now: SimTime::ZERO,
             next_seq: 0,
             fixed: BinaryHeap::new(),
-            movable: PriorityQueue::new(),
+            movable: PriorityQueue::with_default_hasher(),
             delivered: 0,
         }
     }
@@ -240,7 +278,7 @@ impl<E, K: Hash + Eq> Scheduler<E, K> {
     pub fn schedule(&mut self, at: SimTime, event: E) {
         let at = at.max(self.now);
         let seq = self.take_seq();
-        self.fixed.push(Reverse(Fixed { at, seq, event }));
+        self.fixed.push(Reverse(Fixed::new(at, seq, event)));
     }
 
     /// Schedules `event` after `delay` from now.
@@ -268,7 +306,7 @@ impl<E, K: Hash + Eq> Scheduler<E, K> {
 
     /// Pops the earliest pending item by `(time, sequence)` and advances `now`.
     pub fn pop(&mut self) -> Option<(SimTime, Fired<E, K>)> {
-        let fixed_key = self.fixed.peek().map(|Reverse(f)| (f.at, f.seq));
+        let fixed_key = self.fixed.peek().map(|Reverse(f)| (f.at(), f.seq()));
         let movable_key = self.movable.peek().map(|(_, Reverse(p))| *p);
         let take_fixed = match (fixed_key, movable_key) {
             (None, None) => return None,
@@ -278,7 +316,7 @@ impl<E, K: Hash + Eq> Scheduler<E, K> {
         };
         let (at, fired) = if take_fixed {
             let Reverse(f) = self.fixed.pop()?;
-            (f.at, Fired::Event(f.event))
+            (f.at(), Fired::Event(f.event))
         } else {
             let (k, Reverse((at, _))) = self.movable.pop()?;
             (at, Fired::Deadline(k))
