@@ -47,10 +47,11 @@ pub fn stage_costs(s: &Scenario) -> Vec<StageCost> {
         .collect()
 }
 
-/// The scenario's link topology: every ordered pair of devices joined directly.
+/// The scenario's link topology over the devices in use (one per stage):
+/// every ordered pair joined directly by its own link.
 pub fn topology(s: &Scenario) -> Topology {
     let l = s.cluster.link;
-    Topology::full_mesh(s.cluster.devices, LinkSpec { latency_ns: l.latency_ns, bytes_per_s: l.bytes_per_s })
+    Topology::full_mesh(s.pipeline.stages, LinkSpec { latency_ns: l.latency_ns, bytes_per_s: l.bytes_per_s })
 }
 
 /// Simulates one training step of `s` and reports on it.

@@ -81,8 +81,16 @@ fn draw_err<E: std::fmt::Debug>(e: E) -> ReportError {
     ReportError::Draw(format!("{e:?}"))
 }
 
+/// Most operations a chart draws: beyond this, bars are narrower than a pixel
+/// and the file grows past what a browser opens comfortably.
+pub const MAX_CHART_OPS: usize = 250_000;
+
 /// Draws the chart; returns the SVG document.
 pub fn render(trace: &Trace, report: &Report) -> Result<String, ReportError> {
+    let total_ops: usize = trace.ops.iter().map(Vec::len).sum();
+    if total_ops > MAX_CHART_OPS {
+        return Err(ReportError::TooLarge { ops: total_ops, limit: MAX_CHART_OPS });
+    }
     let lanes = trace.ops.len().max(1);
     let per_device = trace.ops.iter().map(Vec::len).max().unwrap_or(0);
     let width = (220 + per_device * 20).clamp(900, 12_000) as u32;

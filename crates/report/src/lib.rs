@@ -38,6 +38,8 @@ pub enum ReportError {
     Json(#[from] serde_json::Error),
     #[error("cannot draw the chart: {0}")]
     Draw(String),
+    #[error("{ops} operations are too many to chart (at most {limit}); chart fewer micro-batches or stages")]
+    TooLarge { ops: usize, limit: usize },
 }
 
 /// Why a device sat idle.

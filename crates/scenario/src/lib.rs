@@ -145,6 +145,9 @@ impl ScenarioError {
 pub const MAX_LAYERS: u64 = 1_000_000;
 /// Most devices a cluster may have.
 pub const MAX_DEVICES: i128 = 65_536;
+/// Most pipeline stages: every ordered pair of stages' devices has its own
+/// link, so the link count grows with the square of this.
+pub const MAX_STAGES: u32 = 512;
 
 /// Reads, overrides and validates a scenario file.
 pub fn load(path: &Path, overrides: &[String]) -> Result<Scenario, ScenarioError> {
@@ -404,6 +407,9 @@ fn read_pipeline(p: At<'_>, layers: &[Layer], cluster: &Cluster) -> Result<Pipel
     let m = p.map(&["stages", "split", "micro_batches", "schedule", "chunks"])?;
     let stages = m.req("stages", |a| {
         let v = a.u32(1)?;
+        if v > MAX_STAGES {
+            return Err(a.err(format!("must be at most {MAX_STAGES}, found {v}")));
+        }
         if v > cluster.devices {
             return Err(a.err(format!("{v} stages need {v} devices, but cluster.devices is {}", cluster.devices)));
         }
@@ -591,6 +597,38 @@ pipeline:
         assert_eq!(e.to_string(), "t.yaml:16:3: pipeline.chunk: unknown key `chunk`; expected one of: stages, split, micro_batches, schedule, chunks");
         let e = parse_with(&EXAMPLE.replace("cluster:", "klaster:"), &[]).unwrap_err();
         assert_eq!(e.key(), Some("klaster"));
+    }
+
+    use proptest::prelude::*;
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 300, ..ProptestConfig::default() })]
+
+        /// Any text is either a scenario or a clear refusal: never a panic.
+        #[test]
+        fn arbitrary_text_never_panics(text in "\\PC{0,200}") {
+            let _ = parse(&text, "fuzz.yaml", "fuzz", &[]);
+        }
+
+        /// The example with one line replaced by noise, or one character
+        /// dropped: refused with a message, or accepted, never a panic.
+        #[test]
+        fn damaged_examples_never_panic(line in 0usize..17, noise in "[ -~]{0,30}", cut in 0usize..600) {
+            let mut lines: Vec<String> = EXAMPLE.lines().map(String::from).collect();
+            if line < lines.len() {
+                lines[line] = noise.clone();
+            }
+            let damaged = lines.join("\n");
+            if let Err(e) = parse(&damaged, "fuzz.yaml", "fuzz", &[]) {
+                prop_assert!(!e.to_string().is_empty());
+            }
+            let mut chars: Vec<char> = EXAMPLE.chars().collect();
+            if cut < chars.len() {
+                chars.remove(cut);
+            }
+            let _ = parse(&chars.into_iter().collect::<String>(), "fuzz.yaml", "fuzz", &[]);
+            let _ = parse(EXAMPLE, "fuzz.yaml", "fuzz", &[format!("pipeline.{noise}")]);
+        }
     }
 
     #[test]

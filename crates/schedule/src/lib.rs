@@ -151,7 +151,7 @@ pub enum ScheduleError {
         "interleaved needs micro_batches to be a multiple of stages: {micro_batches} is not a multiple of {stages}"
     )]
     NotMultiple { micro_batches: u32, stages: u32 },
-    #[error("the plan is too large: {0} operations")]
+    #[error("the plan is too large: {0} operations (at most {MAX_OPS})")]
     TooLarge(u64),
     #[error("plan has {found} device orders, expected {expected}")]
     DeviceCount { found: usize, expected: usize },
@@ -176,8 +176,9 @@ pub struct Plan {
     pub per_device: Vec<Vec<Op>>,
 }
 
-/// Largest plan accepted: keeps memory bounded on any input (about 1 GiB of ops).
-pub const MAX_OPS: u64 = 64 * 1024 * 1024;
+/// Largest plan accepted (operations over all devices): keeps memory and time
+/// bounded on any input (a simulation of this size needs about 1 GiB).
+pub const MAX_OPS: u64 = 16 * 1024 * 1024;
 
 /// Builds the plan for `kind` and `shape`; the result always passes [`validate`].
 pub fn build(kind: ScheduleKind, shape: Shape) -> Result<Plan, ScheduleError> {
