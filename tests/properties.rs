@@ -89,15 +89,20 @@ proptest! {
             }
         }
 
-        // Peak activations equal a brute-force count over every instant at
-        // which some activation is taken.
+        // Peak activations equal a brute-force count of distinct micro-batches
+        // held, over every instant at which one is taken: micro-batch i is held
+        // from its earliest forward start to its latest backward end on the device.
         for (d, recs) in trace.ops.iter().enumerate() {
-            let held: Vec<(u64, u64)> = recs
-                .iter()
-                .filter(|r| r.op.kind == OpKind::Forward)
-                .map(|f| (f.start.as_ns(), trace.record(baton::schedule::Op::backward(f.op.micro_batch, f.op.stage)).1.end.as_ns()))
-                .collect();
-            let brute = held.iter().map(|&(t, _)| held.iter().filter(|&&(a, b)| a <= t && t < b).count()).max().unwrap_or(0);
+            let mut held: std::collections::BTreeMap<u32, (u64, u64)> = Default::default();
+            for r in recs {
+                let e = held.entry(r.op.micro_batch).or_insert((u64::MAX, 0));
+                match r.op.kind {
+                    OpKind::Forward => e.0 = e.0.min(r.start.as_ns()),
+                    OpKind::Backward => e.1 = e.1.max(r.end.as_ns()),
+                }
+            }
+            let spans: Vec<(u64, u64)> = held.into_values().collect();
+            let brute = spans.iter().map(|&(t, _)| spans.iter().filter(|&&(a, b)| a <= t && t < b).count()).max().unwrap_or(0);
             prop_assert_eq!(report.devices[d].peak_activations as usize, brute, "device {}", d);
         }
 

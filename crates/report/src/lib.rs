@@ -9,9 +9,9 @@
 //! * step time = last operation end - first operation start;
 //! * a device's bubble fraction = its idle time / step time;
 //! * overall bubble fraction = total idle / (devices in use x step time);
-//! * peak activations = the largest number of (micro-batch, virtual stage)
-//!   activations a device holds at once, each held from its forward's start to
-//!   its backward's end (with one chunk per device: micro-batches).
+//! * peak activations = the largest number of micro-batches whose activations
+//!   a device holds at once, each held from its (first) forward's start to the
+//!   matching backward's end.
 //!
 //! It deliberately knows nothing about scenario files or how the trace was
 //! simulated; it only reads the trace.
@@ -228,15 +228,21 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
     }
 }
 
-/// Largest number of activations device `d` holds at once.
+/// Largest number of micro-batches whose activations device `d` holds at once.
 fn peak_held(trace: &Trace, d: usize) -> u32 {
-    // Held from a forward's start to the matching backward's end. A device runs
-    // one op at a time, so forward starts and backward ends each come in time
-    // order: merge the two lists. At equal times the release goes first, since
-    // memory freed at t can be reused at t.
+    // A micro-batch is held from its forward's start to its backward's end. With
+    // several chunks on the device, its first chunk's forward comes before the
+    // later chunks' (the data flows through them in order) and that chunk's
+    // backward after theirs, so the first chunk's interval covers the others.
+    // A device runs one op at a time, so those forward starts and backward ends
+    // each come in time order: merge the two lists. At equal times the release
+    // goes first, since memory freed at t can be reused at t.
+    let first_chunk = |r: &&baton_executor::OpRecord| r.op.stage < trace.plan.shape.stages;
     let recs = &trace.ops[d];
-    let mut acquire = recs.iter().filter(|r| r.op.kind == OpKind::Forward).map(|r| r.start).peekable();
-    let mut release = recs.iter().filter(|r| r.op.kind == OpKind::Backward).map(|r| r.end).peekable();
+    let mut acquire =
+        recs.iter().filter(first_chunk).filter(|r| r.op.kind == OpKind::Forward).map(|r| r.start).peekable();
+    let mut release =
+        recs.iter().filter(first_chunk).filter(|r| r.op.kind == OpKind::Backward).map(|r| r.end).peekable();
     let (mut held, mut peak) = (0u32, 0u32);
     while let Some(&t) = acquire.peek() {
         if release.peek().is_some_and(|&r| r <= t) {
