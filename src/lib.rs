@@ -16,7 +16,7 @@ pub use baton_schedule as schedule;
 use baton_engine::SimDuration;
 use baton_executor::{ExecError, StageCost, Trace, Variation};
 use baton_link::{LinkSpec, Topology};
-use baton_report::{Labels, Report};
+use baton_report::{Labels, MemoryInputs, Report};
 use baton_scenario::Scenario;
 use thiserror::Error;
 
@@ -54,13 +54,40 @@ pub fn topology(s: &Scenario) -> Topology {
     Topology::full_mesh(s.pipeline.stages, LinkSpec { latency_ns: l.latency_ns, bytes_per_s: l.bytes_per_s })
 }
 
+/// What the memory model needs: stash per piece, model state per device.
+pub fn memory_inputs(s: &Scenario) -> MemoryInputs {
+    let pieces = s.pieces();
+    let p = s.pipeline.stages as usize;
+    let mut params = vec![0u64; p];
+    for (k, piece) in pieces.iter().enumerate() {
+        params[k % p] += piece.params;
+    }
+    MemoryInputs {
+        stash_bytes: pieces.iter().map(|x| x.stash_bytes).collect(),
+        state_bytes: params.iter().map(|&n| baton_model::state_bytes(n, s.training.state_bytes_per_param)).collect(),
+        reserved_bytes: s.training.reserved_bytes,
+        capacity_bytes: s.cluster.device.memory_bytes,
+    }
+}
+
+/// The labels a report of `s` carries.
+pub fn labels(s: &Scenario) -> Labels {
+    Labels {
+        title: s.title.clone(),
+        seed: s.seed,
+        jitter: s.cluster.jitter,
+        micro_batch_size: s.pipeline.micro_batch_size,
+        recompute: s.training.recompute.name().to_string(),
+        memory: memory_inputs(s),
+    }
+}
+
 /// Simulates one training step of `s` and reports on it.
 pub fn simulate(s: &Scenario) -> Result<Outcome, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
     let placement: Vec<u32> = (0..s.pipeline.stages).collect();
     let variation = Variation { jitter: s.cluster.jitter, seed: s.seed };
     let trace = baton_executor::simulate_with(plan, &stage_costs(s), topology(s), &placement, variation)?;
-    let report =
-        baton_report::build(&trace, &Labels { title: s.title.clone(), seed: s.seed, jitter: s.cluster.jitter });
+    let report = baton_report::build(&trace, &labels(s));
     Ok(Outcome { trace, report })
 }

@@ -145,6 +145,16 @@ pub struct DeviceReport {
     pub bubble_fraction: f64,
     pub peak_activations: u32,
     pub ops: usize,
+    /// Model state + reserved + the largest activation stash held at once.
+    pub peak_memory_bytes: u64,
+    /// The device's capacity; `null` when unlimited.
+    pub memory_capacity_bytes: Option<u64>,
+    /// Whether the peak fits the capacity.
+    pub fits: bool,
+    /// Parameters' state (weights, gradients, optimizer) on this device.
+    pub state_bytes: u64,
+    /// The largest activation stash held at once.
+    pub peak_activation_bytes: u64,
     #[serde(skip)]
     pub busy_ns: u64,
     #[serde(skip)]
@@ -164,6 +174,12 @@ pub struct Report {
     pub step_time_ms: f64,
     pub step_time_ns: u64,
     pub bubble_fraction: f64,
+    /// Samples per second: micro-batches x micro-batch size / step time.
+    pub samples_per_s: f64,
+    pub micro_batch_size: u32,
+    pub recompute: String,
+    /// Whether every device's peak memory fits its capacity.
+    pub fits: bool,
     pub ops: usize,
     pub transfers: usize,
     pub devices: Vec<DeviceReport>,
@@ -182,6 +198,60 @@ pub struct Labels {
     pub seed: u64,
     /// The compute-time jitter the step was simulated with (0: none).
     pub jitter: f64,
+    /// Samples per micro-batch (for `samples_per_s`).
+    pub micro_batch_size: u32,
+    /// `none` or `full`, shown in reports.
+    pub recompute: String,
+    pub memory: MemoryInputs,
+}
+
+/// What the memory model needs beyond the trace.
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct MemoryInputs {
+    /// Bytes each micro-batch holds on each virtual stage, from its forward's
+    /// start to its backward's end. Empty: no activation memory.
+    pub stash_bytes: Vec<u64>,
+    /// Model-state bytes per device.
+    pub state_bytes: Vec<u64>,
+    /// Bytes every device keeps aside.
+    pub reserved_bytes: u64,
+    /// Capacity of each device; `None` means unlimited.
+    pub capacity_bytes: Option<u64>,
+}
+
+/// Activation bytes held on device `d` over time: `(time, bytes held from
+/// then on)` at every change, in time order (several changes at one time are
+/// all listed; the last is what holds after it).
+pub fn activation_timeline(trace: &Trace, stash_bytes: &[u64], d: usize) -> Vec<(SimTime, u64)> {
+    // Forward starts and backward ends each come in time order (one op at a
+    // time per device): merge them, releases first at equal times.
+    let stash = |stage: u32| stash_bytes.get(stage as usize).copied().unwrap_or(0);
+    let recs = &trace.ops[d];
+    let mut acquire =
+        recs.iter().filter(|r| r.op.kind == OpKind::Forward).map(|r| (r.start, stash(r.op.stage))).peekable();
+    let mut release =
+        recs.iter().filter(|r| r.op.kind == OpKind::Backward).map(|r| (r.end, stash(r.op.stage))).peekable();
+    let mut held = 0u64;
+    let mut out = Vec::with_capacity(recs.len() + 1);
+    out.push((trace.start(), 0));
+    loop {
+        let take_release = match (acquire.peek(), release.peek()) {
+            (None, None) => break,
+            (Some(_), None) => false,
+            (None, Some(_)) => true,
+            (Some(a), Some(r)) => r.0 <= a.0,
+        };
+        if take_release {
+            let Some((t, b)) = release.next() else { break };
+            held = held.saturating_sub(b);
+            out.push((t, held));
+        } else {
+            let Some((t, b)) = acquire.next() else { break };
+            held += b;
+            out.push((t, held));
+        }
+    }
+    out
 }
 
 /// Builds the report of `trace`.
@@ -196,6 +266,14 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         let device = d as u32;
         let busy_ns: u64 = recs.iter().map(|r| r.end.saturating_since(r.start).as_ns()).sum();
         let idle_ns = step_ns - busy_ns.min(step_ns);
+        let mem = &labels.memory;
+        let peak_activation_bytes = if mem.stash_bytes.is_empty() {
+            0
+        } else {
+            activation_timeline(trace, &mem.stash_bytes, d).iter().map(|&(_, b)| b).max().unwrap_or(0)
+        };
+        let state_bytes = mem.state_bytes.get(d).copied().unwrap_or(0);
+        let peak_memory_bytes = state_bytes.saturating_add(mem.reserved_bytes).saturating_add(peak_activation_bytes);
         devices.push(DeviceReport {
             device,
             busy_ms: ms(busy_ns),
@@ -203,6 +281,11 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
             bubble_fraction: if step_ns == 0 { 0.0 } else { idle_ns as f64 / step_ns as f64 },
             peak_activations: peak_held(trace, d),
             ops: recs.len(),
+            peak_memory_bytes,
+            memory_capacity_bytes: mem.capacity_bytes,
+            fits: mem.capacity_bytes.is_none_or(|c| peak_memory_bytes <= c),
+            state_bytes,
+            peak_activation_bytes,
             busy_ns,
             idle_ns,
         });
@@ -221,6 +304,14 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         step_time_ms: ms(step_ns),
         step_time_ns: step_ns,
         bubble_fraction: if denom == 0.0 { 0.0 } else { total_idle as f64 / denom },
+        samples_per_s: if step_ns == 0 {
+            0.0
+        } else {
+            shape.micro_batches as f64 * labels.micro_batch_size.max(1) as f64 / (step_ns as f64 / 1e9)
+        },
+        micro_batch_size: labels.micro_batch_size.max(1),
+        recompute: if labels.recompute.is_empty() { "none".into() } else { labels.recompute.clone() },
+        fits: devices.iter().all(|d| d.fits),
         ops: trace.ops.iter().map(Vec::len).sum(),
         transfers: trace.transfers.len(),
         devices,
@@ -359,6 +450,21 @@ pub fn write_trace_csv<W: io::Write>(trace: &Trace, out: W) -> Result<(), Report
     Ok(())
 }
 
+/// Bytes with a binary unit: `512 B`, `1.50 KiB`, `80.00 GiB`.
+pub fn format_bytes(b: u64) -> String {
+    const UNITS: [&str; 5] = ["KiB", "MiB", "GiB", "TiB", "PiB"];
+    if b < 1024 {
+        return format!("{b} B");
+    }
+    let mut v = b as f64 / 1024.0;
+    let mut i = 0;
+    while v >= 1024.0 && i + 1 < UNITS.len() {
+        v /= 1024.0;
+        i += 1;
+    }
+    format!("{v:.2} {}", UNITS[i])
+}
+
 /// The readable summary printed by `baton run`.
 pub fn summary(report: &Report) -> String {
     let mut s = String::new();
@@ -376,18 +482,39 @@ pub fn summary(report: &Report) -> String {
     let _ = writeln!(s);
     let _ = writeln!(s, "step time        {}", format_ns(report.step_time_ns));
     let _ = writeln!(s, "bubble fraction  {:.2}% (idle / (devices x step time))", report.bubble_fraction * 100.0);
+    let _ = writeln!(
+        s,
+        "throughput       {:.2} samples/s ({} micro-batches x {} samples / step time)",
+        report.samples_per_s, report.micro_batches, report.micro_batch_size
+    );
     let _ = writeln!(s, "simulated        {} ops, {} transfers", report.ops, report.transfers);
     let _ = writeln!(s);
-    let _ = writeln!(s, "{:>6}  {:>12}  {:>12}  {:>8}  {:>16}", "device", "busy", "idle", "bubble", "peak activations");
+    let _ = writeln!(
+        s,
+        "{:>6}  {:>12}  {:>12}  {:>8}  {:>16}  {:>25}",
+        "device", "busy", "idle", "bubble", "peak activations", "peak mem / capacity"
+    );
     for d in &report.devices {
+        let capacity = d.memory_capacity_bytes.map_or_else(|| "unlimited".to_string(), format_bytes);
         let _ = writeln!(
             s,
-            "{:>6}  {:>12}  {:>12}  {:>7.2}%  {:>16}",
+            "{:>6}  {:>12}  {:>12}  {:>7.2}%  {:>16}  {:>25}{}",
             d.device,
             format_ns(d.busy_ns),
             format_ns(d.idle_ns),
             d.bubble_fraction * 100.0,
-            d.peak_activations
+            d.peak_activations,
+            format!("{} / {}", format_bytes(d.peak_memory_bytes), capacity),
+            if d.fits { "" } else { "  OVER CAPACITY" }
+        );
+    }
+    let over: Vec<String> = report.devices.iter().filter(|d| !d.fits).map(|d| d.device.to_string()).collect();
+    if !over.is_empty() {
+        let _ = writeln!(s);
+        let _ = writeln!(
+            s,
+            "memory: device(s) {} exceed their capacity (baton run --strict fails on this)",
+            over.join(", ")
         );
     }
     let top = longest_gaps(report, 5);
@@ -423,7 +550,7 @@ mod tests {
         let costs =
             vec![StageCost { forward: SimDuration(f), backward: SimDuration(b), send_bytes: bytes }; p as usize];
         let tr = simulate(pl, &costs, Topology::full_mesh(p, link), &(0..p).collect::<Vec<_>>()).unwrap();
-        let rep = build(&tr, &Labels { title: "t".into(), seed: 7, jitter: 0.0 });
+        let rep = build(&tr, &Labels { title: "t".into(), seed: 7, ..Labels::default() });
         (tr, rep)
     }
 

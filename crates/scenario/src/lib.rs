@@ -14,6 +14,7 @@
 //! turns text into checked numbers.
 
 pub mod node;
+pub mod profile;
 pub mod units;
 
 use std::path::Path;
@@ -24,13 +25,64 @@ use thiserror::Error;
 pub use node::{Node, Origin, Value};
 
 /// One layer of the model, after `repeat` is expanded.
-#[derive(Clone, Debug, PartialEq, Eq)]
-pub struct Layer {
-    pub name: String,
-    pub forward_ns: u64,
-    pub backward_ns: u64,
-    /// Bytes this layer sends on per micro-batch (and receives back as gradient).
-    pub activation_bytes: u64,
+pub use baton_model::LayerCost as Layer;
+pub use baton_model::{Speed, Transformer};
+
+/// Where the layer table came from.
+#[derive(Clone, Debug, PartialEq)]
+pub enum ModelSource {
+    /// Written in `model.layers`.
+    Layers,
+    /// Read from the CSV profile at this path (as resolved).
+    Profile(std::path::PathBuf),
+    /// Derived from `model.transformer` and `cluster.device`.
+    Transformer(Transformer),
+}
+
+/// One accelerator's properties (`cluster.device`).
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct DeviceSpec {
+    pub peak_flop_per_s: Option<u64>,
+    pub efficiency: Option<f64>,
+    /// Memory capacity; `None` means unlimited.
+    pub memory_bytes: Option<u64>,
+}
+
+/// Whether activations are recomputed in the backward pass.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub enum Recompute {
+    /// Keep every layer's stash until the backward pass.
+    #[default]
+    None,
+    /// Keep only each piece's input; run the piece's forward again before its
+    /// backward (common practice, no source).
+    Full,
+}
+
+impl Recompute {
+    pub fn name(self) -> &'static str {
+        match self {
+            Recompute::None => "none",
+            Recompute::Full => "full",
+        }
+    }
+}
+
+/// The `training` section.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Training {
+    /// Bytes of model state per parameter: 16 for mixed-precision Adam (2 + 2 +
+    /// 12; Rajbhandari et al., "ZeRO", SC 2020, sec. 3.1).
+    pub state_bytes_per_param: u64,
+    /// Bytes every device keeps aside (framework, buffers).
+    pub reserved_bytes: u64,
+    pub recompute: Recompute,
+}
+
+impl Default for Training {
+    fn default() -> Self {
+        Training { state_bytes_per_param: 16, reserved_bytes: 0, recompute: Recompute::None }
+    }
 }
 
 /// One direction of a link between two devices.
@@ -44,6 +96,7 @@ pub struct LinkParams {
 pub struct Cluster {
     pub devices: u32,
     pub link: LinkParams,
+    pub device: DeviceSpec,
     /// Each op's compute time is scaled by a factor drawn uniformly from
     /// `[1 - jitter, 1 + jitter]` with the scenario's seed; 0 (the default)
     /// makes every op take exactly its cost.
@@ -58,6 +111,8 @@ pub struct Pipeline {
     pub micro_batches: u32,
     pub schedule: ScheduleKind,
     pub chunks: u32,
+    /// Samples per micro-batch.
+    pub micro_batch_size: u32,
 }
 
 /// A validated scenario.
@@ -65,9 +120,11 @@ pub struct Pipeline {
 pub struct Scenario {
     pub title: String,
     pub seed: u64,
+    pub source: ModelSource,
     pub layers: Vec<Layer>,
     pub cluster: Cluster,
     pub pipeline: Pipeline,
+    pub training: Training,
 }
 
 /// The summed cost of one piece of the model (one virtual stage).
@@ -80,6 +137,10 @@ pub struct Piece {
     pub backward_ns: u64,
     /// Its last layer's activation: what it sends on per micro-batch.
     pub send_bytes: u64,
+    /// Bytes held per micro-batch from the forward's start to the backward's
+    /// end: the layers' stashes, or with full recomputation the piece's input.
+    pub stash_bytes: u64,
+    pub params: u64,
 }
 
 impl Scenario {
@@ -90,23 +151,41 @@ impl Scenario {
 
     /// The pieces the split cuts the model into, in order (virtual stages).
     pub fn pieces(&self) -> Vec<Piece> {
+        self.pieces_of(&self.pipeline.split)
+    }
+
+    /// The pieces another `split` would cut the model into (it must cover the
+    /// layers exactly). With full recomputation a piece's backward also runs
+    /// its forward again, and it stashes only its input (the previous layer's
+    /// activation; nothing for the first piece, whose input is token ids).
+    pub fn pieces_of(&self, split: &[u32]) -> Vec<Piece> {
+        let full = self.training.recompute == Recompute::Full;
         let mut first = 0usize;
-        self.pipeline
-            .split
+        split
             .iter()
             .map(|&n| {
                 let layers = &self.layers[first..first + n as usize];
+                let forward_ns: u64 = layers.iter().map(|l| l.forward_ns).sum();
+                let backward_ns: u64 = layers.iter().map(|l| l.backward_ns).sum();
+                let input = if first == 0 { 0 } else { self.layers[first - 1].activation_bytes };
                 let piece = Piece {
                     first_layer: first,
                     layers: n as usize,
-                    forward_ns: layers.iter().map(|l| l.forward_ns).sum(),
-                    backward_ns: layers.iter().map(|l| l.backward_ns).sum(),
+                    forward_ns,
+                    backward_ns: if full { backward_ns + forward_ns } else { backward_ns },
                     send_bytes: layers.last().map_or(0, |l| l.activation_bytes),
+                    stash_bytes: if full { input } else { layers.iter().map(|l| l.stash_bytes).sum() },
+                    params: layers.iter().map(|l| l.params).sum(),
                 };
                 first += n as usize;
                 piece
             })
             .collect()
+    }
+
+    /// Samples per step: micro-batches x micro-batch size.
+    pub fn samples_per_step(&self) -> u64 {
+        self.pipeline.micro_batches as u64 * self.pipeline.micro_batch_size as u64
     }
 }
 
@@ -121,6 +200,8 @@ pub enum ScenarioError {
     Invalid { file: String, key: String, origin: Origin, message: String },
     #[error("--set {arg}: {message}")]
     Override { arg: String, message: String },
+    #[error("{file}:{line}: column {column}: {message}")]
+    Profile { file: String, line: u64, column: String, message: String },
 }
 
 fn invalid_text(file: &str, key: &str, origin: &Origin, message: &str) -> String {
@@ -155,16 +236,29 @@ pub fn load(path: &Path, overrides: &[String]) -> Result<Scenario, ScenarioError
     let text = std::fs::read_to_string(path)
         .map_err(|e| ScenarioError::Read { file: file.clone(), message: e.to_string() })?;
     let default_title = path.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
-    parse(&text, &file, &default_title, overrides)
+    let base = path.parent().unwrap_or(Path::new(""));
+    parse_in(&text, &file, &default_title, base, overrides)
 }
 
-/// Parses scenario text; `file` labels error messages.
+/// Parses scenario text; `file` labels error messages; a profile path is
+/// taken relative to the current directory.
 pub fn parse(text: &str, file: &str, default_title: &str, overrides: &[String]) -> Result<Scenario, ScenarioError> {
+    parse_in(text, file, default_title, Path::new(""), overrides)
+}
+
+/// Parses scenario text whose relative paths resolve against `base_dir`.
+pub fn parse_in(
+    text: &str,
+    file: &str,
+    default_title: &str,
+    base_dir: &Path,
+    overrides: &[String],
+) -> Result<Scenario, ScenarioError> {
     let mut doc = node::parse_document(text, file)?;
     for arg in overrides {
         node::apply_override(&mut doc, arg)?;
     }
-    from_tree(&doc, file, default_title)
+    from_tree(&doc, file, default_title, base_dir)
 }
 
 /// A value being read, with its key path.
@@ -177,6 +271,7 @@ struct At<'a> {
 
 struct Cx<'a> {
     file: &'a str,
+    base_dir: &'a Path,
 }
 
 impl Cx<'_> {
@@ -262,6 +357,24 @@ impl<'a> At<'a> {
         Ok(v)
     }
 
+    /// Any number.
+    fn number(&self) -> Result<f64, ScenarioError> {
+        match &self.node.value {
+            Value::Int(i) => Ok(*i as f64),
+            Value::Float(f) if f.is_finite() => Ok(*f),
+            other => Err(self.err(format!("expected a number, found {}", other.kind()))),
+        }
+    }
+
+    /// A count: a whole number, or text such as `350M` or `1.2B`.
+    fn count(&self) -> Result<u64, ScenarioError> {
+        match &self.node.value {
+            Value::Int(i) if *i >= 0 && *i <= u64::MAX as i128 => Ok(*i as u64),
+            Value::Str(s) => units::parse_count(s).map_err(|m| self.err(m)),
+            other => Err(self.err(format!("expected a count such as 350M or 1.2B, found {}", other.kind()))),
+        }
+    }
+
     /// A number in `[0, 1)`.
     fn fraction(&self) -> Result<f64, ScenarioError> {
         let v = match &self.node.value {
@@ -334,39 +447,130 @@ impl<'a> MapAt<'a> {
     }
 }
 
-fn from_tree(doc: &Node, file: &str, default_title: &str) -> Result<Scenario, ScenarioError> {
-    let cx = Cx { file };
+const PIPELINE_KEYS: [&str; 6] = ["stages", "split", "micro_batches", "schedule", "chunks", "micro_batch_size"];
+
+fn from_tree(doc: &Node, file: &str, default_title: &str, base_dir: &Path) -> Result<Scenario, ScenarioError> {
+    let cx = Cx { file, base_dir };
     let root = At { cx: &cx, path: "", node: doc };
-    let top = root.map(&["title", "seed", "model", "cluster", "pipeline"])?;
+    let top = root.map(&["title", "seed", "model", "cluster", "pipeline", "training"])?;
     let title = top.opt("title", |a| a.text())?.unwrap_or_else(|| default_title.to_string());
     let seed = top.opt("seed", |a| a.int(0, u64::MAX as i128).map(|v| v as u64))?.unwrap_or(1);
 
-    let layers = top.req("model", |model| {
-        let m = model.map(&["layers"])?;
-        m.req("layers", read_layers)
-    })?;
-
-    let cluster = top.req("cluster", |c| {
-        let c = c.map(&["devices", "link", "jitter"])?;
-        let devices = c.req("devices", |a| a.int(1, MAX_DEVICES).map(|v| v as u32))?;
-        let link = c.req("link", |l| {
-            let l = l.map(&["latency", "bandwidth"])?;
-            let latency_ns = l.req("latency", |a| a.duration_ns())?;
-            let bytes_per_s = l.req("bandwidth", |a| {
-                let v = a.bytes_per_s()?;
-                if v == 0 {
-                    return Err(a.err("must be more than zero"));
-                }
-                Ok(v)
-            })?;
-            Ok(LinkParams { latency_ns, bytes_per_s })
-        })?;
-        let jitter = c.opt("jitter", |a| a.fraction())?.unwrap_or(0.0);
-        Ok(Cluster { devices, link, jitter })
-    })?;
-
+    let cluster = top.req("cluster", read_cluster)?;
+    // The micro-batch size shapes derived layer costs, so it is read first.
+    let micro_batch_size =
+        top.opt("pipeline", |p| p.map(&PIPELINE_KEYS)?.opt("micro_batch_size", |a| a.u32(1)))?.flatten().unwrap_or(1);
+    let (source, layers) = top.req("model", |m| read_model(m, &cluster, micro_batch_size))?;
+    let training = top.opt("training", read_training)?.unwrap_or_default();
     let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster))?;
-    Ok(Scenario { title, seed, layers, cluster, pipeline })
+    Ok(Scenario { title, seed, source, layers, cluster, pipeline, training })
+}
+
+fn positive<T: PartialOrd + Default>(a: &At<'_>, v: T) -> Result<T, ScenarioError> {
+    if v > T::default() {
+        Ok(v)
+    } else {
+        Err(a.err("must be more than zero"))
+    }
+}
+
+fn read_cluster(c: At<'_>) -> Result<Cluster, ScenarioError> {
+    let c = c.map(&["devices", "link", "jitter", "device"])?;
+    let devices = c.req("devices", |a| a.int(1, MAX_DEVICES).map(|v| v as u32))?;
+    let link = c.req("link", |l| {
+        let l = l.map(&["latency", "bandwidth"])?;
+        let latency_ns = l.req("latency", |a| a.duration_ns())?;
+        let bytes_per_s = l.req("bandwidth", |a| positive(&a, a.bytes_per_s()?))?;
+        Ok(LinkParams { latency_ns, bytes_per_s })
+    })?;
+    let jitter = c.opt("jitter", |a| a.fraction())?.unwrap_or(0.0);
+    let device = c
+        .opt("device", |d| {
+            let d = d.map(&["peak", "efficiency", "memory"])?;
+            Ok(DeviceSpec {
+                peak_flop_per_s: d
+                    .opt("peak", |a| positive(&a, a.quantity(units::parse_flop_per_s, units::FLOP_RATE_UNITS)?))?,
+                efficiency: d.opt("efficiency", |a| {
+                    let v = a.number()?;
+                    if v > 0.0 && v <= 1.0 {
+                        Ok(v)
+                    } else {
+                        Err(a.err(format!("must be more than 0 and at most 1, found {v}")))
+                    }
+                })?,
+                memory_bytes: d.opt("memory", |a| positive(&a, a.bytes()?))?,
+            })
+        })?
+        .unwrap_or_default();
+    Ok(Cluster { devices, link, jitter, device })
+}
+
+fn read_training(t: At<'_>) -> Result<Training, ScenarioError> {
+    let t = t.map(&["state_bytes_per_param", "reserved", "recompute"])?;
+    let d = Training::default();
+    Ok(Training {
+        state_bytes_per_param: t
+            .opt("state_bytes_per_param", |a| a.int(0, 1 << 20).map(|v| v as u64))?
+            .unwrap_or(d.state_bytes_per_param),
+        reserved_bytes: t.opt("reserved", |a| a.bytes())?.unwrap_or(d.reserved_bytes),
+        recompute: t
+            .opt("recompute", |a| match a.str()? {
+                "none" => Ok(Recompute::None),
+                "full" => Ok(Recompute::Full),
+                other => Err(a.err(format!("unknown recompute `{other}`; expected none or full"))),
+            })?
+            .unwrap_or(d.recompute),
+    })
+}
+
+fn read_model(
+    model: At<'_>,
+    cluster: &Cluster,
+    micro_batch_size: u32,
+) -> Result<(ModelSource, Vec<Layer>), ScenarioError> {
+    const SOURCES: [&str; 3] = ["layers", "profile", "transformer"];
+    let m = model.map(&SOURCES)?;
+    let given: Vec<&str> = SOURCES.iter().copied().filter(|k| m.get(k).is_some()).collect();
+    if given.len() != 1 {
+        return Err(model.err(format!(
+            "give exactly one of layers, profile or transformer{}",
+            if given.is_empty() { String::new() } else { format!(", not {}", given.join(" and ")) }
+        )));
+    }
+    match given[0] {
+        "layers" => Ok((ModelSource::Layers, m.req("layers", read_layers)?)),
+        "profile" => m.req("profile", |a| {
+            let rel = a.str()?;
+            let path = model.cx.base_dir.join(rel);
+            let text =
+                std::fs::read_to_string(&path).map_err(|e| a.err(format!("cannot read {}: {e}", path.display())))?;
+            let layers = profile::read(&text, &path.display().to_string())?;
+            Ok((ModelSource::Profile(path), layers))
+        }),
+        _ => m.req("transformer", |a| {
+            let t = a.map(&["layers", "hidden", "heads", "seq_len", "vocab"])?;
+            let n = |k: &str, max: i128| t.req(k, |a| a.int(1, max).map(|v| v as u64));
+            let shape = Transformer {
+                layers: n("layers", MAX_LAYERS as i128 - 2)?,
+                hidden: n("hidden", 1 << 24)?,
+                heads: n("heads", 1 << 16)?,
+                seq_len: n("seq_len", 1 << 24)?,
+                vocab: n("vocab", 1 << 26)?,
+            };
+            let need = |key: &str| {
+                model.cx.err(
+                    &format!("cluster.device.{key}"),
+                    &Origin::Default,
+                    "is needed to derive layer times from model.transformer",
+                )
+            };
+            let speed = Speed {
+                peak_flop_per_s: cluster.device.peak_flop_per_s.ok_or_else(|| need("peak"))? as f64,
+                efficiency: cluster.device.efficiency.ok_or_else(|| need("efficiency"))?,
+            };
+            Ok((ModelSource::Transformer(shape), shape.layer_table(micro_batch_size as u64, speed)))
+        }),
+    }
 }
 
 fn read_layers(list: At<'_>) -> Result<Vec<Layer>, ScenarioError> {
@@ -380,31 +584,28 @@ fn read_layers(list: At<'_>) -> Result<Vec<Layer>, ScenarioError> {
     for (i, item) in items.iter().enumerate() {
         let path = format!("{}.{i}", list.path);
         let at = At { cx: list.cx, path: &path, node: item };
-        let m = at.map(&["name", "repeat", "forward", "backward", "activation"])?;
+        let m = at.map(&["name", "repeat", "forward", "backward", "activation", "params", "stash"])?;
         let name = m.opt("name", |a| a.text())?.unwrap_or_else(|| format!("layer{i}"));
         let repeat = m.opt("repeat", |a| a.int(1, MAX_LAYERS as i128))?.unwrap_or(1) as u64;
-        let forward_ns = m.req("forward", |a| {
-            let v = a.duration_ns()?;
-            if v == 0 {
-                return Err(a.err("must be more than zero"));
-            }
-            Ok(v)
-        })?;
+        let forward_ns = m.req("forward", |a| positive(&a, a.duration_ns()?))?;
         let backward_ns = m.opt("backward", |a| a.duration_ns())?.unwrap_or(forward_ns.saturating_mul(2));
         let activation_bytes = m.req("activation", |a| a.bytes())?;
+        let stash_bytes = m.opt("stash", |a| a.bytes())?.unwrap_or(activation_bytes);
+        let params = m.opt("params", |a| a.count())?.unwrap_or(0);
         if layers.len() as u64 + repeat > MAX_LAYERS {
             return Err(at.err(format!("the model expands to more than {MAX_LAYERS} layers")));
         }
         for r in 0..repeat {
             let name = if repeat > 1 { format!("{name}.{r}") } else { name.clone() };
-            layers.push(Layer { name, forward_ns, backward_ns, activation_bytes });
+            layers.push(Layer { name, forward_ns, backward_ns, activation_bytes, stash_bytes, params });
         }
     }
     Ok(layers)
 }
 
 fn read_pipeline(p: At<'_>, layers: &[Layer], cluster: &Cluster) -> Result<Pipeline, ScenarioError> {
-    let m = p.map(&["stages", "split", "micro_batches", "schedule", "chunks"])?;
+    let m = p.map(&PIPELINE_KEYS)?;
+    let micro_batch_size = m.opt("micro_batch_size", |a| a.u32(1))?.unwrap_or(1);
     let stages = m.req("stages", |a| {
         let v = a.u32(1)?;
         if v > MAX_STAGES {
@@ -470,7 +671,7 @@ fn read_pipeline(p: At<'_>, layers: &[Layer], cluster: &Cluster) -> Result<Pipel
         };
         p.cx.err(&join(p.path, key), &field_origin(key), e.to_string())
     })?;
-    Ok(Pipeline { stages, split, micro_batches, schedule, chunks })
+    Ok(Pipeline { stages, split, micro_batches, schedule, chunks, micro_batch_size })
 }
 
 /// `layers` split into `pieces` contiguous runs whose sizes differ by at most
@@ -594,7 +795,7 @@ pipeline:
         assert!(e.to_string().starts_with("t.yaml:12:3: pipeline.micro_batches: missing"), "{e}");
         let text = EXAMPLE.replace("  chunks: 1\n", "  chunk: 1\n");
         let e = parse_with(&text, &[]).unwrap_err();
-        assert_eq!(e.to_string(), "t.yaml:16:3: pipeline.chunk: unknown key `chunk`; expected one of: stages, split, micro_batches, schedule, chunks");
+        assert_eq!(e.to_string(), "t.yaml:16:3: pipeline.chunk: unknown key `chunk`; expected one of: stages, split, micro_batches, schedule, chunks, micro_batch_size");
         let e = parse_with(&EXAMPLE.replace("cluster:", "klaster:"), &[]).unwrap_err();
         assert_eq!(e.key(), Some("klaster"));
     }

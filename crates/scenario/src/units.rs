@@ -14,6 +14,11 @@ pub const SIZE_UNITS: &str = "B, kB, MB, GB, TB (powers of 10), KiB, MiB, GiB, T
 pub const BANDWIDTH_UNITS: &str =
     "B/s, kB/s, MB/s, GB/s, TB/s, KiB/s, MiB/s, GiB/s, bit/s, kbit/s, Mbit/s, Gbit/s, Tbit/s";
 
+/// Accepted arithmetic-speed units.
+pub const FLOP_RATE_UNITS: &str = "FLOP/s, kFLOP/s, MFLOP/s, GFLOP/s, TFLOP/s, PFLOP/s";
+/// Accepted count suffixes.
+pub const COUNT_SUFFIXES: &str = "none, k (thousand), M (million), B (billion), T (trillion)";
+
 /// A multiplier expressed as `num / den` of the base unit.
 type Scale = (u128, u128);
 
@@ -48,6 +53,18 @@ const BANDWIDTH: &[(&str, Scale)] = &[
     ("Tbit/s", (1_000_000_000_000, 8)),
 ];
 
+const FLOP_RATE: &[(&str, Scale)] = &[
+    ("FLOP/s", (1, 1)),
+    ("kFLOP/s", (1_000, 1)),
+    ("MFLOP/s", (1_000_000, 1)),
+    ("GFLOP/s", (1_000_000_000, 1)),
+    ("TFLOP/s", (1_000_000_000_000, 1)),
+    ("PFLOP/s", (1_000_000_000_000_000, 1)),
+];
+
+const COUNT: &[(&str, Scale)] =
+    &[("", (1, 1)), ("k", (1_000, 1)), ("M", (1_000_000, 1)), ("B", (1_000_000_000, 1)), ("T", (1_000_000_000_000, 1))];
+
 /// Splits `"1.25 ms"` into the exact decimal `125 / 10^2` and the unit text.
 fn split_number(text: &str) -> Result<(u128, u32, &str), String> {
     let t = text.trim();
@@ -69,7 +86,7 @@ fn split_number(text: &str) -> Result<(u128, u32, &str), String> {
 
 fn parse(text: &str, table: &[(&str, Scale)], what: &str, accepted: &str, base: &str) -> Result<u64, String> {
     let (digits, decimals, unit) = split_number(text)?;
-    if unit.is_empty() {
+    if unit.is_empty() && !table.iter().any(|(u, _)| u.is_empty()) {
         return Err(format!("`{text}` needs a unit; {what} accepts {accepted}"));
     }
     let Some(&(_, (num, den))) = table.iter().find(|(u, _)| *u == unit) else {
@@ -81,6 +98,16 @@ fn parse(text: &str, table: &[(&str, Scale)], what: &str, accepted: &str, base: 
         return Err(format!("`{text}` is not a whole number of {base}"));
     }
     u64::try_from(scaled / divisor).map_err(|_| format!("`{text}` is too large"))
+}
+
+/// Parses an arithmetic speed into FLOP per second.
+pub fn parse_flop_per_s(text: &str) -> Result<u64, String> {
+    parse(text, FLOP_RATE, "a speed", FLOP_RATE_UNITS, "FLOP per second")
+}
+
+/// Parses a count such as `350M` or `1.2B` (powers of 10).
+pub fn parse_count(text: &str) -> Result<u64, String> {
+    parse(text, COUNT, "a count", COUNT_SUFFIXES, "units")
 }
 
 /// Parses a duration into nanoseconds.
@@ -126,6 +153,17 @@ mod tests {
         assert_eq!(parse_bytes_per_s("64GB/s"), Ok(64_000_000_000));
         assert_eq!(parse_bytes_per_s("100Gbit/s"), Ok(12_500_000_000));
         assert_eq!(parse_bytes_per_s("1 GiB/s"), Ok(1 << 30));
+    }
+
+    #[test]
+    fn counts_and_speeds() {
+        assert_eq!(parse_count("350M"), Ok(350_000_000));
+        assert_eq!(parse_count("1.2B"), Ok(1_200_000_000));
+        assert_eq!(parse_count("7"), Ok(7));
+        assert!(parse_count("1.5").unwrap_err().contains("whole number"));
+        assert!(parse_count("3X").unwrap_err().contains("unknown unit"));
+        assert_eq!(parse_flop_per_s("400TFLOP/s"), Ok(400_000_000_000_000));
+        assert_eq!(parse_flop_per_s("1.5 PFLOP/s"), Ok(1_500_000_000_000_000));
     }
 
     #[test]
