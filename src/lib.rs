@@ -70,6 +70,43 @@ pub fn memory_inputs(s: &Scenario) -> MemoryInputs {
     }
 }
 
+/// The per-layer cost table `baton run --show-layers` prints.
+pub fn layer_table(s: &Scenario) -> String {
+    use baton_engine::format_ns;
+    use baton_report::format_bytes;
+    use std::fmt::Write as _;
+    let source = match &s.source {
+        baton_scenario::ModelSource::Layers => "model.layers".to_string(),
+        baton_scenario::ModelSource::Profile(p) => format!("profile {}", p.display()),
+        baton_scenario::ModelSource::Transformer(t) => format!(
+            "transformer l={} h={} a={} s={} V={}, micro-batch size {}",
+            t.layers, t.hidden, t.heads, t.seq_len, t.vocab, s.pipeline.micro_batch_size
+        ),
+    };
+    let mut out = format!("layers ({}, from {source})\n", s.layers.len());
+    let _ = writeln!(
+        out,
+        "{:>5}  {:<16} {:>12} {:>12} {:>12} {:>12} {:>16}",
+        "#", "name", "forward", "backward", "activation", "stash", "params"
+    );
+    for (i, l) in s.layers.iter().enumerate() {
+        let _ = writeln!(
+            out,
+            "{:>5}  {:<16} {:>12} {:>12} {:>12} {:>12} {:>16}",
+            i,
+            l.name,
+            format_ns(l.forward_ns),
+            format_ns(l.backward_ns),
+            format_bytes(l.activation_bytes),
+            format_bytes(l.stash_bytes),
+            l.params
+        );
+    }
+    let params: u64 = s.layers.iter().map(|l| l.params).sum();
+    let _ = writeln!(out, "total parameters {params}");
+    out
+}
+
 /// The labels a report of `s` carries.
 pub fn labels(s: &Scenario) -> Labels {
     Labels {

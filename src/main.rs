@@ -26,7 +26,9 @@ enum Command {
         baton run scenarios/unbalanced-split.yaml --svg timeline.svg --trace trace.csv\n  \
         baton run scenarios/interleaved.yaml --json report.json --set pipeline.micro_batches=16\n  \
         baton run scenarios/interleaved.yaml --json - | jq .step_time_ms\n\n\
-        Exit status: 0 success, 2 invalid scenario or usage, 1 anything else.")]
+        baton run scenarios/heavy-head.yaml --memory-svg memory.svg --strict\n  \
+        baton run scenarios/heavy-head.yaml --show-layers --layers-csv layers.csv\n\n\
+        Exit status: 0 success, 2 invalid scenario or usage, 3 over memory capacity with --strict, 1 anything else.")]
     Run(RunArgs),
 }
 
@@ -49,6 +51,22 @@ struct RunArgs {
     /// checked; repeatable, e.g. --set pipeline.micro_batches=16 --set pipeline.schedule=fill-drain.
     #[arg(long = "set", value_name = "KEY=VALUE")]
     sets: Vec<String>,
+    /// Write each device's memory over the step (model state, activations,
+    /// capacity) as SVG to PATH, e.g. --memory-svg memory.svg.
+    #[arg(long, value_name = "PATH")]
+    memory_svg: Option<PathBuf>,
+    /// Print the per-layer cost table the simulation used (from the layers,
+    /// the profile or the transformer formulas), e.g. --show-layers.
+    #[arg(long)]
+    show_layers: bool,
+    /// Write the per-layer cost table as a profile CSV that `model: { profile: PATH }`
+    /// reads back exactly, e.g. --layers-csv layers.csv.
+    #[arg(long, value_name = "PATH")]
+    layers_csv: Option<PathBuf>,
+    /// Exit with status 3 when any device's peak memory exceeds its capacity
+    /// (outputs are still written), e.g. --strict.
+    #[arg(long)]
+    strict: bool,
 }
 
 /// A failure and the exit status it deserves.
@@ -57,6 +75,8 @@ enum Failure {
     Input(anyhow::Error),
     /// Anything else: exit 1.
     Other(anyhow::Error),
+    /// `--strict` and a device over its memory capacity: exit 3.
+    OverCapacity(String),
 }
 
 impl From<anyhow::Error> for Failure {
@@ -85,6 +105,10 @@ fn main() -> ExitCode {
         Err(Failure::Other(e)) => {
             eprintln!("error: {e:#}");
             ExitCode::from(1)
+        }
+        Err(Failure::OverCapacity(what)) => {
+            eprintln!("error: {what}");
+            ExitCode::from(3)
         }
     }
 }
@@ -144,6 +168,20 @@ fn run(args: RunArgs) -> Result<(), Failure> {
         p.write_all(svg.as_bytes())?;
         pending.push(p);
     }
+    if let Some(path) = &args.memory_svg {
+        let memory = baton::memory_inputs(&scenario);
+        let svg = baton::report::memory_chart::render(&outcome.trace, report, &memory)
+            .context("cannot draw the memory chart")?;
+        let mut p = prepare(path)?;
+        p.write_all(svg.as_bytes())?;
+        pending.push(p);
+    }
+    if let Some(path) = &args.layers_csv {
+        let mut p = prepare(path)?;
+        baton::scenario::profile::write(&scenario.layers, p.tmp.as_file_mut())
+            .with_context(|| format!("cannot write {}", path.display()))?;
+        pending.push(p);
+    }
     if let Some(path) = &args.trace {
         let mut p = prepare(path)?;
         let mut buf = std::io::BufWriter::new(p.tmp.as_file_mut());
@@ -171,7 +209,12 @@ fn run(args: RunArgs) -> Result<(), Failure> {
         p.commit()?;
     }
 
-    let summary = baton::report::summary(report);
+    let mut summary = String::new();
+    if args.show_layers {
+        summary.push_str(&baton::layer_table(&scenario));
+        summary.push('\n');
+    }
+    summary.push_str(&baton::report::summary(report));
     if json_to_stdout {
         eprint!("{summary}");
         let mut out = std::io::stdout().lock();
@@ -179,11 +222,25 @@ fn run(args: RunArgs) -> Result<(), Failure> {
     } else {
         let mut out = std::io::stdout().lock();
         out.write_all(summary.as_bytes()).context("cannot write to standard output")?;
-        for (label, path) in [("chart", &args.svg), ("trace", &args.trace), ("report", &args.json)] {
+        let outputs = [
+            ("chart", &args.svg),
+            ("memory chart", &args.memory_svg),
+            ("layer table", &args.layers_csv),
+            ("trace", &args.trace),
+            ("report", &args.json),
+        ];
+        for (label, path) in outputs {
             if let Some(p) = path {
-                writeln!(out, "{label:<6} written to {}", p.display()).context("cannot write to standard output")?;
+                writeln!(out, "{label} written to {}", p.display()).context("cannot write to standard output")?;
             }
         }
+    }
+    if args.strict && !report.fits {
+        let over: Vec<String> = report.devices.iter().filter(|d| !d.fits).map(|d| d.device.to_string()).collect();
+        return Err(Failure::OverCapacity(format!(
+            "--strict: device(s) {} exceed their memory capacity",
+            over.join(", ")
+        )));
     }
     Ok(())
 }

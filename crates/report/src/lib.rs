@@ -17,6 +17,7 @@
 //! simulated; it only reads the trace.
 
 pub mod gantt;
+pub mod memory_chart;
 
 use std::fmt::{self, Write as _};
 use std::io;

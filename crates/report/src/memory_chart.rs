@@ -1,0 +1,116 @@
+//! SVG chart of each device's memory over one step.
+//!
+//! One panel per device: the model state (plus reserved memory) as a flat
+//! band, the activations held stacked on top of it as a step area, and the
+//! device's capacity as a dashed red line. Drawn with `plotters` (SVG backend
+//! only, so no fonts are needed to make it).
+
+use baton_executor::Trace;
+use plotters::prelude::*;
+
+use crate::{activation_timeline, format_bytes, MemoryInputs, Report, ReportError};
+
+const STATE: RGBColor = RGBColor(0x7a, 0x86, 0x99);
+const ACTIVATIONS: RGBColor = RGBColor(0x3a, 0x9e, 0x8c);
+const CAPACITY: RGBColor = RGBColor(0xc0, 0x39, 0x2b);
+const GIB: f64 = (1u64 << 30) as f64;
+
+fn draw_err<E: std::fmt::Debug>(e: E) -> ReportError {
+    ReportError::Draw(format!("{e:?}"))
+}
+
+/// Draws the memory chart; returns the SVG document.
+pub fn render(trace: &Trace, report: &Report, memory: &MemoryInputs) -> Result<String, ReportError> {
+    let total_ops: usize = trace.ops.iter().map(Vec::len).sum();
+    if total_ops > crate::gantt::MAX_CHART_OPS {
+        return Err(ReportError::TooLarge { ops: total_ops, limit: crate::gantt::MAX_CHART_OPS });
+    }
+    let lanes = trace.ops.len().max(1);
+    let panel_h = 150u32;
+    let (width, height) = (1100u32, 60 + panel_h * lanes as u32 + 60);
+    let t0 = trace.start().as_ns();
+    let step_ms = (report.step_time_ns.max(1)) as f64 / 1e6;
+    let ms_at = |t: u64| t.saturating_sub(t0) as f64 / 1e6;
+    let reserved = memory.reserved_bytes;
+
+    // One vertical scale for every panel, so devices compare at a glance.
+    let top_bytes =
+        report.devices.iter().map(|d| d.peak_memory_bytes).chain(memory.capacity_bytes).max().unwrap_or(1).max(1);
+    let y_max = top_bytes as f64 / GIB * 1.08;
+
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (width, height)).into_drawing_area();
+        root.fill(&WHITE).map_err(draw_err)?;
+        let root =
+            root.titled(&format!("{}: memory per device", report.title), ("sans-serif", 20)).map_err(draw_err)?;
+        let (body, footer) = root.split_vertically(panel_h * lanes as u32);
+        let panels = body.split_evenly((lanes, 1));
+        for (d, panel) in panels.iter().enumerate() {
+            let dev = &report.devices[d];
+            let base = (dev.state_bytes + reserved) as f64 / GIB;
+            let capacity = dev.memory_capacity_bytes.map_or_else(|| "unlimited".into(), format_bytes);
+            let caption = format!(
+                "device {d}: peak {} / {}{}",
+                format_bytes(dev.peak_memory_bytes),
+                capacity,
+                if dev.fits { "" } else { "  (over capacity)" }
+            );
+            let mut chart = ChartBuilder::on(panel)
+                .caption(caption, ("sans-serif", 13))
+                .margin(6)
+                .x_label_area_size(if d + 1 == lanes { 32 } else { 14 })
+                .y_label_area_size(70)
+                .build_cartesian_2d(0f64..step_ms, 0f64..y_max)
+                .map_err(draw_err)?;
+            let mut mesh = chart.configure_mesh();
+            mesh.y_desc("GiB")
+                .y_labels(4)
+                .x_labels(10)
+                .label_style(("sans-serif", 11))
+                .light_line_style(RGBColor(238, 238, 238));
+            if d + 1 == lanes {
+                mesh.x_desc("time (ms)");
+            } else {
+                mesh.x_label_formatter(&|_| String::new());
+            }
+            mesh.draw().map_err(draw_err)?;
+            chart
+                .draw_series(std::iter::once(Rectangle::new([(0.0, 0.0), (step_ms, base)], STATE.filled())))
+                .map_err(draw_err)?;
+            if !memory.stash_bytes.is_empty() {
+                let timeline = activation_timeline(trace, &memory.stash_bytes, d);
+                let mut points = Vec::with_capacity(2 * timeline.len() + 2);
+                let mut level = base;
+                points.push((0.0, base));
+                for (t, held) in timeline {
+                    let x = ms_at(t.as_ns());
+                    points.push((x, level));
+                    level = base + held as f64 / GIB;
+                    points.push((x, level));
+                }
+                points.push((step_ms, level));
+                points.push((step_ms, base));
+                chart
+                    .draw_series(std::iter::once(Polygon::new(points, ACTIVATIONS.mix(0.85).filled())))
+                    .map_err(draw_err)?;
+            }
+            if let Some(c) = dev.memory_capacity_bytes {
+                let y = c as f64 / GIB;
+                chart
+                    .draw_series(DashedLineSeries::new(vec![(0.0, y), (step_ms, y)], 8, 5, CAPACITY.stroke_width(2)))
+                    .map_err(draw_err)?;
+            }
+        }
+        let legend: [(&str, RGBColor); 3] =
+            [("model state + reserved", STATE), ("activations held", ACTIVATIONS), ("capacity", CAPACITY)];
+        let mut x = 80;
+        for (name, colour) in legend {
+            footer.draw(&Rectangle::new([(x, 20), (x + 16, 32)], colour.filled())).map_err(draw_err)?;
+            footer.draw(&Text::new(name.to_string(), (x + 22, 20), ("sans-serif", 12))).map_err(draw_err)?;
+            x += 60 + 8 * name.len() as i32;
+        }
+        root.present().map_err(draw_err)?;
+    }
+    Ok(svg)
+}
