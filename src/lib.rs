@@ -6,6 +6,8 @@
 //! executor (`baton-executor`) plays the step on the event engine
 //! (`baton-engine`), and `baton-report` turns the trace into numbers and charts.
 
+pub mod planner;
+
 pub use baton_engine as engine;
 pub use baton_executor as executor;
 pub use baton_link as link;

@@ -13,6 +13,7 @@
 //! This crate deliberately knows nothing about simulation, links or reports: it
 //! turns text into checked numbers.
 
+pub mod edit;
 pub mod node;
 pub mod profile;
 pub mod units;

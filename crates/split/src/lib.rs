@@ -361,6 +361,23 @@ pub fn solve(problem: &Problem) -> Result<Outcome, SplitError> {
     Ok(Outcome::Fits(cx.solution(&split)))
 }
 
+/// Times and memory of a given `split` of `problem` (it must cover the
+/// layers with `p x v` positive entries).
+pub fn evaluate(problem: &Problem, split: &[u32]) -> Result<Solution, SplitError> {
+    let pieces = problem.devices * problem.chunks;
+    if pieces == 0 {
+        return Err(SplitError::NoPieces);
+    }
+    if split.len() != pieces || problem.in_flight.len() != pieces {
+        return Err(SplitError::InFlight { found: split.len(), expected: pieces });
+    }
+    if split.iter().map(|&x| x as usize).sum::<usize>() != problem.layers.len() {
+        return Err(SplitError::TooFewLayers { pieces, layers: problem.layers.len() });
+    }
+    let cx = Ctx { p: problem, pre: Prefix::new(&problem.layers) };
+    Ok(cx.solution(split))
+}
+
 /// `n` items into `k` runs whose sizes differ by at most one, longer first.
 fn even(n: usize, k: usize) -> Vec<u32> {
     (0..k).map(|i| (n / k + usize::from(i < n % k)) as u32).collect()
