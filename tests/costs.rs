@@ -235,3 +235,21 @@ fn split_matches_brute_force_on_a_small_scenario() {
     assert_eq!(plan.proxy.bottleneck_ns, best * 1_000_000);
     assert!(plan.best.outcome.report.step_time_ns <= plan.proxy_run.outcome.report.step_time_ns);
 }
+
+#[test]
+fn split_memory_accounting_equals_the_simulated_peak() {
+    // With one chunk per device the split search's memory (state + reserve +
+    // in-flight x stash) must equal the simulated peak on every device.
+    for schedule in ["1f1b", "fill-drain"] {
+        let s = baton::scenario::load(
+            Path::new(concat!(env!("CARGO_MANIFEST_DIR"), "/scenarios/heavy-head.yaml")),
+            &[format!("pipeline.schedule={schedule}"), "cluster.device.memory=1TiB".into()],
+        )
+        .unwrap();
+        let problem = baton::planner::problem(&s).unwrap();
+        let eval = baton::planner::evaluate(&problem, &s.pipeline.split).unwrap();
+        let report = baton::simulate(&s).unwrap().report;
+        let simulated: Vec<u64> = report.devices.iter().map(|d| d.peak_memory_bytes).collect();
+        assert_eq!(eval.device_bytes, simulated, "{schedule}");
+    }
+}
