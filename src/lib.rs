@@ -6,7 +6,9 @@
 //! executor (`baton-executor`) plays the step on the event engine
 //! (`baton-engine`), and `baton-report` turns the trace into numbers and charts.
 
+pub mod compare;
 pub mod planner;
+pub mod sweep;
 
 pub use baton_engine as engine;
 pub use baton_executor as executor;

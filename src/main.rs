@@ -39,6 +39,100 @@ enum Command {
         baton split scenarios/interleaved.yaml --chunks 2 --set pipeline.micro_batches=16\n\n\
         Exit status: 0 a split fits, 3 no split fits in memory, 2 invalid scenario or usage, 1 anything else.")]
     Split(SplitArgs),
+    /// Simulate every combination of several values of some keys, in
+    /// parallel, and rank them.
+    #[command(after_help = "Examples:\n  \
+        baton sweep scenarios/unbalanced-split.yaml --vary pipeline.micro_batches=4..64*2 --vary pipeline.schedule=fill-drain,1f1b\n  \
+        baton sweep scenarios/unbalanced-split.yaml --vary 'pipeline.split=[3,3,3,3];[4,3,3,2];[4,4,2,2]' --csv splits.csv\n  \
+        baton sweep scenarios/interleaved.yaml --vary pipeline.chunks=1..4 --vary pipeline.micro_batches=4..32*2 --rank-by throughput --svg sweep.svg\n  \
+        baton sweep scenarios/heavy-head.yaml --vary pipeline.micro_batches=8..128*2 --shard 2/4 --csv part2.csv\n\n\
+        Values: V1,V2 (or ; between bracketed lists), a..b for every whole number from a to b,\n\
+        a..b*f for a, a*f, a*f^2, ... up to b. Invalid points are skipped with their reason.\n\
+        Exit status: 0 done, 2 invalid scenario, --vary or usage, 1 anything else.")]
+    Sweep(SweepArgs),
+    /// Combine the CSV outputs of `baton sweep --shard` runs into one ranked result.
+    #[command(after_help = "Examples:\n  \
+        baton merge part1.csv part2.csv part3.csv part4.csv --csv sweep.csv\n  \
+        baton merge part*.csv --csv sweep.csv --rank-by throughput --json sweep.json")]
+    Merge(MergeArgs),
+    /// Simulate several scenarios (or one and a variant of it) and show them side by side.
+    #[command(after_help = "Examples:\n  \
+        baton compare scenarios/unbalanced-split.yaml balanced.yaml --svg both.svg\n  \
+        baton compare scenarios/interleaved.yaml --set pipeline.schedule=1f1b --set pipeline.chunks=1\n\n\
+        With one scenario, --set makes the variant it is compared with; with several, --set applies to all.")]
+    Compare(CompareArgs),
+}
+
+#[derive(Args)]
+struct SweepArgs {
+    /// The scenario file (YAML), parsed once for the whole sweep.
+    scenario: PathBuf,
+    /// A key and the values it takes, e.g. --vary pipeline.micro_batches=8,16,32
+    /// or --vary pipeline.micro_batches=4..64*2; repeatable (the grid is every combination).
+    #[arg(long = "vary", value_name = "KEY=V1,V2,...")]
+    vary: Vec<String>,
+    /// Write one row per point as CSV, e.g. --csv sweep.csv.
+    #[arg(long, value_name = "PATH")]
+    csv: Option<PathBuf>,
+    /// Write the points as a JSON array, or to standard output with `-`, e.g. --json sweep.json.
+    #[arg(long, value_name = "PATH|-")]
+    json: Option<PathBuf>,
+    /// Draw the ranking field against the first varied key, one line per value
+    /// of the second, e.g. --svg sweep.svg.
+    #[arg(long, value_name = "PATH")]
+    svg: Option<PathBuf>,
+    /// Threads to simulate with (default: all cores), e.g. --jobs 2.
+    #[arg(long, value_name = "N")]
+    jobs: Option<usize>,
+    /// What to rank by: step_time (default), throughput, bubble or memory, e.g. --rank-by throughput.
+    #[arg(long, value_name = "FIELD", default_value = "step_time")]
+    rank_by: String,
+    /// Run only the I-th of N disjoint slices of the grid (every N-th point),
+    /// e.g. --shard 3/8 for task 3 of a job array of 8; combine with baton merge.
+    #[arg(long, value_name = "I/N")]
+    shard: Option<String>,
+    /// Rows of the ranked table to print, e.g. --top 50.
+    #[arg(long, value_name = "N", default_value_t = 20)]
+    top: usize,
+    /// Override a value of the scenario for every point, e.g. --set cluster.devices=8.
+    #[arg(long = "set", value_name = "KEY=VALUE")]
+    sets: Vec<String>,
+}
+
+#[derive(Args)]
+struct MergeArgs {
+    /// CSV files written by `baton sweep --shard I/N --csv PATH`.
+    #[arg(required = true)]
+    parts: Vec<PathBuf>,
+    /// Write the combined, ranked CSV, e.g. --csv sweep.csv.
+    #[arg(long, value_name = "PATH")]
+    csv: Option<PathBuf>,
+    /// Write the combined points as JSON, e.g. --json sweep.json.
+    #[arg(long, value_name = "PATH|-")]
+    json: Option<PathBuf>,
+    /// What to rank by (as in baton sweep), e.g. --rank-by memory.
+    #[arg(long, value_name = "FIELD", default_value = "step_time")]
+    rank_by: String,
+    /// Rows of the ranked table to print, e.g. --top 50.
+    #[arg(long, value_name = "N", default_value_t = 20)]
+    top: usize,
+}
+
+#[derive(Args)]
+struct CompareArgs {
+    /// Scenario files (YAML), e.g. a.yaml b.yaml.
+    #[arg(required = true)]
+    scenarios: Vec<PathBuf>,
+    /// Draw the runs' Gantt charts stacked on one time axis, e.g. --svg compare.svg.
+    #[arg(long, value_name = "PATH")]
+    svg: Option<PathBuf>,
+    /// Write the reports as a JSON array, or to standard output with `-`, e.g. --json compare.json.
+    #[arg(long, value_name = "PATH|-")]
+    json: Option<PathBuf>,
+    /// With one scenario: the variant to compare it with; with several: applied
+    /// to all. E.g. --set pipeline.schedule=interleaved --set pipeline.chunks=2.
+    #[arg(long = "set", value_name = "KEY=VALUE")]
+    sets: Vec<String>,
 }
 
 #[derive(Args)]
@@ -132,6 +226,9 @@ fn main() -> ExitCode {
     let result = match cli.command {
         Command::Run(args) => run(args),
         Command::Split(args) => split(args),
+        Command::Sweep(args) => sweep(args),
+        Command::Merge(args) => merge(args),
+        Command::Compare(args) => compare(args),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -521,4 +618,208 @@ fn baton_split_eval(
     split: &[u32],
 ) -> Result<baton::planner::SplitSolution, Failure> {
     baton::planner::evaluate(problem, split).map_err(|e| Failure::Other(e.into()))
+}
+
+fn input<E: Into<anyhow::Error>>(e: E) -> Failure {
+    Failure::Input(e.into())
+}
+
+/// Writes `text` to `path` (atomically) or to standard output for `-`;
+/// returns whether it went to standard output.
+fn write_text(path: &Path, text: &str, pending: &mut Vec<Pending>) -> Result<bool, Failure> {
+    if is_stdout(path) {
+        return Ok(true);
+    }
+    let mut f = prepare(path)?;
+    f.write_all(text.as_bytes())?;
+    pending.push(f);
+    Ok(false)
+}
+
+fn sweep(args: SweepArgs) -> Result<(), Failure> {
+    use baton::sweep::{self as sw, Grid, RankBy};
+    use std::io::IsTerminal;
+    use std::time::{Duration, Instant};
+
+    let by: RankBy = args.rank_by.parse().map_err(input)?;
+    let axes = args.vary.iter().map(|v| sw::parse_vary(v)).collect::<Result<Vec<_>, _>>().map_err(input)?;
+    let grid = Grid::new(axes).map_err(input)?;
+    let shard = args.shard.as_deref().map(sw::parse_shard).transpose().map_err(input)?;
+    if args.jobs == Some(0) {
+        return Err(input(anyhow::anyhow!("--jobs must be at least 1")));
+    }
+    let doc = baton::scenario::Document::load(&args.scenario).map_err(input)?;
+    // The base scenario and every varied key must make sense before the sweep starts.
+    doc.scenario(&args.sets).map_err(input)?;
+    sw::check_keys(&doc, &args.sets, &grid).map_err(input)?;
+    let indices: Vec<usize> = match shard {
+        Some((i, n)) => sw::shard_indices(grid.len(), i, n),
+        None => (0..grid.len()).collect(),
+    };
+
+    // A progress bar on a terminal, shown once the sweep has run for a second.
+    let bar =
+        indicatif::ProgressBar::with_draw_target(Some(indices.len() as u64), indicatif::ProgressDrawTarget::hidden());
+    bar.set_style(
+        indicatif::ProgressStyle::with_template("{bar:40} {pos}/{len} points, {eta} left")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    let started = Instant::now();
+    let shown = std::sync::atomic::AtomicBool::new(false);
+    let tty = std::io::stderr().is_terminal();
+    let tick = || {
+        bar.inc(1);
+        if tty && started.elapsed() > Duration::from_secs(1) && !shown.swap(true, std::sync::atomic::Ordering::Relaxed)
+        {
+            bar.set_draw_target(indicatif::ProgressDrawTarget::stderr());
+        }
+    };
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(args.jobs.unwrap_or(0))
+        .build()
+        .context("cannot start the worker threads")?;
+    let mut points = pool.install(|| sw::run(&doc, &args.sets, &grid, &indices, &tick));
+    bar.finish_and_clear();
+    sw::rank(&mut points, by);
+    let keys = grid.keys();
+
+    let mut pending = Vec::new();
+    if let Some(path) = &args.csv {
+        let mut f = prepare(path)?;
+        let mut buf = std::io::BufWriter::new(f.tmp.as_file_mut());
+        sw::write_csv(&keys, &points, &mut buf).with_context(|| format!("cannot write {}", path.display()))?;
+        buf.flush().with_context(|| format!("cannot write {}", path.display()))?;
+        drop(buf);
+        pending.push(f);
+    }
+    if let Some(path) = &args.svg {
+        let title = doc.scenario(&args.sets).map(|s| s.title).unwrap_or_default();
+        let svg = sw::chart(&title, &grid, &points, by).map_err(|e| Failure::Other(anyhow::anyhow!(e)))?;
+        let mut f = prepare(path)?;
+        f.write_all(svg.as_bytes())?;
+        pending.push(f);
+    }
+    let json = sw::to_json(&keys, &points);
+    let json_to_stdout = match &args.json {
+        Some(path) => write_text(path, &json, &mut pending)?,
+        None => false,
+    };
+    for f in pending {
+        f.commit()?;
+    }
+    let mut text = String::new();
+    if let Some((i, n)) = shard {
+        text.push_str(&format!("shard {i}/{n}: {} of the grid's {} points\n", indices.len(), grid.len()));
+    }
+    let scenario_path = args.scenario.display().to_string();
+    text.push_str(&sw::table(&keys, &points, by, args.top, Some(&scenario_path), &args.sets));
+    text.push_str(&format!("simulated {} points in {:.2} s\n", points.len(), started.elapsed().as_secs_f64()));
+    emit(&text, json_to_stdout, &json, &[("CSV", &args.csv), ("chart", &args.svg), ("JSON", &args.json)])?;
+    if shard.is_none() && !points.is_empty() && points.iter().all(|p| p.result.is_err()) {
+        return Err(input(anyhow::anyhow!("every point was skipped; see the reasons above")));
+    }
+    Ok(())
+}
+
+/// Prints the text summary (to standard error when JSON goes to standard output).
+fn emit(text: &str, json_to_stdout: bool, json: &str, outputs: &[(&str, &Option<PathBuf>)]) -> Result<(), Failure> {
+    if json_to_stdout {
+        eprint!("{text}");
+        std::io::stdout().lock().write_all(json.as_bytes()).context("cannot write to standard output")?;
+    } else {
+        let mut o = std::io::stdout().lock();
+        o.write_all(text.as_bytes()).context("cannot write to standard output")?;
+        for (label, path) in outputs {
+            if let Some(p) = path {
+                writeln!(o, "{label} written to {}", p.display()).context("cannot write to standard output")?;
+            }
+        }
+    }
+    Ok(())
+}
+
+fn merge(args: MergeArgs) -> Result<(), Failure> {
+    use baton::sweep as sw;
+    let by: sw::RankBy = args.rank_by.parse().map_err(input)?;
+    let mut parts = Vec::new();
+    for p in &args.parts {
+        let text =
+            std::fs::read_to_string(p).map_err(|e| input(anyhow::anyhow!("cannot read {}: {e}", p.display())))?;
+        parts.push((p.display().to_string(), text));
+    }
+    let (keys, points) = sw::merge(&parts, by).map_err(input)?;
+    let mut pending = Vec::new();
+    if let Some(path) = &args.csv {
+        let mut f = prepare(path)?;
+        sw::write_csv(&keys, &points, f.tmp.as_file_mut())
+            .with_context(|| format!("cannot write {}", path.display()))?;
+        pending.push(f);
+    }
+    let json = sw::to_json(&keys, &points);
+    let json_to_stdout = match &args.json {
+        Some(path) => write_text(path, &json, &mut pending)?,
+        None => false,
+    };
+    for f in pending {
+        f.commit()?;
+    }
+    let text = sw::table(&keys, &points, by, args.top, None, &[]);
+    emit(&text, json_to_stdout, &json, &[("CSV", &args.csv), ("JSON", &args.json)])
+}
+
+fn compare(args: CompareArgs) -> Result<(), Failure> {
+    let mut runs = Vec::new();
+    let variant = args.scenarios.len() == 1 && !args.sets.is_empty();
+    for (i, path) in args.scenarios.iter().enumerate() {
+        let sets: &[String] = if variant { &[] } else { &args.sets };
+        let s = baton::scenario::load(path, sets).map_err(input)?;
+        runs.push((path.display().to_string(), s));
+        if variant && i == 0 {
+            let v = baton::scenario::load(path, &args.sets).map_err(input)?;
+            let desc = args.sets.iter().map(|x| format!("--set {x}")).collect::<Vec<_>>().join(" ");
+            runs.push((format!("{} {desc}", path.display()), v));
+        }
+    }
+    if runs.len() < 2 {
+        return Err(input(anyhow::anyhow!(
+            "give two or more scenarios, or one with --set to compare it with a variant"
+        )));
+    }
+    let outcomes = runs.iter().map(|(_, s)| baton::simulate(s)).collect::<Result<Vec<_>, _>>().map_err(input)?;
+    let label = |i: usize| {
+        let letters = ["A", "B", "C", "D", "E", "F", "G", "H"];
+        letters.get(i).map_or_else(|| format!("R{}", i + 1), |l| l.to_string())
+    };
+    let entries: Vec<baton::compare::Entry> = outcomes
+        .iter()
+        .enumerate()
+        .map(|(i, o)| baton::compare::Entry { label: label(i), source: runs[i].0.clone(), report: &o.report })
+        .collect();
+    let text = baton::compare::table(&entries);
+    let mut pending = Vec::new();
+    if let Some(path) = &args.svg {
+        let chart_runs: Vec<baton::report::gantt::Run> = outcomes
+            .iter()
+            .enumerate()
+            .map(|(i, o)| baton::report::gantt::Run { trace: &o.trace, report: &o.report, label: label(i) })
+            .collect();
+        let title = format!(
+            "Comparison: {}",
+            entries.iter().map(|e| format!("{} {}", e.label, e.report.title)).collect::<Vec<_>>().join(" / ")
+        );
+        let svg = baton::report::gantt::render_runs(&chart_runs, &title).context("cannot draw the chart")?;
+        let mut f = prepare(path)?;
+        f.write_all(svg.as_bytes())?;
+        pending.push(f);
+    }
+    let reports: Vec<&baton::report::Report> = outcomes.iter().map(|o| &o.report).collect();
+    let json = format!("{}\n", serde_json::to_string_pretty(&reports).context("cannot encode the reports")?);
+    let json_to_stdout = match &args.json {
+        Some(path) => write_text(path, &json, &mut pending)?,
+        None => false,
+    };
+    for f in pending {
+        f.commit()?;
+    }
+    emit(&text, json_to_stdout, &json, &[("chart", &args.svg), ("JSON", &args.json)])
 }

@@ -85,22 +85,43 @@ fn draw_err<E: std::fmt::Debug>(e: E) -> ReportError {
 /// and the file grows past what a browser opens comfortably.
 pub const MAX_CHART_OPS: usize = 250_000;
 
-/// Draws the chart; returns the SVG document.
+/// Draws the chart of one run; returns the SVG document.
 pub fn render(trace: &Trace, report: &Report) -> Result<String, ReportError> {
-    let total_ops: usize = trace.ops.iter().map(Vec::len).sum();
+    render_runs(&[Run { trace, report, label: String::new() }], &report.title)
+}
+
+/// One run in a chart.
+pub struct Run<'a> {
+    pub trace: &'a Trace,
+    pub report: &'a Report,
+    /// Prefix of the run's lane labels (empty for a single run).
+    pub label: String,
+}
+
+/// Draws several runs stacked on one shared time axis (each run's lanes
+/// below the previous run's), so their timelines compare at a glance.
+pub fn render_runs(runs: &[Run<'_>], title: &str) -> Result<String, ReportError> {
+    let total_ops: usize = runs.iter().flat_map(|r| r.trace.ops.iter()).map(Vec::len).sum();
     if total_ops > MAX_CHART_OPS {
         return Err(ReportError::TooLarge { ops: total_ops, limit: MAX_CHART_OPS });
     }
-    let lanes = trace.ops.len().max(1);
-    let per_device = trace.ops.iter().map(Vec::len).max().unwrap_or(0);
+    // Lane of each run's device 0.
+    let mut first_lane = Vec::with_capacity(runs.len());
+    let mut lanes = 0usize;
+    for r in runs {
+        first_lane.push(lanes);
+        lanes += r.trace.ops.len().max(1);
+    }
+    let lanes = lanes.max(1);
+    let per_device = runs.iter().flat_map(|r| r.trace.ops.iter()).map(Vec::len).max().unwrap_or(0);
     let width = (220 + per_device * 20).clamp(900, 12_000) as u32;
     // Title and axis take about 110 px; each lane gets LANE_H plus a gap.
     let chart_h = 24.0 + 110.0 + lanes as f64 * (LANE_H + LANE_GAP);
-    let legend_h = 70.0;
+    let legend_h = 50.0 + 22.0 * runs.len() as f64;
     let height = (chart_h + legend_h).ceil() as u32;
-    let step_ns = report.step_time_ns.max(1);
+    let step_ns = runs.iter().map(|r| r.report.step_time_ns).max().unwrap_or(0).max(1);
     let step_ms = step_ns as f64 / 1e6;
-    let t0 = trace.start().as_ns();
+    let label_w = if runs.iter().any(|r| !r.label.is_empty()) { 150 } else { 90 };
 
     let mut svg = String::new();
     let (x_range, y_range) = {
@@ -108,10 +129,10 @@ pub fn render(trace: &Trace, report: &Report) -> Result<String, ReportError> {
         root.fill(&WHITE).map_err(draw_err)?;
         let (upper, lower) = root.split_vertically(chart_h as u32);
         let mut chart = ChartBuilder::on(&upper)
-            .caption(&report.title, ("sans-serif", 20).into_font())
+            .caption(title, ("sans-serif", 20).into_font())
             .margin(12)
             .x_label_area_size(40)
-            .y_label_area_size(90)
+            .y_label_area_size(label_w)
             .build_cartesian_2d(0f64..step_ms, 0f64..lanes as f64)
             .map_err(draw_err)?;
         chart
@@ -125,14 +146,23 @@ pub fn render(trace: &Trace, report: &Report) -> Result<String, ReportError> {
             .draw()
             .map_err(draw_err)?;
         let (xr, yr) = chart.plotting_area().get_pixel_range();
-        // Lane labels, left of the plot.
+        // Lane labels, left of the plot; a rule between runs.
         let pitch = (yr.end - yr.start) as f64 / lanes as f64;
-        for d in 0..lanes {
-            let y = yr.start as f64 + (d as f64 + 0.5) * pitch;
-            let style = TextStyle::from(("sans-serif", 13).into_font()).pos(Pos::new(HPos::Right, VPos::Center));
-            root.draw(&Text::new(format!("device {d}"), (xr.start - 8, y.round() as i32), style)).map_err(draw_err)?;
+        for (r, run) in runs.iter().enumerate() {
+            for d in 0..run.trace.ops.len() {
+                let y = yr.start as f64 + ((first_lane[r] + d) as f64 + 0.5) * pitch;
+                let text =
+                    if run.label.is_empty() { format!("device {d}") } else { format!("{}: device {d}", run.label) };
+                let style = TextStyle::from(("sans-serif", 13).into_font()).pos(Pos::new(HPos::Right, VPos::Center));
+                root.draw(&Text::new(text, (xr.start - 8, y.round() as i32), style)).map_err(draw_err)?;
+            }
+            if r > 0 {
+                let y = (yr.start as f64 + first_lane[r] as f64 * pitch).round() as i32;
+                root.draw(&PathElement::new(vec![(xr.start - label_w + 10, y), (xr.end, y)], BLACK.mix(0.4)))
+                    .map_err(draw_err)?;
+            }
         }
-        // Legend and caption.
+        // Legend and captions.
         let ly = 14;
         let mut lx = xr.start;
         let legend: [(&str, Option<Rgb>); 3] =
@@ -150,94 +180,107 @@ pub fn render(trace: &Trace, report: &Report) -> Result<String, ReportError> {
             lower.draw(&Text::new(name.to_string(), (lx + 22, ly + 6), style)).map_err(draw_err)?;
             lx += 40 + 8 * name.len() as i32;
         }
-        let chunks_note = if report.chunks > 1 {
-            format!(", {} chunks per device (later chunks lighter)", report.chunks)
-        } else {
-            String::new()
-        };
-        let caption = format!(
-            "step time {} · bubble {:.2}% · {} · {} stages · {} micro-batches{} · seed {}",
-            format_ns(report.step_time_ns),
-            report.bubble_fraction * 100.0,
-            report.schedule,
-            report.stages,
-            report.micro_batches,
-            chunks_note,
-            report.seed
-        );
-        let style = TextStyle::from(("sans-serif", 13).into_font()).pos(Pos::new(HPos::Left, VPos::Center));
-        lower.draw(&Text::new(caption, (xr.start, ly + 36), style)).map_err(draw_err)?;
+        for (r, run) in runs.iter().enumerate() {
+            let report = run.report;
+            let chunks_note = if report.chunks > 1 {
+                format!(", {} chunks per device (later chunks lighter)", report.chunks)
+            } else {
+                String::new()
+            };
+            let caption = format!(
+                "{}step time {} · bubble {:.2}% · {} · {} stages · {} micro-batches{} · seed {}",
+                if run.label.is_empty() { String::new() } else { format!("{}: ", run.label) },
+                format_ns(report.step_time_ns),
+                report.bubble_fraction * 100.0,
+                report.schedule,
+                report.stages,
+                report.micro_batches,
+                chunks_note,
+                report.seed
+            );
+            let style = TextStyle::from(("sans-serif", 13).into_font()).pos(Pos::new(HPos::Left, VPos::Center));
+            lower.draw(&Text::new(caption, (xr.start, ly + 36 + 22 * r as i32), style)).map_err(draw_err)?;
+        }
         root.present().map_err(draw_err)?;
         ((xr.start as f64, xr.end as f64), (yr.start as f64, yr.end as f64))
     };
 
     // Bars and idle marks, in pixel coordinates of the plotting area.
     let px_per_ns = (x_range.1 - x_range.0) / step_ns as f64;
-    let x_of = |ns: u64| x_range.0 + (ns.saturating_sub(t0)) as f64 * px_per_ns;
     let pitch = (y_range.1 - y_range.0) / lanes as f64;
     let lane_h = pitch - LANE_GAP;
-    let lane_y = |d: usize| y_range.0 + LANE_GAP / 2.0 + d as f64 * pitch;
-    let mut body =
-        String::with_capacity(256 * (trace.ops.iter().map(Vec::len).sum::<usize>() + report.gaps.len()) + 512);
+    let lane_y = |lane: usize| y_range.0 + LANE_GAP / 2.0 + lane as f64 * pitch;
+    let mut body = String::with_capacity(256 * total_ops + 512);
     body.push_str(concat!(
         "<defs><pattern id=\"idle-hatch\" patternUnits=\"userSpaceOnUse\" width=\"6\" height=\"6\" patternTransform=\"rotate(45)\">",
         "<rect width=\"6\" height=\"6\" fill=\"#fbeeee\"/><line x1=\"0\" y1=\"0\" x2=\"0\" y2=\"6\" stroke=\"#b8474a\" stroke-width=\"1.2\"/>",
         "</pattern></defs>\n<g id=\"idle\">\n"
     ));
-    for g in &report.gaps {
-        let (x0, x1) = (x_of(g.start_ns), x_of(g.end_ns));
-        let y = lane_y(g.device as usize);
-        let _ = writeln!(
-            body,
-            "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"url(#idle-hatch)\" stroke=\"{IDLE_INK}\" stroke-width=\"0.5\"><title>idle on device {}, {} to {} ({}): {}</title></rect>",
-            x0,
-            y + 4.0,
-            (x1 - x0).max(0.5),
-            lane_h - 8.0,
-            g.device,
-            format_ns(g.start_ns),
-            format_ns(g.end_ns),
-            g.cause.as_str(),
-            xml_escape(&g.detail.to_string())
-        );
+    for (r, run) in runs.iter().enumerate() {
+        let t0 = run.trace.start().as_ns();
+        let x_of = |ns: u64| x_range.0 + (ns.saturating_sub(t0)) as f64 * px_per_ns;
+        for g in &run.report.gaps {
+            let (x0, x1) = (x_of(g.start_ns), x_of(g.end_ns));
+            let y = lane_y(first_lane[r] + g.device as usize);
+            let _ = writeln!(
+                body,
+                "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"url(#idle-hatch)\" stroke=\"{IDLE_INK}\" stroke-width=\"0.5\"><title>{}idle on device {}, {} to {} ({}): {}</title></rect>",
+                x0,
+                y + 4.0,
+                (x1 - x0).max(0.5),
+                lane_h - 8.0,
+                if run.label.is_empty() { String::new() } else { format!("{}: ", xml_escape(&run.label)) },
+                g.device,
+                format_ns(g.start_ns),
+                format_ns(g.end_ns),
+                g.cause.as_str(),
+                xml_escape(&g.detail.to_string())
+            );
+        }
     }
     body.push_str("</g>\n<g id=\"ops\" font-family=\"sans-serif\" font-size=\"10\" text-anchor=\"middle\">\n");
-    let chunks = trace.plan.shape.chunks;
-    let p = trace.plan.shape.stages;
-    for (d, recs) in trace.ops.iter().enumerate() {
-        let y = lane_y(d);
-        for r in recs {
-            let (x0, x1) = (x_of(r.start.as_ns()), x_of(r.end.as_ns()));
-            let w = (x1 - x0).max(0.5);
-            let rgb = bar_rgb(r.op.kind, r.op.stage / p, chunks);
-            let _ = write!(
-                body,
-                "<g><title>{} of micro-batch {}, stage {}, device {}: {} to {}</title><rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\" stroke=\"#ffffff\" stroke-width=\"0.6\"/>",
-                r.op.kind.as_str(),
-                r.op.micro_batch,
-                r.op.stage,
-                d,
-                format_ns(r.start.as_ns()),
-                format_ns(r.end.as_ns()),
-                x0,
-                y,
-                w,
-                lane_h,
-                hex(rgb)
-            );
-            let label = r.op.micro_batch.to_string();
-            // About 0.62 em per digit plus a little padding.
-            if w >= label.len() as f64 * LABEL_FONT_PX * 0.62 + 3.0 {
+    for (r, run) in runs.iter().enumerate() {
+        let trace = run.trace;
+        let t0 = trace.start().as_ns();
+        let x_of = |ns: u64| x_range.0 + (ns.saturating_sub(t0)) as f64 * px_per_ns;
+        let chunks = trace.plan.shape.chunks;
+        let p = trace.plan.shape.stages;
+        for (d, recs) in trace.ops.iter().enumerate() {
+            let y = lane_y(first_lane[r] + d);
+            for rec in recs {
+                let (x0, x1) = (x_of(rec.start.as_ns()), x_of(rec.end.as_ns()));
+                let w = (x1 - x0).max(0.5);
+                let rgb = bar_rgb(rec.op.kind, rec.op.stage / p, chunks);
                 let _ = write!(
                     body,
-                    "<text x=\"{:.2}\" y=\"{:.2}\" fill=\"{}\" dominant-baseline=\"central\">{}</text>",
-                    x0 + w / 2.0,
-                    y + lane_h / 2.0,
-                    ink_on(rgb),
-                    label
+                    "<g><title>{}{} of micro-batch {}, stage {}, device {}: {} to {}</title><rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\" stroke=\"#ffffff\" stroke-width=\"0.6\"/>",
+                    if run.label.is_empty() { String::new() } else { format!("{}: ", xml_escape(&run.label)) },
+                    rec.op.kind.as_str(),
+                    rec.op.micro_batch,
+                    rec.op.stage,
+                    d,
+                    format_ns(rec.start.as_ns()),
+                    format_ns(rec.end.as_ns()),
+                    x0,
+                    y,
+                    w,
+                    lane_h,
+                    hex(rgb)
                 );
+                let label = rec.op.micro_batch.to_string();
+                // About 0.62 em per digit plus a little padding.
+                if w >= label.len() as f64 * LABEL_FONT_PX * 0.62 + 3.0 {
+                    let _ = write!(
+                        body,
+                        "<text x=\"{:.2}\" y=\"{:.2}\" fill=\"{}\" dominant-baseline=\"central\">{}</text>",
+                        x0 + w / 2.0,
+                        y + lane_h / 2.0,
+                        ink_on(rgb),
+                        label
+                    );
+                }
+                body.push_str("</g>\n");
             }
-            body.push_str("</g>\n");
         }
     }
     body.push_str("</g>\n");

@@ -18,7 +18,9 @@ pub mod node;
 pub mod profile;
 pub mod units;
 
-use std::path::Path;
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::sync::Mutex;
 
 use baton_schedule::{check_shape, ScheduleError, ScheduleKind, Shape};
 use thiserror::Error;
@@ -233,12 +235,58 @@ pub const MAX_STAGES: u32 = 512;
 
 /// Reads, overrides and validates a scenario file.
 pub fn load(path: &Path, overrides: &[String]) -> Result<Scenario, ScenarioError> {
-    let file = path.display().to_string();
-    let text = std::fs::read_to_string(path)
-        .map_err(|e| ScenarioError::Read { file: file.clone(), message: e.to_string() })?;
-    let default_title = path.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
-    let base = path.parent().unwrap_or(Path::new(""));
-    parse_in(&text, &file, &default_title, base, overrides)
+    Document::load(path)?.scenario(overrides)
+}
+
+/// A scenario file read and parsed once, from which any number of variants
+/// (the file with some overrides) are validated; profiles it names are read
+/// once too.
+#[derive(Debug)]
+pub struct Document {
+    tree: Node,
+    file: String,
+    default_title: String,
+    base_dir: PathBuf,
+    profiles: Mutex<HashMap<PathBuf, Vec<Layer>>>,
+}
+
+impl Document {
+    /// Reads and parses a scenario file.
+    pub fn load(path: &Path) -> Result<Self, ScenarioError> {
+        let file = path.display().to_string();
+        let text = std::fs::read_to_string(path)
+            .map_err(|e| ScenarioError::Read { file: file.clone(), message: e.to_string() })?;
+        let default_title = path.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+        Self::from_text(&text, &file, &default_title, path.parent().unwrap_or(Path::new("")))
+    }
+
+    /// Parses scenario text; relative paths resolve against `base_dir`.
+    pub fn from_text(text: &str, file: &str, default_title: &str, base_dir: &Path) -> Result<Self, ScenarioError> {
+        Ok(Document {
+            tree: node::parse_document(text, file)?,
+            file: file.to_string(),
+            default_title: default_title.to_string(),
+            base_dir: base_dir.to_path_buf(),
+            profiles: Mutex::new(HashMap::new()),
+        })
+    }
+
+    /// The file name errors are labelled with.
+    pub fn file(&self) -> &str {
+        &self.file
+    }
+
+    /// The scenario with `overrides` (`KEY=VALUE`) applied, validated.
+    pub fn scenario(&self, overrides: &[String]) -> Result<Scenario, ScenarioError> {
+        if overrides.is_empty() {
+            return from_tree(&self.tree, &self.file, &self.default_title, &self.base_dir, Some(&self.profiles));
+        }
+        let mut tree = self.tree.clone();
+        for arg in overrides {
+            node::apply_override(&mut tree, arg)?;
+        }
+        from_tree(&tree, &self.file, &self.default_title, &self.base_dir, Some(&self.profiles))
+    }
 }
 
 /// Parses scenario text; `file` labels error messages; a profile path is
@@ -255,11 +303,7 @@ pub fn parse_in(
     base_dir: &Path,
     overrides: &[String],
 ) -> Result<Scenario, ScenarioError> {
-    let mut doc = node::parse_document(text, file)?;
-    for arg in overrides {
-        node::apply_override(&mut doc, arg)?;
-    }
-    from_tree(&doc, file, default_title, base_dir)
+    Document::from_text(text, file, default_title, base_dir)?.scenario(overrides)
 }
 
 /// A value being read, with its key path.
@@ -273,7 +317,10 @@ struct At<'a> {
 struct Cx<'a> {
     file: &'a str,
     base_dir: &'a Path,
+    profiles: Option<&'a ProfileCache>,
 }
+
+type ProfileCache = Mutex<HashMap<PathBuf, Vec<Layer>>>;
 
 impl Cx<'_> {
     fn err(&self, key: &str, origin: &Origin, message: impl Into<String>) -> ScenarioError {
@@ -450,8 +497,14 @@ impl<'a> MapAt<'a> {
 
 const PIPELINE_KEYS: [&str; 6] = ["stages", "split", "micro_batches", "schedule", "chunks", "micro_batch_size"];
 
-fn from_tree(doc: &Node, file: &str, default_title: &str, base_dir: &Path) -> Result<Scenario, ScenarioError> {
-    let cx = Cx { file, base_dir };
+fn from_tree(
+    doc: &Node,
+    file: &str,
+    default_title: &str,
+    base_dir: &Path,
+    profiles: Option<&ProfileCache>,
+) -> Result<Scenario, ScenarioError> {
+    let cx = Cx { file, base_dir, profiles };
     let root = At { cx: &cx, path: "", node: doc };
     let top = root.map(&["title", "seed", "model", "cluster", "pipeline", "training"])?;
     let title = top.opt("title", |a| a.text())?.unwrap_or_else(|| default_title.to_string());
@@ -543,9 +596,19 @@ fn read_model(
         "profile" => m.req("profile", |a| {
             let rel = a.str()?;
             let path = model.cx.base_dir.join(rel);
-            let text =
-                std::fs::read_to_string(&path).map_err(|e| a.err(format!("cannot read {}: {e}", path.display())))?;
-            let layers = profile::read(&text, &path.display().to_string())?;
+            let cached = model.cx.profiles.and_then(|c| c.lock().ok().and_then(|m| m.get(&path).cloned()));
+            let layers = match cached {
+                Some(layers) => layers,
+                None => {
+                    let text = std::fs::read_to_string(&path)
+                        .map_err(|e| a.err(format!("cannot read {}: {e}", path.display())))?;
+                    let layers = profile::read(&text, &path.display().to_string())?;
+                    if let Some(mut m) = model.cx.profiles.and_then(|c| c.lock().ok()) {
+                        m.insert(path.clone(), layers.clone());
+                    }
+                    layers
+                }
+            };
             Ok((ModelSource::Profile(path), layers))
         }),
         _ => m.req("transformer", |a| {

@@ -1,0 +1,758 @@
+//! `baton sweep` and `baton merge`: many variants of one scenario, simulated
+//! in parallel and ranked.
+//!
+//! A grid is the cartesian product of `--vary KEY=V1,V2,...` lists (the first
+//! key varies slowest). Each point is the scenario with those `KEY=VALUE`
+//! overrides; the scenario file is parsed once and each point only applies its
+//! overrides to the parsed tree. Points are simulated on a rayon pool and
+//! collected in grid order, so results do not depend on the thread count.
+
+use std::fmt::Write as _;
+
+use baton_scenario::Document;
+use rayon::prelude::*;
+use thiserror::Error;
+
+/// Most points a grid may have.
+pub const MAX_POINTS: usize = 1_000_000;
+/// Most values one range may expand to.
+const MAX_RANGE: usize = 100_000;
+
+#[derive(Debug, Error, PartialEq, Eq)]
+pub enum SweepError {
+    #[error("--vary {arg}: {message}")]
+    Vary { arg: String, message: String },
+    #[error("give at least one --vary KEY=V1,V2,...")]
+    NoVary,
+    #[error("the grid has {0} points, more than {MAX_POINTS}")]
+    TooLarge(usize),
+    #[error("--shard {0}: expected I/N with 1 <= I <= N, e.g. --shard 2/8")]
+    Shard(String),
+    #[error("--rank-by {0}: expected step_time, throughput, bubble or memory")]
+    RankBy(String),
+    #[error("{file}: {message}")]
+    Merge { file: String, message: String },
+}
+
+/// One `--vary` option: a key and its values, as written.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Vary {
+    pub key: String,
+    pub values: Vec<String>,
+}
+
+/// Splits a value list at commas and semicolons outside brackets.
+fn split_values(list: &str) -> Vec<String> {
+    let (mut out, mut cur, mut depth) = (Vec::new(), String::new(), 0i32);
+    for c in list.chars() {
+        match c {
+            '[' | '{' => depth += 1,
+            ']' | '}' => depth -= 1,
+            _ => {}
+        }
+        if (c == ',' || c == ';') && depth <= 0 {
+            out.push(std::mem::take(&mut cur).trim().to_string());
+        } else {
+            cur.push(c);
+        }
+    }
+    out.push(cur.trim().to_string());
+    out
+}
+
+/// Expands `a..b` (every integer from a to b) and `a..b*f` (a, a*f, a*f^2, ...
+/// up to b); anything else is one value.
+fn expand(item: &str) -> Result<Vec<String>, String> {
+    let Some((a, rest)) = item.split_once("..") else { return Ok(vec![item.to_string()]) };
+    let (b, factor) = match rest.split_once('*') {
+        Some((b, f)) => (b, Some(f)),
+        None => (rest, None),
+    };
+    let num = |t: &str| t.trim().parse::<u64>().map_err(|_| format!("`{item}`: `{t}` is not a whole number"));
+    let (a, b) = (num(a)?, num(b)?);
+    if a > b {
+        return Err(format!("`{item}`: the range is empty ({a} > {b})"));
+    }
+    let mut out = Vec::new();
+    match factor {
+        None => {
+            if (b - a) as usize >= MAX_RANGE {
+                return Err(format!("`{item}` has more than {MAX_RANGE} values"));
+            }
+            out.extend((a..=b).map(|x| x.to_string()));
+        }
+        Some(f) => {
+            let f = num(f)?;
+            if f < 2 || a == 0 {
+                return Err(format!(
+                    "`{item}`: a doubling range needs a start of at least 1 and a factor of at least 2"
+                ));
+            }
+            let mut x = a;
+            while x <= b {
+                out.push(x.to_string());
+                x = match x.checked_mul(f) {
+                    Some(y) => y,
+                    None => break,
+                };
+            }
+        }
+    }
+    Ok(out)
+}
+
+/// Parses `KEY=V1,V2,...` (with `a..b` and `a..b*f` ranges; lists such as
+/// `[4,4,4,4];[2,6,6,2]` are kept whole).
+pub fn parse_vary(arg: &str) -> Result<Vary, SweepError> {
+    let bad = |message: String| SweepError::Vary { arg: arg.to_string(), message };
+    let (key, list) =
+        arg.split_once('=').ok_or_else(|| bad("expected KEY=V1,V2,..., e.g. pipeline.micro_batches=8,16,32".into()))?;
+    let key = key.trim();
+    if key.is_empty() || key.split('.').any(|p| p.trim().is_empty()) {
+        return Err(bad(format!("`{key}` is not a dotted key path such as pipeline.micro_batches")));
+    }
+    let mut values = Vec::new();
+    for item in split_values(list) {
+        if item.is_empty() {
+            return Err(bad("a value is empty (check for stray commas)".into()));
+        }
+        values.extend(expand(&item).map_err(bad)?);
+    }
+    let mut seen = std::collections::HashSet::new();
+    if let Some(dup) = values.iter().find(|v| !seen.insert(v.as_str())) {
+        return Err(bad(format!("`{dup}` is listed twice")));
+    }
+    Ok(Vary { key: key.to_string(), values })
+}
+
+/// The cartesian product of several `--vary` lists.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Grid {
+    pub axes: Vec<Vary>,
+}
+
+impl Grid {
+    pub fn new(axes: Vec<Vary>) -> Result<Self, SweepError> {
+        if axes.is_empty() {
+            return Err(SweepError::NoVary);
+        }
+        let mut keys = std::collections::HashSet::new();
+        for a in &axes {
+            if !keys.insert(a.key.as_str()) {
+                return Err(SweepError::Vary { arg: a.key.clone(), message: "the key is varied twice".into() });
+            }
+        }
+        let mut n: usize = 1;
+        for a in &axes {
+            n = n.checked_mul(a.values.len()).filter(|&n| n <= MAX_POINTS).ok_or(SweepError::TooLarge(usize::MAX))?;
+        }
+        Ok(Grid { axes })
+    }
+
+    pub fn len(&self) -> usize {
+        self.axes.iter().map(|a| a.values.len()).product()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    pub fn keys(&self) -> Vec<String> {
+        self.axes.iter().map(|a| a.key.clone()).collect()
+    }
+
+    /// The value index on each axis of point `i` (the last axis varies fastest).
+    pub fn coords(&self, mut i: usize) -> Vec<usize> {
+        let mut c = vec![0; self.axes.len()];
+        for (k, a) in self.axes.iter().enumerate().rev() {
+            c[k] = i % a.values.len();
+            i /= a.values.len();
+        }
+        c
+    }
+
+    /// The values of point `i`.
+    pub fn values(&self, i: usize) -> Vec<String> {
+        self.coords(i).iter().zip(&self.axes).map(|(&c, a)| a.values[c].clone()).collect()
+    }
+}
+
+/// What a sweep records of a simulated point.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Summary {
+    pub step_time_ms: f64,
+    pub bubble_fraction: f64,
+    pub samples_per_s: f64,
+    /// The largest peak memory of any device.
+    pub peak_memory_bytes: u64,
+    pub fits: bool,
+}
+
+/// One grid point and its result (or why it was skipped).
+#[derive(Clone, Debug, PartialEq)]
+pub struct Point {
+    pub index: usize,
+    pub values: Vec<String>,
+    pub result: Result<Summary, String>,
+}
+
+/// What a sweep ranks by.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum RankBy {
+    StepTime,
+    Throughput,
+    Bubble,
+    Memory,
+}
+
+impl std::str::FromStr for RankBy {
+    type Err = SweepError;
+    fn from_str(s: &str) -> Result<Self, SweepError> {
+        match s {
+            "step_time" | "step_time_ms" | "step-time" => Ok(RankBy::StepTime),
+            "throughput" | "samples_per_s" => Ok(RankBy::Throughput),
+            "bubble" | "bubble_fraction" => Ok(RankBy::Bubble),
+            "memory" | "peak_memory_bytes" => Ok(RankBy::Memory),
+            other => Err(SweepError::RankBy(other.to_string())),
+        }
+    }
+}
+
+impl RankBy {
+    /// The field's value, oriented so that smaller is better.
+    fn key(self, s: &Summary) -> f64 {
+        match self {
+            RankBy::StepTime => s.step_time_ms,
+            RankBy::Throughput => -s.samples_per_s,
+            RankBy::Bubble => s.bubble_fraction,
+            RankBy::Memory => s.peak_memory_bytes as f64,
+        }
+    }
+
+    /// The field's value as charted, and the axis label with its unit.
+    pub fn value(self, s: &Summary) -> f64 {
+        match self {
+            RankBy::StepTime => s.step_time_ms,
+            RankBy::Throughput => s.samples_per_s,
+            RankBy::Bubble => s.bubble_fraction * 100.0,
+            RankBy::Memory => s.peak_memory_bytes as f64 / (1u64 << 30) as f64,
+        }
+    }
+
+    pub fn label(self) -> &'static str {
+        match self {
+            RankBy::StepTime => "step time (ms)",
+            RankBy::Throughput => "throughput (samples/s)",
+            RankBy::Bubble => "bubble (% of devices x step time)",
+            RankBy::Memory => "peak memory of any device (GiB)",
+        }
+    }
+}
+
+/// The overrides of point `i`: the base ones, then its grid values.
+pub fn overrides(base: &[String], grid: &Grid, i: usize) -> Vec<String> {
+    let mut sets = base.to_vec();
+    sets.extend(grid.axes.iter().zip(grid.values(i)).map(|(a, v)| format!("{}={v}", a.key)));
+    sets
+}
+
+/// Refuses keys the scenario does not have (rather than skipping every point).
+pub fn check_keys(doc: &Document, base: &[String], grid: &Grid) -> Result<(), SweepError> {
+    for a in &grid.axes {
+        let mut sets = base.to_vec();
+        sets.push(format!("{}={}", a.key, a.values[0]));
+        match doc.scenario(&sets) {
+            Err(baton_scenario::ScenarioError::Override { message, .. }) => {
+                return Err(SweepError::Vary { arg: a.key.clone(), message });
+            }
+            Err(e) if e.to_string().contains("unknown key") && e.key().is_some_and(|k| a.key.starts_with(k)) => {
+                return Err(SweepError::Vary { arg: a.key.clone(), message: format!("unknown key: {e}") });
+            }
+            _ => {}
+        }
+    }
+    Ok(())
+}
+
+/// Simulates one point.
+pub fn evaluate(doc: &Document, base: &[String], grid: &Grid, i: usize) -> Point {
+    let result = doc.scenario(&overrides(base, grid, i)).map_err(|e| e.to_string()).and_then(|s| {
+        crate::simulate(&s).map_err(|e| e.to_string()).map(|o| {
+            let r = o.report;
+            Summary {
+                step_time_ms: r.step_time_ms,
+                bubble_fraction: r.bubble_fraction,
+                samples_per_s: r.samples_per_s,
+                peak_memory_bytes: r.devices.iter().map(|d| d.peak_memory_bytes).max().unwrap_or(0),
+                fits: r.fits,
+            }
+        })
+    });
+    Point { index: i, values: grid.values(i), result }
+}
+
+/// Simulates the given points in parallel (in the current rayon pool),
+/// calling `tick` after each; returns them in the order given.
+pub fn run(doc: &Document, base: &[String], grid: &Grid, indices: &[usize], tick: &(dyn Fn() + Sync)) -> Vec<Point> {
+    indices
+        .par_iter()
+        .map(|&i| {
+            let p = evaluate(doc, base, grid, i);
+            tick();
+            p
+        })
+        .collect()
+}
+
+/// The points of shard `shard` (1-based) of `of`: every `of`-th point.
+pub fn shard_indices(len: usize, shard: usize, of: usize) -> Vec<usize> {
+    (0..len).filter(|i| i % of == shard - 1).collect()
+}
+
+/// Parses `I/N`.
+pub fn parse_shard(text: &str) -> Result<(usize, usize), SweepError> {
+    let bad = || SweepError::Shard(text.to_string());
+    let (i, n) = text.split_once('/').ok_or_else(bad)?;
+    let (i, n): (usize, usize) = (i.trim().parse().map_err(|_| bad())?, n.trim().parse().map_err(|_| bad())?);
+    if i == 0 || n == 0 || i > n {
+        return Err(bad());
+    }
+    Ok((i, n))
+}
+
+/// Orders points best first by `by` (ties by grid index); skipped points last.
+pub fn rank(points: &mut [Point], by: RankBy) {
+    points.sort_by(|a, b| match (&a.result, &b.result) {
+        (Ok(x), Ok(y)) => by.key(x).total_cmp(&by.key(y)).then(a.index.cmp(&b.index)),
+        (Ok(_), Err(_)) => std::cmp::Ordering::Less,
+        (Err(_), Ok(_)) => std::cmp::Ordering::Greater,
+        (Err(_), Err(_)) => a.index.cmp(&b.index),
+    });
+}
+
+/// The numeric fields of the CSV and JSON, after the varied keys.
+pub const FIELDS: [&str; 7] =
+    ["step_time_ms", "bubble_fraction", "samples_per_s", "peak_memory_bytes", "fits", "skipped", "point"];
+
+/// Writes points as CSV: a column per varied key, then [`FIELDS`].
+pub fn write_csv<W: std::io::Write>(keys: &[String], points: &[Point], out: W) -> Result<(), csv::Error> {
+    let mut w = csv::Writer::from_writer(out);
+    w.write_record(keys.iter().map(String::as_str).chain(FIELDS))?;
+    for p in points {
+        let mut rec: Vec<String> = p.values.clone();
+        match &p.result {
+            Ok(s) => rec.extend([
+                s.step_time_ms.to_string(),
+                s.bubble_fraction.to_string(),
+                s.samples_per_s.to_string(),
+                s.peak_memory_bytes.to_string(),
+                s.fits.to_string(),
+                String::new(),
+            ]),
+            Err(reason) => {
+                rec.extend(std::iter::repeat_n(String::new(), 5));
+                rec.push(reason.clone());
+            }
+        }
+        rec.push(p.index.to_string());
+        w.write_record(&rec)?;
+    }
+    w.flush()?;
+    Ok(())
+}
+
+/// The points as a JSON array of objects with the CSV's names (values that
+/// read as numbers are numbers).
+pub fn to_json(keys: &[String], points: &[Point]) -> String {
+    use serde_json::{json, Map, Value};
+    let as_value = |v: &str| {
+        v.parse::<i64>()
+            .map(Value::from)
+            .or_else(|_| {
+                v.parse::<f64>()
+                    .map_err(|_| ())
+                    .and_then(|f| serde_json::Number::from_f64(f).map(Value::Number).ok_or(()))
+            })
+            .unwrap_or_else(|_| Value::String(v.to_string()))
+    };
+    let rows: Vec<Value> = points
+        .iter()
+        .map(|p| {
+            let mut m = Map::new();
+            for (k, v) in keys.iter().zip(&p.values) {
+                m.insert(k.clone(), as_value(v));
+            }
+            match &p.result {
+                Ok(s) => {
+                    m.insert("step_time_ms".into(), json!(s.step_time_ms));
+                    m.insert("bubble_fraction".into(), json!(s.bubble_fraction));
+                    m.insert("samples_per_s".into(), json!(s.samples_per_s));
+                    m.insert("peak_memory_bytes".into(), json!(s.peak_memory_bytes));
+                    m.insert("fits".into(), json!(s.fits));
+                    m.insert("skipped".into(), Value::Null);
+                }
+                Err(reason) => {
+                    for f in &FIELDS[..5] {
+                        m.insert((*f).into(), Value::Null);
+                    }
+                    m.insert("skipped".into(), json!(reason));
+                }
+            }
+            m.insert("point".into(), json!(p.index));
+            Value::Object(m)
+        })
+        .collect();
+    let mut s = serde_json::to_string_pretty(&rows).unwrap_or_else(|_| "[]".into());
+    s.push('\n');
+    s
+}
+
+/// Reads CSVs written by [`write_csv`] (shards of one sweep) back into points.
+pub fn read_csv(text: &str, file: &str) -> Result<(Vec<String>, Vec<Point>), SweepError> {
+    let bad = |message: String| SweepError::Merge { file: file.to_string(), message };
+    let mut r = csv::Reader::from_reader(text.as_bytes());
+    let header: Vec<String> = r.headers().map_err(|e| bad(e.to_string()))?.iter().map(String::from).collect();
+    let n_keys =
+        header.len().checked_sub(FIELDS.len()).ok_or_else(|| bad("not a sweep CSV: too few columns".into()))?;
+    if header[n_keys..] != FIELDS || n_keys == 0 {
+        return Err(bad(format!("not a sweep CSV: the last columns must be {}", FIELDS.join(","))));
+    }
+    let mut points = Vec::new();
+    for rec in r.records() {
+        let rec = rec.map_err(|e| bad(e.to_string()))?;
+        let line = rec.position().map_or(0, |p| p.line());
+        let f = |i: usize| rec.get(n_keys + i).unwrap_or("");
+        let num =
+            |i: usize| f(i).parse::<f64>().map_err(|_| bad(format!("line {line}: {} is not a number", FIELDS[i])));
+        let index: usize = f(6).parse().map_err(|_| bad(format!("line {line}: point is not a whole number")))?;
+        let result = if f(5).is_empty() {
+            Ok(Summary {
+                step_time_ms: num(0)?,
+                bubble_fraction: num(1)?,
+                samples_per_s: num(2)?,
+                peak_memory_bytes: f(3)
+                    .parse()
+                    .map_err(|_| bad(format!("line {line}: peak_memory_bytes is not a whole number")))?,
+                fits: f(4).parse().map_err(|_| bad(format!("line {line}: fits is not true or false")))?,
+            })
+        } else {
+            Err(f(5).to_string())
+        };
+        points.push(Point {
+            index,
+            values: (0..n_keys).map(|i| rec.get(i).unwrap_or("").to_string()).collect(),
+            result,
+        });
+    }
+    Ok((header[..n_keys].to_vec(), points))
+}
+
+/// Combines shard CSVs into one ranked list; refuses mismatched keys and
+/// points that appear twice.
+pub fn merge(parts: &[(String, String)], by: RankBy) -> Result<(Vec<String>, Vec<Point>), SweepError> {
+    let mut keys: Option<Vec<String>> = None;
+    let mut all = Vec::new();
+    let mut seen = std::collections::HashSet::new();
+    for (file, text) in parts {
+        let (k, points) = read_csv(text, file)?;
+        match &keys {
+            Some(existing) if *existing != k => {
+                return Err(SweepError::Merge {
+                    file: file.clone(),
+                    message: format!("varies {} but the first part varies {}", k.join(", "), existing.join(", ")),
+                })
+            }
+            None => keys = Some(k),
+            _ => {}
+        }
+        for p in points {
+            if !seen.insert(p.index) {
+                return Err(SweepError::Merge {
+                    file: file.clone(),
+                    message: format!("point {} appears in two parts", p.index),
+                });
+            }
+            all.push(p);
+        }
+    }
+    rank(&mut all, by);
+    Ok((keys.unwrap_or_default(), all))
+}
+
+/// Shell-quotes a `--set` argument when it needs it.
+fn quote(arg: &str) -> String {
+    if arg.chars().all(|c| c.is_ascii_alphanumeric() || "._-=/:+".contains(c)) {
+        arg.to_string()
+    } else {
+        format!("'{}'", arg.replace('\'', r"'\''"))
+    }
+}
+
+/// The ranked table (at most `limit` rows) with the best point marked, and,
+/// when the scenario path is known, the command that reproduces the best point.
+pub fn table(
+    keys: &[String],
+    points: &[Point],
+    by: RankBy,
+    limit: usize,
+    scenario: Option<&str>,
+    base: &[String],
+) -> String {
+    use baton_engine::format_ns;
+    use baton_report::format_bytes;
+    let mut s = String::new();
+    let ok: Vec<&Point> = points.iter().filter(|p| p.result.is_ok()).collect();
+    let skipped: Vec<&Point> = points.iter().filter(|p| p.result.is_err()).collect();
+    let widths: Vec<usize> = keys
+        .iter()
+        .enumerate()
+        .map(|(k, name)| ok.iter().map(|p| p.values[k].len()).chain([name.len()]).max().unwrap_or(4).min(40))
+        .collect();
+    let _ = writeln!(s, "{} points ranked by {}, best first; {} skipped", ok.len(), by.label(), skipped.len());
+    let _ = write!(s, "{:>5}  ", "rank");
+    for (k, name) in keys.iter().enumerate() {
+        let _ = write!(s, "{:<w$}  ", name, w = widths[k]);
+    }
+    let _ = writeln!(s, "{:>12}  {:>8}  {:>11}  {:>11}  fits", "step time", "bubble", "samples/s", "peak mem");
+    for (r, p) in ok.iter().take(limit).enumerate() {
+        let Ok(x) = &p.result else { continue };
+        let _ = write!(s, "{:>5}  ", if r == 0 { "best".to_string() } else { (r + 1).to_string() });
+        for (k, v) in p.values.iter().enumerate() {
+            let _ = write!(s, "{:<w$}  ", v, w = widths[k]);
+        }
+        let _ = writeln!(
+            s,
+            "{:>12}  {:>7.2}%  {:>11.2}  {:>11}  {}{}",
+            format_ns((x.step_time_ms * 1e6).round() as u64),
+            x.bubble_fraction * 100.0,
+            x.samples_per_s,
+            format_bytes(x.peak_memory_bytes),
+            if x.fits { "yes" } else { "OVER" },
+            if r == 0 { "   <== best" } else { "" }
+        );
+    }
+    if ok.len() > limit {
+        let _ = writeln!(s, "  ... {} more (see --csv or --json)", ok.len() - limit);
+    }
+    if !skipped.is_empty() {
+        let _ = writeln!(s, "skipped:");
+        for p in skipped.iter().take(5) {
+            let desc: Vec<String> = keys.iter().zip(&p.values).map(|(k, v)| format!("{k}={v}")).collect();
+            let _ = writeln!(s, "  {}: {}", desc.join(" "), p.result.as_ref().err().map_or("", |e| e.as_str()));
+        }
+        if skipped.len() > 5 {
+            let _ = writeln!(s, "  ... {} more", skipped.len() - 5);
+        }
+    }
+    if let Some(best) = ok.first() {
+        let mut sets: Vec<String> = base.to_vec();
+        sets.extend(keys.iter().zip(&best.values).map(|(k, v)| format!("{k}={v}")));
+        let args: Vec<String> = sets.iter().map(|a| format!("--set {}", quote(a))).collect();
+        let _ = writeln!(s);
+        match scenario {
+            Some(path) => {
+                let _ = writeln!(
+                    s,
+                    "best point, to reproduce and chart it:\n  baton run {} {} --svg best.svg",
+                    quote(path),
+                    args.join(" ")
+                );
+            }
+            None => {
+                let _ = writeln!(s, "best point: {}", args.join(" "));
+            }
+        }
+    }
+    s
+}
+
+/// Line colours of the sweep chart (an ordering of well-separated hues).
+const LINE_COLOURS: [(u8, u8, u8); 8] = [
+    (0x1f, 0x5f, 0xa8),
+    (0xd9, 0x6c, 0x06),
+    (0x2a, 0x9d, 0x5c),
+    (0xb8, 0x2e, 0x5a),
+    (0x6a, 0x4c, 0x9c),
+    (0x8a, 0x6d, 0x1f),
+    (0x17, 0x8f, 0x9e),
+    (0x55, 0x55, 0x55),
+];
+
+/// A line chart of the ranking field against the first varied key, one line
+/// per value of the second key. With more keys, each plotted point is the best
+/// over the other keys' values. Skipped points leave gaps.
+pub fn chart(title: &str, grid: &Grid, points: &[Point], by: RankBy) -> Result<String, String> {
+    use plotters::prelude::*;
+    let err = |e: &dyn std::fmt::Debug| format!("cannot draw the chart: {e:?}");
+    let xs = &grid.axes[0].values;
+    let lines: Vec<String> = grid.axes.get(1).map_or_else(|| vec![String::new()], |a| a.values.clone());
+    // best[line][x] = best point's value there.
+    let mut best: Vec<Vec<Option<(f64, f64)>>> = vec![vec![None; xs.len()]; lines.len()];
+    for p in points {
+        let Ok(s) = &p.result else { continue };
+        let c = grid.coords(p.index);
+        let line = if grid.axes.len() > 1 { c[1] } else { 0 };
+        let slot = &mut best[line][c[0]];
+        let key = by.key(s);
+        if slot.is_none_or(|(k, _)| key < k) {
+            *slot = Some((key, by.value(s)));
+        }
+    }
+    let values: Vec<f64> = best.iter().flatten().flatten().map(|&(_, v)| v).collect();
+    if values.is_empty() {
+        return Err("no point was simulated, so there is nothing to chart".into());
+    }
+    let (lo, hi) = values.iter().fold((f64::MAX, f64::MIN), |(a, b), &v| (a.min(v), b.max(v)));
+    let pad = ((hi - lo) * 0.08).max(hi.abs() * 0.02).max(1e-9);
+    let (y0, y1) = ((lo - pad).max(if lo >= 0.0 { 0.0 } else { f64::MIN }), hi + pad);
+    let n = xs.len();
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (1000, 600)).into_drawing_area();
+        root.fill(&WHITE).map_err(|e| err(&e))?;
+        let caption = format!("{title}: {} by {}", by.label(), grid.axes[0].key);
+        let mut chart = ChartBuilder::on(&root)
+            .caption(caption, ("sans-serif", 18))
+            .margin(16)
+            .x_label_area_size(50)
+            .y_label_area_size(80)
+            .build_cartesian_2d(-0.5f64..(n as f64 - 0.5), y0..y1)
+            .map_err(|e| err(&e))?;
+        let xs_for_labels = xs.clone();
+        chart
+            .configure_mesh()
+            .x_desc(grid.axes[0].key.as_str())
+            .y_desc(by.label())
+            .x_labels(n.min(40))
+            .x_label_formatter(&move |x: &f64| {
+                let i = x.round();
+                if (x - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < xs_for_labels.len() {
+                    xs_for_labels[i as usize].clone()
+                } else {
+                    String::new()
+                }
+            })
+            .label_style(("sans-serif", 12))
+            .light_line_style(RGBColor(235, 235, 235))
+            .draw()
+            .map_err(|e| err(&e))?;
+        for (l, name) in lines.iter().enumerate() {
+            let (r, g, b) = LINE_COLOURS[l % LINE_COLOURS.len()];
+            let colour = RGBColor(r, g, b);
+            // Split the line where points are missing.
+            let mut runs: Vec<Vec<(f64, f64)>> = vec![vec![]];
+            for (x, v) in best[l].iter().enumerate() {
+                match v {
+                    Some((_, y)) => runs.last_mut().map(|run| run.push((x as f64, *y))).unwrap_or(()),
+                    None => runs.push(vec![]),
+                }
+            }
+            let label =
+                if grid.axes.len() > 1 { format!("{} = {name}", grid.axes[1].key) } else { by.label().to_string() };
+            let mut first = true;
+            for run in runs.into_iter().filter(|r| !r.is_empty()) {
+                let series =
+                    chart.draw_series(LineSeries::new(run.clone(), colour.stroke_width(2))).map_err(|e| err(&e))?;
+                if first {
+                    series
+                        .label(label.clone())
+                        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], colour.stroke_width(2)));
+                    first = false;
+                }
+                chart.draw_series(run.into_iter().map(|p| Circle::new(p, 3, colour.filled()))).map_err(|e| err(&e))?;
+            }
+        }
+        // Keep the legend clear of the lines' right ends.
+        let right_ends: Vec<f64> =
+            best.iter().filter_map(|l| l.iter().rev().flatten().next().map(|&(_, v)| v)).collect();
+        let high = right_ends.iter().sum::<f64>() / right_ends.len().max(1) as f64 > (y0 + y1) / 2.0;
+        chart
+            .configure_series_labels()
+            .position(if high { SeriesLabelPosition::LowerRight } else { SeriesLabelPosition::UpperRight })
+            .background_style(WHITE.mix(0.85))
+            .border_style(RGBColor(180, 180, 180))
+            .label_font(("sans-serif", 12))
+            .draw()
+            .map_err(|e| err(&e))?;
+        root.present().map_err(|e| err(&e))?;
+    }
+    Ok(svg)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn vary_lists_ranges_and_bracketed_values() {
+        assert_eq!(parse_vary("pipeline.micro_batches=4,8").unwrap().values, vec!["4", "8"]);
+        assert_eq!(parse_vary("a=1..4").unwrap().values, vec!["1", "2", "3", "4"]);
+        assert_eq!(parse_vary("a=4..64*2").unwrap().values, vec!["4", "8", "16", "32", "64"]);
+        assert_eq!(parse_vary("a=3..50*3").unwrap().values, vec!["3", "9", "27"]);
+        assert_eq!(parse_vary("pipeline.split=[4,4,4,4];[2,6,6,2]").unwrap().values, vec!["[4,4,4,4]", "[2,6,6,2]"]);
+        assert_eq!(parse_vary("pipeline.split=[4,4],[2,6]").unwrap().values, vec!["[4,4]", "[2,6]"]);
+        assert_eq!(parse_vary("s=1f1b, fill-drain").unwrap().values, vec!["1f1b", "fill-drain"]);
+    }
+
+    #[test]
+    fn bad_vary_syntax_is_refused() {
+        for bad in [
+            "nokey",
+            "=1,2",
+            "a=",
+            "a=1,,2",
+            "a=8..4",
+            "a=1..x",
+            "a=4..64*1",
+            "a=0..8*2",
+            "a..b=1",
+            "a=1,1",
+            "a=0..1000000",
+        ] {
+            assert!(parse_vary(bad).is_err(), "{bad}");
+        }
+        assert_eq!(Grid::new(vec![]).unwrap_err(), SweepError::NoVary);
+        let v = parse_vary("a=1,2").unwrap();
+        assert!(Grid::new(vec![v.clone(), v]).is_err(), "same key twice");
+    }
+
+    #[test]
+    fn grid_order_has_the_last_key_fastest() {
+        let g = Grid::new(vec![parse_vary("a=1,2").unwrap(), parse_vary("b=x,y,z").unwrap()]).unwrap();
+        assert_eq!(g.len(), 6);
+        assert_eq!(g.values(0), vec!["1", "x"]);
+        assert_eq!(g.values(4), vec!["2", "y"]);
+        assert_eq!(shard_indices(6, 2, 4), vec![1, 5]);
+        assert_eq!(parse_shard("2/4").unwrap(), (2, 4));
+        for bad in ["0/4", "5/4", "a/b", "3", "1/0"] {
+            assert!(parse_shard(bad).is_err(), "{bad}");
+        }
+    }
+
+    #[test]
+    fn csv_round_trips_and_ranks_skipped_last() {
+        let keys = vec!["a".to_string()];
+        let s = |t: f64| Summary {
+            step_time_ms: t,
+            bubble_fraction: 0.1,
+            samples_per_s: 1.0 / t,
+            peak_memory_bytes: 7,
+            fits: true,
+        };
+        let mut pts = vec![
+            Point { index: 0, values: vec!["x".into()], result: Ok(s(3.0)) },
+            Point { index: 1, values: vec!["y, z".into()], result: Err("bad \"value\"".into()) },
+            Point { index: 2, values: vec!["w".into()], result: Ok(s(1.0 / 3.0)) },
+        ];
+        rank(&mut pts, RankBy::StepTime);
+        assert_eq!(pts.iter().map(|p| p.index).collect::<Vec<_>>(), vec![2, 0, 1]);
+        let mut out = Vec::new();
+        write_csv(&keys, &pts, &mut out).unwrap();
+        let text = String::from_utf8(out).unwrap();
+        let (k2, back) = read_csv(&text, "x.csv").unwrap();
+        assert_eq!((k2, back.clone()), (keys.clone(), pts.clone()));
+        rank(&mut pts, RankBy::Throughput);
+        assert_eq!(pts[0].index, 2);
+        assert!(to_json(&keys, &pts).contains("\"skipped\": \"bad \\\"value\\\"\""));
+    }
+}
