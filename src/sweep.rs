@@ -320,10 +320,11 @@ pub fn parse_shard(text: &str) -> Result<(usize, usize), SweepError> {
     Ok((i, n))
 }
 
-/// Orders points best first by `by` (ties by grid index); skipped points last.
+/// Orders points best first by `by` (ties by grid index): first the points
+/// that fit in memory, then those over capacity, then the skipped ones.
 pub fn rank(points: &mut [Point], by: RankBy) {
     points.sort_by(|a, b| match (&a.result, &b.result) {
-        (Ok(x), Ok(y)) => by.key(x).total_cmp(&by.key(y)).then(a.index.cmp(&b.index)),
+        (Ok(x), Ok(y)) => (!x.fits).cmp(&!y.fits).then(by.key(x).total_cmp(&by.key(y))).then(a.index.cmp(&b.index)),
         (Ok(_), Err(_)) => std::cmp::Ordering::Less,
         (Err(_), Ok(_)) => std::cmp::Ordering::Greater,
         (Err(_), Err(_)) => a.index.cmp(&b.index),
@@ -508,7 +509,15 @@ pub fn table(
         .enumerate()
         .map(|(k, name)| ok.iter().map(|p| p.values[k].len()).chain([name.len()]).max().unwrap_or(4).min(40))
         .collect();
-    let _ = writeln!(s, "{} points ranked by {}, best first; {} skipped", ok.len(), by.label(), skipped.len());
+    let over = ok.iter().filter(|p| p.result.as_ref().is_ok_and(|x| !x.fits)).count();
+    let _ = writeln!(
+        s,
+        "{} points ranked by {}, best first ({} over memory capacity, ranked last); {} skipped",
+        ok.len(),
+        by.label(),
+        over,
+        skipped.len()
+    );
     let _ = write!(s, "{:>5}  ", "rank");
     for (k, name) in keys.iter().enumerate() {
         let _ = write!(s, "{:<w$}  ", name, w = widths[k]);
@@ -588,8 +597,14 @@ pub fn chart(title: &str, grid: &Grid, points: &[Point], by: RankBy) -> Result<S
     let lines: Vec<String> = grid.axes.get(1).map_or_else(|| vec![String::new()], |a| a.values.clone());
     // best[line][x] = best point's value there.
     let mut best: Vec<Vec<Option<(f64, f64)>>> = vec![vec![None; xs.len()]; lines.len()];
+    // Points that fit are preferred; over-capacity ones are drawn only where
+    // nothing fits.
+    let any_fit = points.iter().any(|p| p.result.as_ref().is_ok_and(|s| s.fits));
     for p in points {
         let Ok(s) = &p.result else { continue };
+        if any_fit && !s.fits {
+            continue;
+        }
         let c = grid.coords(p.index);
         let line = if grid.axes.len() > 1 { c[1] } else { 0 };
         let slot = &mut best[line][c[0]];
@@ -753,6 +768,12 @@ mod tests {
         assert_eq!((k2, back.clone()), (keys.clone(), pts.clone()));
         rank(&mut pts, RankBy::Throughput);
         assert_eq!(pts[0].index, 2);
+        // A point over memory capacity ranks after every point that fits.
+        if let Ok(best) = &mut pts[0].result {
+            best.fits = false;
+        }
+        rank(&mut pts, RankBy::Throughput);
+        assert_eq!(pts.iter().map(|p| p.index).collect::<Vec<_>>(), vec![0, 2, 1]);
         assert!(to_json(&keys, &pts).contains("\"skipped\": \"bad \\\"value\\\"\""));
     }
 }
