@@ -18,7 +18,7 @@ pub use baton_scenario as scenario;
 pub use baton_schedule as schedule;
 
 use baton_engine::SimDuration;
-use baton_executor::{ExecError, StageCost, Trace, Variation};
+use baton_executor::{ExecError, RunOptions, StageCost, Trace};
 use baton_link::{LinkSpec, Topology};
 use baton_report::{Labels, MemoryInputs, Report};
 use baton_scenario::Scenario;
@@ -127,7 +127,7 @@ pub fn labels(s: &Scenario) -> Labels {
 pub fn simulate(s: &Scenario) -> Result<Outcome, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
     let placement: Vec<u32> = (0..s.pipeline.stages).collect();
-    let variation = Variation { jitter: s.cluster.jitter, seed: s.seed };
+    let variation = RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: false };
     let trace = baton_executor::simulate_with(plan, &stage_costs(s), topology(s), &placement, variation)?;
     let report = baton_report::build(&trace, &labels(s));
     Ok(Outcome { trace, report })

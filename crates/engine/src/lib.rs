@@ -304,6 +304,16 @@ impl<E, K: Hash + Eq> Scheduler<E, K> {
         self.movable.get_priority(key).map(|Reverse((t, _))| *t)
     }
 
+    /// When the earliest pending item is due, if any.
+    pub fn peek_time(&self) -> Option<SimTime> {
+        let fixed = self.fixed.peek().map(|Reverse(f)| f.at());
+        let movable = self.movable.peek().map(|(_, Reverse((t, _)))| *t);
+        match (fixed, movable) {
+            (Some(a), Some(b)) => Some(a.min(b)),
+            (a, b) => a.or(b),
+        }
+    }
+
     /// Pops the earliest pending item by `(time, sequence)` and advances `now`.
     pub fn pop(&mut self) -> Option<(SimTime, Fired<E, K>)> {
         let fixed_key = self.fixed.peek().map(|Reverse(f)| (f.at(), f.seq()));

@@ -77,6 +77,9 @@ pub struct TransferRecord {
     pub sent: SimTime,
     /// Data arrived at the receiver.
     pub end: SimTime,
+    /// The link that held the transfer back the longest (an index into the
+    /// topology's links), if it shared a finite link.
+    pub bottleneck: Option<u32>,
 }
 
 /// The data an operation waited for from another stage, if any.
@@ -109,6 +112,8 @@ pub struct Trace {
     pub link_names: Vec<String>,
     /// Events the engine delivered.
     pub events: u64,
+    /// Whether sends blocked the sender until delivered.
+    pub blocking_sends: bool,
     // Dense lookups: [kind][micro_batch * S + stage] -> (device, index in ops[device]).
     op_index: Vec<(u32, u32)>,
     // [kind][micro_batch * S + from_stage] -> index in transfers, or NONE.
@@ -144,6 +149,12 @@ impl Trace {
     pub fn record(&self, op: Op) -> (u32, &OpRecord) {
         let (d, i) = self.op_index[self.dense(op.kind, op.micro_batch, op.stage)];
         (d, &self.ops[d as usize][i as usize])
+    }
+
+    /// The transfer that carried `op`'s output to another device, if any.
+    pub fn outgoing(&self, op: Op) -> Option<&TransferRecord> {
+        let t = self.transfer_index[self.dense(op.kind, op.micro_batch, op.stage)];
+        (t != NONE).then(|| &self.transfers[t as usize])
     }
 
     /// The cross-stage data `op` needed, and when it was produced and available.
@@ -203,6 +214,9 @@ struct Exec<'a> {
     in_flight: Vec<u32>,
     /// Per device and op: the factor its compute time is scaled by.
     jitter: Option<Vec<Vec<f64>>>,
+    blocking_sends: bool,
+    /// Per device: sends not yet delivered (only counted when sends block).
+    pending_sends: Vec<u32>,
 }
 
 impl Exec<'_> {
@@ -219,7 +233,7 @@ impl Exec<'_> {
     }
 
     fn try_start(&mut self, d: usize, sched: &mut Scheduler<Ev, TransferId>) {
-        if self.busy[d] {
+        if self.busy[d] || self.pending_sends[d] > 0 {
             return;
         }
         let Some(&op) = self.plan.per_device[d].get(self.next[d]) else { return };
@@ -267,10 +281,14 @@ impl Exec<'_> {
             start: now,
             sent: now,
             end: now,
+            bottleneck: None,
         });
         let k = (op.kind == OpKind::Backward) as usize;
         let slot = k * self.plan.shape.micro_batches as usize * self.n_stages + self.idx(op.micro_batch, op.stage);
         self.transfer_index[slot] = rec;
+        if self.blocking_sends {
+            self.pending_sends[src as usize] += 1;
+        }
         let tid = self.net.start(sched, self.placement[src as usize], self.placement[dst as usize], bytes);
         let t = tid.0 as usize;
         if self.in_flight.len() <= t {
@@ -311,28 +329,38 @@ impl Model for Exec<'_> {
             Fired::Deadline(tid) => {
                 let fin = self.net.finish(sched, tid);
                 let rec = self.in_flight[tid.0 as usize];
-                self.transfers[rec as usize].sent = sched.now();
+                let t = &mut self.transfers[rec as usize];
+                t.sent = sched.now();
+                t.bottleneck = fin.bottleneck.map(|l| l.0);
                 sched.schedule(fin.delivered_at, Ev::Arrival(rec));
             }
             Fired::Event(Ev::Arrival(rec)) => {
                 let now = sched.now();
                 let t = &mut self.transfers[rec as usize];
                 t.end = now;
-                let (kind, mb, to, dst) = (t.kind, t.micro_batch, t.to_stage, t.dst);
+                let (kind, mb, to, src, dst) = (t.kind, t.micro_batch, t.to_stage, t.src, t.dst);
                 let target = self.idx(mb, to);
                 match kind {
                     DataKind::Activation => self.fwd_in[target] = true,
                     DataKind::Gradient => self.grad_in[target] = true,
                 }
                 self.try_start(dst as usize, sched);
+                if self.blocking_sends {
+                    self.pending_sends[src as usize] -= 1;
+                    self.try_start(src as usize, sched);
+                }
             }
+        }
+        // Hand out bandwidth once this instant's starts and finishes are in.
+        if self.net.is_dirty() && sched.peek_time() != Some(sched.now()) {
+            self.net.settle(sched);
         }
     }
 }
 
-/// How compute times vary from op to op.
+/// How a step is run: compute-time variation and whether sends block.
 #[derive(Clone, Copy, Debug, Default, PartialEq)]
-pub struct Variation {
+pub struct RunOptions {
     /// Each op's compute time is scaled by a factor drawn uniformly from
     /// `[1 - jitter, 1 + jitter]`; 0 means every op takes exactly its cost.
     pub jitter: f64,
@@ -340,6 +368,10 @@ pub struct Variation {
     /// (device 0's ops in order, then device 1's, ...), so the draws do not
     /// depend on timing.
     pub seed: u64,
+    /// A device that sends data to another device waits until the data has
+    /// arrived before it starts its next operation (blocking point-to-point
+    /// sends); by default sends run beside compute.
+    pub blocking_sends: bool,
 }
 
 /// Simulates one step of `plan` with every op taking exactly its cost.
@@ -347,7 +379,7 @@ pub struct Variation {
 /// `costs[s]` is virtual stage `s`'s cost; `placement[d]` is the topology
 /// device that pipeline device `d` runs on (identity for a flat cluster).
 pub fn simulate(plan: Plan, costs: &[StageCost], topology: Topology, placement: &[u32]) -> Result<Trace, ExecError> {
-    simulate_with(plan, costs, topology, placement, Variation::default())
+    simulate_with(plan, costs, topology, placement, RunOptions::default())
 }
 
 /// [`simulate`] with compute times varied as `variation` says.
@@ -356,16 +388,16 @@ pub fn simulate_with(
     costs: &[StageCost],
     topology: Topology,
     placement: &[u32],
-    variation: Variation,
+    options: RunOptions,
 ) -> Result<Trace, ExecError> {
     validate(&plan)?;
-    if !(0.0..1.0).contains(&variation.jitter) {
-        return Err(ExecError::Jitter(variation.jitter));
+    if !(0.0..1.0).contains(&options.jitter) {
+        return Err(ExecError::Jitter(options.jitter));
     }
-    let jitter = (variation.jitter > 0.0).then(|| {
+    let jitter = (options.jitter > 0.0).then(|| {
         use rand::RngExt;
-        let mut rng = baton_engine::seeded_rng(variation.seed);
-        let j = variation.jitter;
+        let mut rng = baton_engine::seeded_rng(options.seed);
+        let j = options.jitter;
         plan.per_device.iter().map(|ops| ops.iter().map(|_| rng.random_range(1.0 - j..=1.0 + j)).collect()).collect()
     });
     let shape = plan.shape;
@@ -406,6 +438,8 @@ pub fn simulate_with(
         transfer_index: vec![NONE; 2 * cells],
         in_flight: Vec::new(),
         jitter,
+        blocking_sends: options.blocking_sends,
+        pending_sends: vec![0; p],
     };
     let mut sched = Scheduler::with_capacity(2 * p + 16);
     for d in 0..p {
@@ -426,7 +460,17 @@ pub fn simulate_with(
     }
     let link_stats = exec.net.stats().to_vec();
     let Exec { ops, transfers, transfer_index, .. } = exec;
-    Ok(Trace { plan, ops, transfers, link_stats, link_names, events: sched.delivered(), op_index, transfer_index })
+    Ok(Trace {
+        plan,
+        ops,
+        transfers,
+        link_stats,
+        link_names,
+        events: sched.delivered(),
+        blocking_sends: options.blocking_sends,
+        op_index,
+        transfer_index,
+    })
 }
 
 #[cfg(test)]
@@ -504,7 +548,7 @@ mod tests {
     fn jitter_varies_times_within_bounds_and_repeats_with_the_seed() {
         let plan = build(ScheduleKind::OneFOneB, Shape::new(3, 6, 1)).unwrap();
         let run = |jitter, seed| {
-            simulate_with(plan.clone(), &uniform(3, 1000, 2000, 0), ideal(3), &identity(3), Variation { jitter, seed })
+            simulate_with(plan.clone(), &uniform(3, 1000, 2000, 0), ideal(3), &identity(3), RunOptions { jitter, seed, ..RunOptions::default() })
                 .unwrap()
         };
         let exact = simulate(plan.clone(), &uniform(3, 1000, 2000, 0), ideal(3), &identity(3)).unwrap();
@@ -519,7 +563,7 @@ mod tests {
         }
         assert_ne!(a.ops, exact.ops);
         assert!(matches!(
-            simulate_with(plan, &uniform(3, 1, 1, 0), ideal(3), &identity(3), Variation { jitter: 1.5, seed: 0 }),
+            simulate_with(plan, &uniform(3, 1, 1, 0), ideal(3), &identity(3), RunOptions { jitter: 1.5, ..RunOptions::default() }),
             Err(ExecError::Jitter(_))
         ));
     }

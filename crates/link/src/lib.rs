@@ -31,8 +31,14 @@ use baton_engine::{Scheduler, SimDuration, SimTime};
 pub struct LinkSpec {
     /// Time for the first byte to cross the link.
     pub latency_ns: u64,
-    /// How many bytes per second the link carries (must be positive).
+    /// How many bytes per second the link carries (must be positive);
+    /// [`LinkSpec::UNLIMITED`] for a link that never limits a rate.
     pub bytes_per_s: u64,
+}
+
+impl LinkSpec {
+    /// A bandwidth that never limits: transfers cost only latency.
+    pub const UNLIMITED: u64 = u64::MAX;
 }
 
 /// Index of a directed link in a topology.
@@ -165,8 +171,18 @@ struct Flow {
     /// The route's links are `topo.route_links[route.0 .. route.1]`.
     route: (u32, u32),
     live: bool,
+    /// On finite links, sharing bandwidth (not instant).
+    on_links: bool,
     mark: u32,
+    /// The link that set the current rate, and since when.
+    limit: u32,
+    limit_since: u64,
+    /// The link that limited the rate for the longest stretch, and how long.
+    top: u32,
+    top_ns: u64,
 }
+
+const NO_LINK: u32 = u32::MAX;
 
 /// What [`Network::finish`] returns about a transfer whose last byte left.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -176,16 +192,26 @@ pub struct Finished {
     pub bytes: u64,
     /// When the bytes arrive at `dst`: last byte out plus the route's latency.
     pub delivered_at: SimTime,
+    /// The link that held the transfer's rate down for the longest stretch
+    /// (`None` when it never shared a finite link).
+    pub bottleneck: Option<LinkId>,
 }
 
 /// Transfers in flight over a topology, with max-min fair rates.
+///
+/// Starting and finishing transfers only records the change; [`Network::settle`]
+/// then recomputes the rates of every transfer connected to a changed link
+/// and moves their deadlines. Calling it once per simulated instant, after
+/// all of that instant's starts and finishes, gives the same rates as calling
+/// it after each change (rates are a function of who is in flight), and
+/// transfers that start together are re-rated together.
 #[derive(Clone, Debug)]
 pub struct Network {
     topo: Topology,
-    /// Capacity in bytes per nanosecond.
+    /// Capacity in bytes per nanosecond (infinite for unlimited links).
     cap: Vec<f64>,
     on_link: Vec<Vec<u32>>,
-    /// Flows on each link whose route has more than one link.
+    /// Flows on each link whose route has more than one finite link.
     multi_hop: Vec<u32>,
     link_mark: Vec<u32>,
     flows: Vec<Flow>,
@@ -193,18 +219,21 @@ pub struct Network {
     stats: Vec<LinkStats>,
     epoch: u32,
     in_flight: usize,
+    /// Links whose membership changed since the last settle.
+    dirty: Vec<u32>,
+    dirty_mark: Vec<bool>,
     // Scratch space reused between calls.
     comp_flows: Vec<u32>,
     comp_links: Vec<u32>,
     residual: Vec<f64>,
     unfixed: Vec<u32>,
-    new_rates: Vec<(u32, f64)>,
+    new_rates: Vec<(u32, f64, u32)>,
 }
 
 /// Rounds a non-negative duration in ns up to a whole ns, ignoring float noise.
 fn ceil_ns(x: f64) -> u64 {
     if !x.is_finite() || x <= 0.0 {
-        return if x.is_finite() { 0 } else { u64::MAX / 4 };
+        return if x.is_finite() || x < 0.0 { 0 } else { u64::MAX / 4 };
     }
     let c = (x - 1e-6).ceil();
     if c <= 0.0 {
@@ -217,7 +246,11 @@ fn ceil_ns(x: f64) -> u64 {
 impl Network {
     pub fn new(topo: Topology) -> Self {
         let n = topo.link_count();
-        let cap = topo.links.iter().map(|l| l.bytes_per_s as f64 / 1e9).collect();
+        let cap = topo
+            .links
+            .iter()
+            .map(|l| if l.bytes_per_s == LinkSpec::UNLIMITED { f64::INFINITY } else { l.bytes_per_s as f64 / 1e9 })
+            .collect();
         Network {
             topo,
             cap,
@@ -229,6 +262,8 @@ impl Network {
             stats: vec![LinkStats::default(); n],
             epoch: 0,
             in_flight: 0,
+            dirty: Vec::new(),
+            dirty_mark: vec![false; n],
             comp_flows: Vec::new(),
             comp_links: Vec::new(),
             residual: vec![0.0; n],
@@ -251,19 +286,60 @@ impl Network {
         &self.stats
     }
 
-    /// The rate (bytes per second) a transfer in flight is granted now.
+    /// Whether starts or finishes await [`Network::settle`].
+    pub fn is_dirty(&self) -> bool {
+        !self.dirty.is_empty()
+    }
+
+    /// The rate (bytes per second) a transfer in flight is granted now
+    /// (as of the last settle).
     pub fn rate_bytes_per_s(&self, id: TransferId) -> Option<f64> {
         self.flows.get(id.0 as usize).filter(|f| f.live).map(|f| f.rate * 1e9)
     }
 
-    /// Starts sending `bytes` from `src` to `dst` now. Sets the new transfer's
-    /// completion deadline (and moves those of the transfers it now shares
-    /// links with) in `sched`. When the deadline fires, call [`Network::finish`].
+    /// The sum of the rates of the transfers on link `l`, in bytes per second
+    /// (as of the last settle): never more than its bandwidth.
+    pub fn load_bytes_per_s(&self, l: LinkId) -> f64 {
+        self.on_link[l.0 as usize].iter().map(|&f| self.flows[f as usize].rate).sum::<f64>() * 1e9
+    }
+
+    /// The finite links of a route: unlimited links never constrain a rate.
+    fn finite_links(&self, route: (u32, u32)) -> impl Iterator<Item = usize> + '_ {
+        self.topo.route_links[route.0 as usize..route.1 as usize]
+            .iter()
+            .map(|l| l.0 as usize)
+            .filter(|&l| self.cap[l].is_finite())
+    }
+
+    fn mark_dirty(&mut self, l: usize) {
+        if !self.dirty_mark[l] {
+            self.dirty_mark[l] = true;
+            self.dirty.push(l as u32);
+        }
+    }
+
+    /// Starts sending `bytes` from `src` to `dst` now. The transfer's deadline
+    /// is set by the next [`Network::settle`] (at once when it needs no
+    /// bandwidth); when it fires, call [`Network::finish`].
     pub fn start<E>(&mut self, sched: &mut Scheduler<E, TransferId>, src: u32, dst: u32, bytes: u64) -> TransferId {
         let now = sched.now().as_ns();
         let route = self.topo.route_bounds(src, dst);
-        let flow =
-            Flow { remaining: bytes as f64, rate: 0.0, last_ns: now, bytes, src, dst, route, live: true, mark: 0 };
+        let flow = Flow {
+            remaining: bytes as f64,
+            rate: 0.0,
+            last_ns: now,
+            bytes,
+            src,
+            dst,
+            route,
+            live: true,
+            on_links: false,
+            mark: 0,
+            limit: NO_LINK,
+            limit_since: now,
+            top: NO_LINK,
+            top_ns: 0,
+        };
         let id = match self.free.pop() {
             Some(i) => {
                 self.flows[i as usize] = flow;
@@ -276,17 +352,10 @@ impl Network {
         };
         self.in_flight += 1;
         let tid = TransferId(id);
-        let route_len = (route.1 - route.0) as usize;
-        if bytes == 0 || route_len == 0 {
-            // Nothing to share: the last byte leaves at once.
-            self.flows[id as usize].rate = f64::INFINITY;
-            sched.set_deadline(tid, SimTime(now));
-            return tid;
-        }
-        for i in 0..route_len {
-            let l = self.topo.route_links[route.0 as usize + i].0 as usize;
-            self.on_link[l].push(id);
-            self.multi_hop[l] += (route_len > 1) as u32;
+        let finite: Vec<usize> = if bytes == 0 { Vec::new() } else { self.finite_links(route).collect() };
+        // Every link crossed counts as busy; only finite ones share bandwidth.
+        for r in route.0..route.1 {
+            let l = self.topo.route_links[r as usize].0 as usize;
             let st = &mut self.stats[l];
             if st.active == 0 {
                 st.busy_since = now;
@@ -294,149 +363,181 @@ impl Network {
             st.active += 1;
             st.peak_concurrent = st.peak_concurrent.max(st.active);
         }
-        self.rerate(sched, id, true);
+        if finite.is_empty() {
+            // Nothing to share: the last byte leaves at once.
+            self.flows[id as usize].rate = f64::INFINITY;
+            sched.set_deadline(tid, SimTime(now));
+            return tid;
+        }
+        self.flows[id as usize].on_links = true;
+        let multi = finite.len() > 1;
+        for l in finite {
+            self.on_link[l].push(id);
+            self.multi_hop[l] += multi as u32;
+            self.mark_dirty(l);
+        }
         tid
     }
 
-    /// Ends a transfer whose deadline fired: frees its share of bandwidth
-    /// (moving the deadlines of the transfers that gain from it) and says when
-    /// its bytes arrive.
+    /// Ends a transfer whose deadline fired and says when its bytes arrive.
+    /// The bandwidth it frees is handed out at the next [`Network::settle`].
     pub fn finish<E>(&mut self, sched: &mut Scheduler<E, TransferId>, id: TransferId) -> Finished {
         let now = sched.now().as_ns();
         let i = id.0 as usize;
-        let (src, dst, bytes) = {
+        let (src, dst, bytes, route, on_links) = {
             let f = &self.flows[i];
-            (f.src, f.dst, f.bytes)
+            (f.src, f.dst, f.bytes, f.route, f.on_links)
         };
-        let on_links = self.flows[i].rate.is_finite();
+        for r in route.0..route.1 {
+            let l = self.topo.route_links[r as usize].0 as usize;
+            let st = &mut self.stats[l];
+            st.bytes += bytes;
+            st.active -= 1;
+            if st.active == 0 {
+                st.busy_ns += now - st.busy_since;
+            }
+        }
         if on_links {
-            // Re-rate the neighbours first, while this flow still links them.
-            self.rerate(sched, id.0, false);
-            let route = self.flows[i].route;
-            let route_len = (route.1 - route.0) as usize;
-            for r in 0..route_len {
-                let l = self.topo.route_links[route.0 as usize + r].0 as usize;
+            let finite: Vec<usize> = self.finite_links(route).collect();
+            let multi = finite.len() > 1;
+            for l in finite {
                 if let Some(pos) = self.on_link[l].iter().position(|&x| x == id.0) {
                     self.on_link[l].swap_remove(pos);
                 }
-                self.multi_hop[l] -= (route_len > 1) as u32;
-                let st = &mut self.stats[l];
-                st.bytes += bytes;
-                st.active -= 1;
-                if st.active == 0 {
-                    st.busy_ns += now - st.busy_since;
-                }
+                self.multi_hop[l] -= multi as u32;
+                self.mark_dirty(l);
             }
         }
-        self.flows[i].live = false;
+        self.note_limit(i, NO_LINK, now);
+        let f = &mut self.flows[i];
+        f.live = false;
+        let bottleneck = (f.top != NO_LINK).then_some(LinkId(f.top));
         self.free.push(id.0);
         self.in_flight -= 1;
-        Finished { src, dst, bytes, delivered_at: SimTime(now) + self.topo.route_latency(src, dst) }
+        Finished { src, dst, bytes, delivered_at: SimTime(now) + self.topo.route_latency(src, dst), bottleneck }
     }
 
-    /// The common case: every flow on link `l` crosses only `l`, so max-min
-    /// fairness is an equal share of its capacity.
-    fn rerate_one_link<E>(&mut self, sched: &mut Scheduler<E, TransferId>, l: usize, root: u32, include_root: bool) {
-        let now = sched.now().as_ns();
-        let members = self.on_link[l].len() - (!include_root) as usize;
-        if members == 0 {
+    /// Records that flow `i`'s rate is set by link `limit` from `now` on.
+    fn note_limit(&mut self, i: usize, limit: u32, now: u64) {
+        let f = &mut self.flows[i];
+        if f.limit == limit {
             return;
         }
-        let share = self.cap[l] / members as f64;
-        for idx in 0..self.on_link[l].len() {
-            let g = self.on_link[l][idx];
-            if g == root && !include_root {
+        if f.limit != NO_LINK {
+            let stretch = now - f.limit_since;
+            if stretch > f.top_ns || f.top == NO_LINK {
+                f.top = f.limit;
+                f.top_ns = stretch;
+            }
+        }
+        f.limit = limit;
+        f.limit_since = now;
+    }
+
+    /// Recomputes the rates of every transfer connected (through shared
+    /// links) to a link whose transfers changed since the last call, and moves
+    /// their deadlines. Call it before simulated time moves on.
+    pub fn settle<E>(&mut self, sched: &mut Scheduler<E, TransferId>) {
+        while let Some(l) = self.dirty.pop() {
+            let l = l as usize;
+            self.dirty_mark[l] = false;
+            if self.on_link[l].is_empty() {
                 continue;
             }
-            let fl = &mut self.flows[g as usize];
-            if fl.rate.is_finite() && fl.rate > 0.0 {
-                fl.remaining = (fl.remaining - fl.rate * (now - fl.last_ns) as f64).max(0.0);
+            if self.multi_hop[l] == 0 {
+                self.rerate_one_link(sched, l);
+            } else {
+                self.rerate_component(sched, l);
             }
-            fl.last_ns = now;
-            if fl.rate == share && g != root {
-                continue;
-            }
-            fl.rate = share;
-            let at = now.saturating_add(ceil_ns(fl.remaining / share));
+        }
+    }
+
+    /// Sets a flow's new rate (bringing its progress up to now at the old one)
+    /// and, if it changed, its deadline.
+    fn apply_rate<E>(&mut self, sched: &mut Scheduler<E, TransferId>, g: u32, rate: f64, limit: u32) {
+        let now = sched.now().as_ns();
+        let fl = &mut self.flows[g as usize];
+        if fl.rate.is_finite() && fl.rate > 0.0 {
+            fl.remaining = (fl.remaining - fl.rate * (now - fl.last_ns) as f64).max(0.0);
+        }
+        fl.last_ns = now;
+        let changed = fl.rate != rate;
+        fl.rate = rate;
+        let remaining = fl.remaining;
+        self.note_limit(g as usize, limit, now);
+        if changed {
+            let at = now.saturating_add(ceil_ns(remaining / rate));
             sched.set_deadline(TransferId(g), SimTime(at));
         }
     }
 
-    /// Recomputes the max-min fair rates of the component of flows connected
-    /// to `root` through shared links. With `include_root == false` the root is
-    /// leaving: it is walked through (it connects the component) but gets no
-    /// bandwidth.
-    fn rerate<E>(&mut self, sched: &mut Scheduler<E, TransferId>, root: u32, include_root: bool) {
-        let now = sched.now().as_ns();
-        let route = self.flows[root as usize].route;
-        if route.1 - route.0 == 1 {
-            let l = self.topo.route_links[route.0 as usize].0;
-            if self.multi_hop[l as usize] == 0 {
-                self.rerate_one_link(sched, l as usize, root, include_root);
-                return;
-            }
+    /// The common case: every flow on link `l` crosses no other finite link,
+    /// so max-min fairness is an equal share of its capacity.
+    fn rerate_one_link<E>(&mut self, sched: &mut Scheduler<E, TransferId>, l: usize) {
+        let share = self.cap[l] / self.on_link[l].len() as f64;
+        for idx in 0..self.on_link[l].len() {
+            let g = self.on_link[l][idx];
+            self.apply_rate(sched, g, share, l as u32);
         }
-        self.epoch = self.epoch.wrapping_add(1);
-        if self.epoch == 0 {
+    }
+
+    /// Water-filling over the component of flows connected to link `start`.
+    fn rerate_component<E>(&mut self, sched: &mut Scheduler<E, TransferId>, start: usize) {
+        self.epoch = self.epoch.wrapping_add(2);
+        if self.epoch < 2 {
             // Marks wrapped around: clear them so stale marks cannot match.
             self.flows.iter_mut().for_each(|f| f.mark = 0);
             self.link_mark.iter_mut().for_each(|m| *m = 0);
-            self.epoch = 1;
+            self.epoch = 2;
         }
         let epoch = self.epoch;
+        let fixed = epoch + 1;
         let mut comp_flows = std::mem::take(&mut self.comp_flows);
         let mut comp_links = std::mem::take(&mut self.comp_links);
+        let mut new_rates = std::mem::take(&mut self.new_rates);
         comp_flows.clear();
         comp_links.clear();
+        new_rates.clear();
 
-        // Breadth-first walk over flows and the links they cross.
-        self.flows[root as usize].mark = epoch;
-        comp_flows.push(root);
+        // Breadth-first walk over links and the flows on them.
+        self.link_mark[start] = epoch;
+        comp_links.push(start as u32);
         let mut head = 0;
-        while head < comp_flows.len() {
-            let f = comp_flows[head] as usize;
+        while head < comp_links.len() {
+            let l = comp_links[head] as usize;
             head += 1;
-            let route = self.flows[f].route;
-            for &LinkId(l) in &self.topo.route_links[route.0 as usize..route.1 as usize] {
-                let l = l as usize;
-                if self.link_mark[l] == epoch {
+            for idx in 0..self.on_link[l].len() {
+                let g = self.on_link[l][idx] as usize;
+                if self.flows[g].mark == epoch {
                     continue;
                 }
-                self.link_mark[l] = epoch;
-                comp_links.push(l as u32);
-                for &g in &self.on_link[l] {
-                    if self.flows[g as usize].mark != epoch {
-                        self.flows[g as usize].mark = epoch;
-                        comp_flows.push(g);
+                self.flows[g].mark = epoch;
+                comp_flows.push(g as u32);
+                let route = self.flows[g].route;
+                for r in route.0..route.1 {
+                    let k = self.topo.route_links[r as usize].0 as usize;
+                    if self.cap[k].is_finite() && self.link_mark[k] != epoch {
+                        self.link_mark[k] = epoch;
+                        comp_links.push(k as u32);
                     }
                 }
             }
         }
-
-        // Bring every member's progress up to now at its old rate.
-        for &f in &comp_flows {
-            let fl = &mut self.flows[f as usize];
-            if fl.rate.is_finite() && fl.rate > 0.0 {
-                fl.remaining = (fl.remaining - fl.rate * (now - fl.last_ns) as f64).max(0.0);
+        // Links changed inside this component are settled by this pass.
+        for &l in &comp_links {
+            if self.dirty_mark[l as usize] {
+                self.dirty_mark[l as usize] = false;
             }
-            fl.last_ns = now;
         }
+        self.dirty.retain(|&l| self.link_mark[l as usize] != epoch);
 
         // Water-filling: repeatedly saturate the link with the smallest fair share.
         for &l in &comp_links {
             let l = l as usize;
             self.residual[l] = self.cap[l];
-            let members = self.on_link[l].len() as u32;
-            self.unfixed[l] = if include_root { members } else { members - self.on_link[l].contains(&root) as u32 };
+            self.unfixed[l] = self.on_link[l].len() as u32;
         }
-        // Flows still to fix are marked `epoch`; fixed ones get `epoch ^ FIXED`.
-        const FIXED: u32 = 1 << 31;
-        let mut new_rates = std::mem::take(&mut self.new_rates);
-        new_rates.clear();
-        if !include_root {
-            self.flows[root as usize].mark = epoch ^ FIXED;
-        }
-        let mut left = comp_flows.len() - (!include_root) as usize;
+        let mut left = comp_flows.len();
         while left > 0 {
             let mut best: Option<(f64, u32)> = None;
             for &l in &comp_links {
@@ -452,29 +553,24 @@ impl Network {
             let Some((share, l)) = best else { break };
             for idx in 0..self.on_link[l as usize].len() {
                 let g = self.on_link[l as usize][idx];
-                let fl = &self.flows[g as usize];
-                if fl.mark != epoch {
+                if self.flows[g as usize].mark != epoch {
                     continue;
                 }
-                let route = fl.route;
-                self.flows[g as usize].mark = epoch ^ FIXED;
+                self.flows[g as usize].mark = fixed;
                 left -= 1;
-                new_rates.push((g, share));
-                for &LinkId(k) in &self.topo.route_links[route.0 as usize..route.1 as usize] {
-                    self.residual[k as usize] -= share;
-                    self.unfixed[k as usize] -= 1;
+                new_rates.push((g, share, l));
+                let route = self.flows[g as usize].route;
+                for r in route.0..route.1 {
+                    let k = self.topo.route_links[r as usize].0 as usize;
+                    if self.cap[k].is_finite() {
+                        self.residual[k] -= share;
+                        self.unfixed[k] -= 1;
+                    }
                 }
             }
         }
-
-        for &(g, rate) in &new_rates {
-            let fl = &mut self.flows[g as usize];
-            if fl.rate == rate && g != root {
-                continue; // Same rate: the deadline already set still holds.
-            }
-            fl.rate = rate;
-            let at = now.saturating_add(ceil_ns(fl.remaining / rate));
-            sched.set_deadline(TransferId(g), SimTime(at));
+        for &(g, rate, l) in &new_rates {
+            self.apply_rate(sched, g, rate, l);
         }
         self.comp_flows = comp_flows;
         self.comp_links = comp_links;
@@ -509,6 +605,10 @@ mod tests {
                     assert!(fin.delivered_at >= now);
                     out[ids.remove(&id).unwrap()] = fin.delivered_at.0;
                 }
+            }
+            // Settle once the instant's changes are all in, before time moves on.
+            if sched.peek_time() != Some(now) {
+                net.settle(&mut sched);
             }
         }
         assert_eq!(net.in_flight(), 0);
@@ -565,6 +665,7 @@ mod tests {
         let mut sched: Scheduler<(), TransferId> = Scheduler::new();
         let a = net.start(&mut sched, 0, 1, 1000);
         let b = net.start(&mut sched, 0, 1, 1000);
+        net.settle(&mut sched);
         assert_eq!(net.rate_bytes_per_s(a), Some(5e8));
         let mut done = 0;
         while let Some((_, f)) = sched.pop() {
@@ -573,6 +674,7 @@ mod tests {
                 net.finish(&mut sched, id);
                 done += 1;
             }
+            net.settle(&mut sched);
         }
         assert_eq!(done, 2);
         let l = net.topology().route(0, 1)[0];
@@ -599,6 +701,7 @@ mod tests {
         let fa = net.start(&mut sched, 0, 1, 1 << 30);
         let fb = net.start(&mut sched, 0, 2, 1 << 30);
         let fc = net.start(&mut sched, 1, 2, 1 << 30);
+        net.settle(&mut sched);
         let rates: Vec<f64> = [fa, fb, fc].iter().map(|&f| net.rate_bytes_per_s(f).unwrap() / gb as f64).collect();
         assert_eq!(rates, vec![8.0, 2.0, 2.0]);
     }
