@@ -548,8 +548,14 @@ mod tests {
     fn jitter_varies_times_within_bounds_and_repeats_with_the_seed() {
         let plan = build(ScheduleKind::OneFOneB, Shape::new(3, 6, 1)).unwrap();
         let run = |jitter, seed| {
-            simulate_with(plan.clone(), &uniform(3, 1000, 2000, 0), ideal(3), &identity(3), RunOptions { jitter, seed, ..RunOptions::default() })
-                .unwrap()
+            simulate_with(
+                plan.clone(),
+                &uniform(3, 1000, 2000, 0),
+                ideal(3),
+                &identity(3),
+                RunOptions { jitter, seed, ..RunOptions::default() },
+            )
+            .unwrap()
         };
         let exact = simulate(plan.clone(), &uniform(3, 1000, 2000, 0), ideal(3), &identity(3)).unwrap();
         assert_eq!(run(0.0, 5).ops, exact.ops, "no jitter, no change");
@@ -563,7 +569,13 @@ mod tests {
         }
         assert_ne!(a.ops, exact.ops);
         assert!(matches!(
-            simulate_with(plan, &uniform(3, 1, 1, 0), ideal(3), &identity(3), RunOptions { jitter: 1.5, ..RunOptions::default() }),
+            simulate_with(
+                plan,
+                &uniform(3, 1, 1, 0),
+                ideal(3),
+                &identity(3),
+                RunOptions { jitter: 1.5, ..RunOptions::default() }
+            ),
             Err(ExecError::Jitter(_))
         ));
     }

@@ -66,7 +66,15 @@ impl Topology {
     /// (so each unordered pair has one full-duplex link). A device sending to
     /// itself uses no link.
     pub fn full_mesh(devices: u32, spec: LinkSpec) -> Self {
-        let n = devices as usize;
+        let ids: Vec<u32> = (0..devices).collect();
+        Self::full_mesh_of(&ids, spec)
+    }
+
+    /// [`Topology::full_mesh`] over the devices `ids` (so topology device `i`
+    /// is cluster device `ids[i]`, which names the links).
+    pub fn full_mesh_of(ids: &[u32], spec: LinkSpec) -> Self {
+        let devices = ids.len() as u32;
+        let n = ids.len();
         let mut links = Vec::with_capacity(n * n.saturating_sub(1));
         let mut names = Vec::with_capacity(links.capacity());
         let mut route_start = Vec::with_capacity(n * n + 1);
@@ -81,13 +89,79 @@ impl Topology {
                 }
                 let id = LinkId(links.len() as u32);
                 links.push(spec);
-                names.push(format!("dev{a}->dev{b}"));
+                names.push(format!("dev{}->dev{}", ids[a], ids[b]));
                 route_links.push(id);
                 route_latency_ns.push(spec.latency_ns);
             }
         }
         route_start.push(route_links.len() as u32);
         Topology { devices, links, names, route_start, route_links, route_latency_ns }
+    }
+
+    /// Boxes of devices: `nodes` nodes of `devices_per_node` devices each,
+    /// numbered node-major. Each device has a full-duplex link to its node's
+    /// switch (`device_link`); each node reaches the fabric through `cards`
+    /// full-duplex links (`node_link`); the fabric itself never limits.
+    ///
+    /// Within a node a transfer goes device -> switch -> device (two links);
+    /// across nodes device -> switch -> card -> fabric -> card -> switch ->
+    /// device (four links). A device uses card `local index mod cards` of its
+    /// node, on both the sending and the receiving side, so the devices of a
+    /// node spread their cross-node traffic evenly over its cards.
+    ///
+    /// Routes are built among the devices `used` (topology device `i` is
+    /// cluster device `used[i]`); links are named `dev3 up`, `dev3 down`,
+    /// `node0-card1 up`, `node0-card1 down`.
+    pub fn two_level(
+        nodes: u32,
+        devices_per_node: u32,
+        device_link: LinkSpec,
+        node_link: LinkSpec,
+        cards: u32,
+        used: &[u32],
+    ) -> Self {
+        let cards = cards.max(1);
+        let mut links = Vec::new();
+        let mut names = Vec::new();
+        let mut add = |name: String, spec: LinkSpec| {
+            links.push(spec);
+            names.push(name);
+            LinkId((links.len() - 1) as u32)
+        };
+        // Device links for the devices in use, then every node's cards.
+        let dev: Vec<(LinkId, LinkId)> = used
+            .iter()
+            .map(|&d| (add(format!("dev{d} up"), device_link), add(format!("dev{d} down"), device_link)))
+            .collect();
+        let card: Vec<(LinkId, LinkId)> = (0..nodes * cards)
+            .map(|k| {
+                let (n, c) = (k / cards, k % cards);
+                (add(format!("node{n}-card{c} up"), node_link), add(format!("node{n}-card{c} down"), node_link))
+            })
+            .collect();
+        let dpn = devices_per_node.max(1);
+        let routes: Vec<Vec<Vec<LinkId>>> = used
+            .iter()
+            .enumerate()
+            .map(|(a, &da)| {
+                used.iter()
+                    .enumerate()
+                    .map(|(b, &db)| {
+                        let (na, nb) = (da / dpn, db / dpn);
+                        if a == b || da == db {
+                            vec![]
+                        } else if na == nb {
+                            vec![dev[a].0, dev[b].1]
+                        } else {
+                            let ca = card[(na * cards + (da % dpn) % cards) as usize].0;
+                            let cb = card[(nb * cards + (db % dpn) % cards) as usize].1;
+                            vec![dev[a].0, ca, cb, dev[b].1]
+                        }
+                    })
+                    .collect()
+            })
+            .collect();
+        Self::from_routes(names.into_iter().zip(links).collect(), &routes)
     }
 
     /// A topology from explicit links and routes; `routes[a][b]` lists the
@@ -704,5 +778,126 @@ mod tests {
         net.settle(&mut sched);
         let rates: Vec<f64> = [fa, fb, fc].iter().map(|&f| net.rate_bytes_per_s(f).unwrap() / gb as f64).collect();
         assert_eq!(rates, vec![8.0, 2.0, 2.0]);
+    }
+
+    /// Devices 0 -L1-> 1 -L2-> 2, latency 0, capacities in bytes per ns.
+    fn two_links(c1: u64, c2: u64) -> Topology {
+        let spec = |c: u64| LinkSpec { latency_ns: 0, bytes_per_s: c * 1_000_000_000 };
+        let (a, b) = (LinkId(0), LinkId(1));
+        let routes =
+            vec![vec![vec![], vec![a], vec![a, b]], vec![vec![], vec![], vec![b]], vec![vec![], vec![], vec![]]];
+        Topology::from_routes(vec![("L1".into(), spec(c1)), ("L2".into(), spec(c2))], &routes)
+    }
+
+    #[test]
+    fn water_filling_completion_times() {
+        // Bertsekas & Gallager, Data Networks, 2nd ed., 1992, sec. 6.5.2
+        // (max-min fairness by water-filling). L1 capacity 10, L2 capacity 4;
+        // A on L1, B on L1+L2, C on L2 get (8, 2, 2). With 8000 bytes each:
+        // A finishes at 8000/8 = 1000 ns; B and C have 2000 sent then, and keep
+        // sharing L2 at 2 each: 6000/2 more -> 4000 ns.
+        let t = deliveries(two_links(10, 4), &[(0, 0, 1, 8000), (0, 0, 2, 8000), (0, 1, 2, 8000)]);
+        assert_eq!(t, vec![1000, 4000, 4000]);
+        // Adding D on L1 gives (4, 2, 2, 4): A and D finish at 8000/4 = 2000;
+        // B and C have 4000 sent then and finish 4000/2 later, at 4000.
+        let t = deliveries(two_links(10, 4), &[(0, 0, 1, 8000), (0, 0, 2, 8000), (0, 1, 2, 8000), (0, 0, 1, 8000)]);
+        assert_eq!(t, vec![2000, 4000, 4000, 2000]);
+        // Both capacities 1 with A, B, C: (0.5, 0.5, 0.5); 1000 bytes take 2000 ns.
+        let mut net = Network::new(two_links(1, 1));
+        let mut sched: Scheduler<(), TransferId> = Scheduler::new();
+        let ids: Vec<TransferId> =
+            [(0, 1), (0, 2), (1, 2)].iter().map(|&(a, b)| net.start(&mut sched, a, b, 1000)).collect();
+        net.settle(&mut sched);
+        for id in &ids {
+            assert_eq!(net.rate_bytes_per_s(*id), Some(0.5e9));
+            assert_eq!(sched.deadline_of(id), Some(SimTime(2000)));
+        }
+    }
+
+    #[test]
+    fn two_level_routes_and_card_choice() {
+        let dl = LinkSpec { latency_ns: 2_000, bytes_per_s: 150_000_000_000 };
+        let nl = LinkSpec { latency_ns: 6_000, bytes_per_s: 25_000_000_000 };
+        let used: Vec<u32> = (0..8).collect();
+        let t = Topology::two_level(2, 4, dl, nl, 2, &used);
+        let names = |a: u32, b: u32| t.route(a, b).iter().map(|&l| t.link_name(l).to_string()).collect::<Vec<_>>();
+        assert_eq!(names(0, 1), vec!["dev0 up", "dev1 down"]);
+        // Device 1 uses card 1 (1 mod 2); device 6 is node 1's local device 2: card 0.
+        assert_eq!(names(1, 6), vec!["dev1 up", "node0-card1 up", "node1-card0 down", "dev6 down"]);
+        assert_eq!(t.route_latency(1, 6), SimDuration(2 * 2_000 + 2 * 6_000));
+        assert_eq!(t.route_latency(0, 1), SimDuration(4_000));
+        assert!(t.route(3, 3).is_empty());
+        // A cross-node transfer alone is limited by the card: 25 B/ns.
+        let d = deliveries(t, &[(0, 1, 6, 2_500_000)]);
+        assert_eq!(d, vec![100_000 + 16_000]);
+    }
+
+    use proptest::prelude::*;
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 200, ..ProptestConfig::default() })]
+
+        /// On random two-level clusters and random transfers: every byte sent
+        /// is delivered on every link of its route, no link ever carries more
+        /// than its bandwidth, and no transfer beats its time alone.
+        #[test]
+        fn sharing_is_conservative_and_capacity_bound(
+            nodes in 1u32..4, dpn in 1u32..4, cards in 1u32..3,
+            transfers in prop::collection::vec((0u64..5_000, 0u32..12, 0u32..12, 0u64..200_000), 1..25),
+        ) {
+            let devices = nodes * dpn;
+            let dl = LinkSpec { latency_ns: 300, bytes_per_s: 40_000_000_000 };
+            let nl = LinkSpec { latency_ns: 900, bytes_per_s: 10_000_000_000 };
+            let used: Vec<u32> = (0..devices).collect();
+            let topo = Topology::two_level(nodes, dpn, dl, nl, cards, &used);
+            let ts: Vec<(u64, u32, u32, u64)> = transfers.iter().map(|&(t, a, b, n)| (t, a % devices, b % devices, n)).collect();
+            let mut net = Network::new(topo.clone());
+            let mut sched: Scheduler<usize, TransferId> = Scheduler::new();
+            for (i, t) in ts.iter().enumerate() {
+                sched.schedule(SimTime(t.0), i);
+            }
+            let mut ids = std::collections::HashMap::new();
+            let mut done = vec![0u64; ts.len()];
+            while let Some((now, fired)) = sched.pop() {
+                match fired {
+                    Fired::Event(i) => { ids.insert(net.start(&mut sched, ts[i].1, ts[i].2, ts[i].3), i); }
+                    Fired::Deadline(id) => { done[ids[&id]] = net.finish(&mut sched, id).delivered_at.0; }
+                }
+                if sched.peek_time() != Some(now) {
+                    net.settle(&mut sched);
+                    for l in 0..topo.link_count() {
+                        let cap = topo.link(LinkId(l as u32)).bytes_per_s as f64;
+                        prop_assert!(net.load_bytes_per_s(LinkId(l as u32)) <= cap * (1.0 + 1e-9));
+                    }
+                }
+            }
+            for l in 0..topo.link_count() {
+                let id = LinkId(l as u32);
+                let want: u64 = ts.iter().filter(|t| topo.route(t.1, t.2).contains(&id)).map(|t| t.3).sum();
+                prop_assert_eq!(net.stats()[l].bytes, want);
+            }
+            for (i, t) in ts.iter().enumerate() {
+                let route = topo.route(t.1, t.2);
+                let slowest = route.iter().map(|&l| topo.link(l).bytes_per_s).min().unwrap_or(u64::MAX);
+                let alone = if route.is_empty() || t.3 == 0 { 0 } else { (t.3 as u128 * 1_000_000_000).div_ceil(slowest as u128) as u64 };
+                prop_assert!(done[i] >= t.0 + topo.route_latency(t.1, t.2).as_ns() + alone, "transfer {i} too fast");
+            }
+        }
+
+        /// Without contention (unlimited bandwidth) a transfer costs exactly
+        /// its route's latency.
+        #[test]
+        fn unlimited_bandwidth_costs_only_latency(
+            transfers in prop::collection::vec((0u64..5_000, 0u32..8, 0u32..8, 0u64..1_000_000), 1..20),
+        ) {
+            let dl = LinkSpec { latency_ns: 300, bytes_per_s: LinkSpec::UNLIMITED };
+            let nl = LinkSpec { latency_ns: 900, bytes_per_s: LinkSpec::UNLIMITED };
+            let used: Vec<u32> = (0..8).collect();
+            let topo = Topology::two_level(2, 4, dl, nl, 1, &used);
+            let got = deliveries(topo.clone(), &transfers);
+            for (i, t) in transfers.iter().enumerate() {
+                prop_assert_eq!(got[i], t.0 + topo.route_latency(t.1, t.2).as_ns());
+            }
+        }
     }
 }
