@@ -51,11 +51,16 @@ pub fn stage_costs(s: &Scenario) -> Vec<StageCost> {
         .collect()
 }
 
-/// The scenario's link topology over the devices in use (one per stage):
-/// every ordered pair joined directly by its own link.
+/// The scenario's link topology over the devices in use, in stage order
+/// (topology device `i` is the device of stage `i`).
 pub fn topology(s: &Scenario) -> Topology {
-    let l = s.cluster.link;
-    Topology::full_mesh(s.pipeline.stages, LinkSpec { latency_ns: l.latency_ns, bytes_per_s: l.bytes_per_s })
+    let spec = |l: baton_scenario::LinkParams| LinkSpec { latency_ns: l.latency_ns, bytes_per_s: l.bytes_per_s };
+    match s.cluster.fabric {
+        baton_scenario::Fabric::Flat { link } => Topology::full_mesh_of(&s.placement, spec(link)),
+        baton_scenario::Fabric::TwoLevel { nodes, devices_per_node, device_link, node_link, cards } => {
+            Topology::two_level(nodes, devices_per_node, spec(device_link), spec(node_link), cards, &s.placement)
+        }
+    }
 }
 
 /// What the memory model needs: stash per piece, model state per device.
@@ -120,6 +125,7 @@ pub fn labels(s: &Scenario) -> Labels {
         micro_batch_size: s.pipeline.micro_batch_size,
         recompute: s.training.recompute.name().to_string(),
         memory: memory_inputs(s),
+        placement: s.placement.clone(),
     }
 }
 
@@ -127,7 +133,7 @@ pub fn labels(s: &Scenario) -> Labels {
 pub fn simulate(s: &Scenario) -> Result<Outcome, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
     let placement: Vec<u32> = (0..s.pipeline.stages).collect();
-    let variation = RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: false };
+    let variation = RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends };
     let trace = baton_executor::simulate_with(plan, &stage_costs(s), topology(s), &placement, variation)?;
     let report = baton_report::build(&trace, &labels(s));
     Ok(Outcome { trace, report })

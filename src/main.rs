@@ -133,6 +133,9 @@ struct CompareArgs {
     /// to all. E.g. --set pipeline.schedule=interleaved --set pipeline.chunks=2.
     #[arg(long = "set", value_name = "KEY=VALUE")]
     sets: Vec<String>,
+    /// Leave the communication lanes out of the chart, e.g. --no-comm-lanes.
+    #[arg(long)]
+    no_comm_lanes: bool,
 }
 
 #[derive(Args)]
@@ -197,6 +200,10 @@ struct RunArgs {
     /// (outputs are still written), e.g. --strict.
     #[arg(long)]
     strict: bool,
+    /// Leave out the thin lane under each device that shows its sends and
+    /// receives, e.g. --svg timeline.svg --no-comm-lanes.
+    #[arg(long)]
+    no_comm_lanes: bool,
 }
 
 /// A failure and the exit status it deserves.
@@ -297,7 +304,9 @@ fn run(args: RunArgs) -> Result<(), Failure> {
     // Prepare every file first; replace the destinations only when all are ready.
     let mut pending = Vec::new();
     if let Some(path) = &args.svg {
-        let svg = baton::report::gantt::render(&outcome.trace, report).context("cannot draw the chart")?;
+        let options = baton::report::gantt::ChartOptions { comm_lanes: !args.no_comm_lanes };
+        let svg =
+            baton::report::gantt::render_with(&outcome.trace, report, options).context("cannot draw the chart")?;
         let mut p = prepare(path)?;
         p.write_all(svg.as_bytes())?;
         pending.push(p);
@@ -807,7 +816,9 @@ fn compare(args: CompareArgs) -> Result<(), Failure> {
             "Comparison: {}",
             entries.iter().map(|e| format!("{} {}", e.label, e.report.title)).collect::<Vec<_>>().join(" / ")
         );
-        let svg = baton::report::gantt::render_runs(&chart_runs, &title).context("cannot draw the chart")?;
+        let options = baton::report::gantt::ChartOptions { comm_lanes: !args.no_comm_lanes };
+        let svg =
+            baton::report::gantt::render_runs_with(&chart_runs, &title, options).context("cannot draw the chart")?;
         let mut f = prepare(path)?;
         f.write_all(svg.as_bytes())?;
         pending.push(f);

@@ -30,6 +30,8 @@ const BACKWARD: Rgb = (0xe3, 0x8b, 0x2c);
 const IDLE_INK: &str = "#b8474a";
 const LANE_H: f64 = 28.0;
 const LANE_GAP: f64 = 10.0;
+/// Height of a communication lane (sends above, receives below).
+const COMM_H: f64 = 10.0;
 const LABEL_FONT_PX: f64 = 10.0;
 
 /// The colour of an op of `kind` on chunk `chunk` of `chunks`: later chunks lighter.
@@ -85,9 +87,28 @@ fn draw_err<E: std::fmt::Debug>(e: E) -> ReportError {
 /// and the file grows past what a browser opens comfortably.
 pub const MAX_CHART_OPS: usize = 250_000;
 
-/// Draws the chart of one run; returns the SVG document.
+/// Draws the chart of one run, with communication lanes; returns the SVG document.
 pub fn render(trace: &Trace, report: &Report) -> Result<String, ReportError> {
-    render_runs(&[Run { trace, report, label: String::new() }], &report.title)
+    render_with(trace, report, ChartOptions::default())
+}
+
+/// What a chart shows beyond the compute bars.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct ChartOptions {
+    /// A thin lane under each device's bars with its sends (bytes leaving)
+    /// and receives (data in flight towards it).
+    pub comm_lanes: bool,
+}
+
+impl Default for ChartOptions {
+    fn default() -> Self {
+        ChartOptions { comm_lanes: true }
+    }
+}
+
+/// Draws the chart of one run with `options`.
+pub fn render_with(trace: &Trace, report: &Report, options: ChartOptions) -> Result<String, ReportError> {
+    render_runs_with(&[Run { trace, report, label: String::new() }], &report.title, options)
 }
 
 /// One run in a chart.
@@ -101,7 +122,17 @@ pub struct Run<'a> {
 /// Draws several runs stacked on one shared time axis (each run's lanes
 /// below the previous run's), so their timelines compare at a glance.
 pub fn render_runs(runs: &[Run<'_>], title: &str) -> Result<String, ReportError> {
-    let total_ops: usize = runs.iter().flat_map(|r| r.trace.ops.iter()).map(Vec::len).sum();
+    render_runs_with(runs, title, ChartOptions::default())
+}
+
+const SEND: Rgb = (0x3d, 0x48, 0x5a);
+const RECEIVE: Rgb = (0xa9, 0xb6, 0xc8);
+
+/// [`render_runs`] with `options`.
+pub fn render_runs_with(runs: &[Run<'_>], title: &str, options: ChartOptions) -> Result<String, ReportError> {
+    let comm = options.comm_lanes && runs.iter().any(|r| !r.trace.transfers.is_empty());
+    let total_ops: usize = runs.iter().flat_map(|r| r.trace.ops.iter()).map(Vec::len).sum::<usize>()
+        + if comm { runs.iter().map(|r| 2 * r.trace.transfers.len()).sum::<usize>() } else { 0 };
     if total_ops > MAX_CHART_OPS {
         return Err(ReportError::TooLarge { ops: total_ops, limit: MAX_CHART_OPS });
     }
@@ -116,7 +147,8 @@ pub fn render_runs(runs: &[Run<'_>], title: &str) -> Result<String, ReportError>
     let per_device = runs.iter().flat_map(|r| r.trace.ops.iter()).map(Vec::len).max().unwrap_or(0);
     let width = (220 + per_device * 20).clamp(900, 12_000) as u32;
     // Title and axis take about 110 px; each lane gets LANE_H plus a gap.
-    let chart_h = 24.0 + 110.0 + lanes as f64 * (LANE_H + LANE_GAP);
+    let lane_total = if comm { LANE_H + COMM_H + 2.0 + LANE_GAP } else { LANE_H + LANE_GAP };
+    let chart_h = 24.0 + 110.0 + lanes as f64 * lane_total;
     let legend_h = 50.0 + 22.0 * runs.len() as f64;
     let height = (chart_h + legend_h).ceil() as u32;
     let step_ns = runs.iter().map(|r| r.report.step_time_ns).max().unwrap_or(0).max(1);
@@ -165,8 +197,12 @@ pub fn render_runs(runs: &[Run<'_>], title: &str) -> Result<String, ReportError>
         // Legend and captions.
         let ly = 14;
         let mut lx = xr.start;
-        let legend: [(&str, Option<Rgb>); 3] =
-            [("forward", Some(FORWARD)), ("backward", Some(BACKWARD)), ("idle (hover for cause)", None)];
+        let mut legend: Vec<(&str, Option<Rgb>)> =
+            vec![("forward", Some(FORWARD)), ("backward", Some(BACKWARD)), ("idle (hover for cause)", None)];
+        if comm {
+            legend.push(("send (bytes leaving)", Some(SEND)));
+            legend.push(("receive (in flight)", Some(RECEIVE)));
+        }
         for (name, colour) in legend {
             let swatch = [(lx, ly), (lx + 16, ly + 12)];
             match colour {
@@ -208,7 +244,8 @@ pub fn render_runs(runs: &[Run<'_>], title: &str) -> Result<String, ReportError>
     // Bars and idle marks, in pixel coordinates of the plotting area.
     let px_per_ns = (x_range.1 - x_range.0) / step_ns as f64;
     let pitch = (y_range.1 - y_range.0) / lanes as f64;
-    let lane_h = pitch - LANE_GAP;
+    let comm_h = if comm { COMM_H * pitch / lane_total } else { 0.0 };
+    let lane_h = pitch - LANE_GAP - if comm { comm_h + 2.0 } else { 0.0 };
     let lane_y = |lane: usize| y_range.0 + LANE_GAP / 2.0 + lane as f64 * pitch;
     let mut body = String::with_capacity(256 * total_ops + 512);
     body.push_str(concat!(
@@ -284,6 +321,58 @@ pub fn render_runs(runs: &[Run<'_>], title: &str) -> Result<String, ReportError>
         }
     }
     body.push_str("</g>\n");
+    if comm {
+        body.push_str("<g id=\"transfers\">\n");
+        for (r, run) in runs.iter().enumerate() {
+            let trace = run.trace;
+            let t0 = trace.start().as_ns();
+            let x_of = |ns: u64| x_range.0 + (ns.saturating_sub(t0)) as f64 * px_per_ns;
+            let prefix = if run.label.is_empty() { String::new() } else { format!("{}: ", xml_escape(&run.label)) };
+            for t in &trace.transfers {
+                let held = t
+                    .bottleneck
+                    .and_then(|l| trace.link_names.get(l as usize))
+                    .map(|n| format!("; held back most on {}", xml_escape(n)))
+                    .unwrap_or_default();
+                let what = format!(
+                    "{} of micro-batch {} from device {} to device {}, {} bytes: sending {} to {}, arrived {}{}",
+                    t.kind.as_str(),
+                    t.micro_batch,
+                    t.src,
+                    t.dst,
+                    t.bytes,
+                    format_ns(t.start.as_ns()),
+                    format_ns(t.sent.as_ns()),
+                    format_ns(t.end.as_ns()),
+                    held
+                );
+                let half = comm_h / 2.0;
+                let send_y = lane_y(first_lane[r] + t.src as usize) + lane_h + 2.0;
+                let (x0, x1) = (x_of(t.start.as_ns()), x_of(t.sent.as_ns()));
+                let _ = writeln!(
+                    body,
+                    "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}send: {what}</title></rect>",
+                    x0,
+                    send_y,
+                    (x1 - x0).max(0.5),
+                    half,
+                    hex(SEND)
+                );
+                let recv_y = lane_y(first_lane[r] + t.dst as usize) + lane_h + 2.0 + half;
+                let (x0, x1) = (x_of(t.start.as_ns()), x_of(t.end.as_ns()));
+                let _ = writeln!(
+                    body,
+                    "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}receive: {what}</title></rect>",
+                    x0,
+                    recv_y,
+                    (x1 - x0).max(0.5),
+                    half,
+                    hex(RECEIVE)
+                );
+            }
+        }
+        body.push_str("</g>\n");
+    }
     let Some(pos) = svg.rfind("</svg>") else {
         return Err(ReportError::Draw("the SVG backend produced no closing tag".into()));
     };

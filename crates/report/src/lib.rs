@@ -57,6 +57,8 @@ pub enum Cause {
     Gradient,
     /// The data was computed but still in transit.
     Link,
+    /// The device's own blocking send had not yet arrived.
+    Send,
 }
 
 impl Cause {
@@ -67,12 +69,13 @@ impl Cause {
             Cause::Activation => "activation",
             Cause::Gradient => "gradient",
             Cause::Link => "link",
+            Cause::Send => "send",
         }
     }
 }
 
 /// The facts behind a gap, turned into a sentence only when shown.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[derive(Clone, Debug, PartialEq, Eq)]
 pub struct GapDetail {
     pub cause: Cause,
     /// The op the device was about to run (fill, activation, gradient, link)
@@ -82,6 +85,9 @@ pub struct GapDetail {
     pub producer: Option<(Op, u32)>,
     /// Sender and receiver of the transfer that carried it.
     pub route: Option<(u32, u32)>,
+    /// The link that held that transfer back the longest (link gaps), or the
+    /// receiver of the device's own blocking send (send gaps).
+    pub link: Option<String>,
 }
 
 impl fmt::Display for GapDetail {
@@ -94,11 +100,21 @@ impl fmt::Display for GapDetail {
         match (self.cause, self.producer) {
             (Cause::Fill, _) => write!(f, "pipeline fill before {}", self.op),
             (Cause::Drain, _) => write!(f, "pipeline drain after {}", self.op),
-            (Cause::Link, Some((_, from))) => match self.route {
-                Some((src, dst)) => {
-                    write!(f, "the {what} of micro-batch {mb} was in transit on the link device {src} -> device {dst}")
+            (Cause::Send, _) => write!(
+                f,
+                "blocked sending the output of {} to device {}",
+                self.op,
+                self.route.map_or(0, |(_, dst)| dst)
+            ),
+            (Cause::Link, Some((_, from))) => match (&self.link, self.route) {
+                (Some(link), Some((src, dst))) => write!(
+                    f,
+                    "the {what} of micro-batch {mb} was in transit from device {src} to device {dst}, held back most on link {link}"
+                ),
+                (None, Some((src, dst))) => {
+                    write!(f, "the {what} of micro-batch {mb} was in transit from device {src} to device {dst}")
                 }
-                None => write!(f, "the {what} of micro-batch {mb} from device {from} was in transit"),
+                _ => write!(f, "the {what} of micro-batch {mb} from device {from} was in transit"),
             },
             (_, Some((p, from))) => write!(f, "waiting for the {what} of micro-batch {mb} from device {from} ({p})"),
             (_, None) => write!(f, "waiting to start {}", self.op),
@@ -140,7 +156,10 @@ pub struct Gap {
 /// One device's totals.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct DeviceReport {
+    /// Pipeline device: the one that runs stage `device` (and its chunks).
     pub device: u32,
+    /// The cluster device it is placed on.
+    pub cluster_device: u32,
     pub busy_ms: f64,
     pub idle_ms: f64,
     pub bubble_fraction: f64,
@@ -160,6 +179,19 @@ pub struct DeviceReport {
     pub busy_ns: u64,
     #[serde(skip)]
     pub idle_ns: u64,
+}
+
+/// One directed link that carried data.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct LinkReport {
+    pub name: String,
+    pub bytes: u64,
+    /// Time during which at least one transfer was pushing bytes over it.
+    pub busy_ms: f64,
+    /// Busy time / step time.
+    pub utilization: f64,
+    /// Most transfers sharing it at once.
+    pub peak_concurrent: u32,
 }
 
 /// Everything a run reports.
@@ -184,6 +216,8 @@ pub struct Report {
     pub ops: usize,
     pub transfers: usize,
     pub devices: Vec<DeviceReport>,
+    /// Every directed link that carried data, in topology order.
+    pub links: Vec<LinkReport>,
     /// Every idle interval, by device then start time.
     pub gaps: Vec<Gap>,
 }
@@ -204,6 +238,8 @@ pub struct Labels {
     /// `none` or `full`, shown in reports.
     pub recompute: String,
     pub memory: MemoryInputs,
+    /// The cluster device each pipeline device is placed on (empty: the same number).
+    pub placement: Vec<u32>,
 }
 
 /// What the memory model needs beyond the trace.
@@ -277,6 +313,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         let peak_memory_bytes = state_bytes.saturating_add(mem.reserved_bytes).saturating_add(peak_activation_bytes);
         devices.push(DeviceReport {
             device,
+            cluster_device: labels.placement.get(d).copied().unwrap_or(device),
             busy_ms: ms(busy_ns),
             idle_ms: ms(idle_ns),
             bubble_fraction: if step_ns == 0 { 0.0 } else { idle_ns as f64 / step_ns as f64 },
@@ -316,8 +353,29 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         ops: trace.ops.iter().map(Vec::len).sum(),
         transfers: trace.transfers.len(),
         devices,
+        links: trace
+            .link_stats
+            .iter()
+            .zip(&trace.link_names)
+            .filter(|(st, _)| st.bytes > 0 || st.peak_concurrent > 0)
+            .map(|(st, name)| LinkReport {
+                name: name.clone(),
+                bytes: st.bytes,
+                busy_ms: ms(st.busy_ns),
+                utilization: if step_ns == 0 { 0.0 } else { st.busy_ns as f64 / step_ns as f64 },
+                peak_concurrent: st.peak_concurrent,
+            })
+            .collect(),
         gaps,
     }
+}
+
+/// The link busy the largest share of the step (ties: the first).
+pub fn busiest_link(report: &Report) -> Option<&LinkReport> {
+    report.links.iter().fold(None, |best: Option<&LinkReport>, l| match best {
+        Some(b) if b.utilization >= l.utilization => Some(b),
+        _ => Some(l),
+    })
 }
 
 /// Largest number of micro-batches whose activations device `d` holds at once.
@@ -354,12 +412,13 @@ fn push_gap(gaps: &mut Vec<Gap>, device: u32, start: SimTime, end: SimTime, deta
         return;
     }
     let who = detail.producer.map(|(_, from)| (from, detail.op.micro_batch, detail.op.stage));
+    let cause = detail.cause;
     gaps.push(Gap {
         device,
         start_ms: ms(start.as_ns()),
         end_ms: ms(end.as_ns()),
         duration_ms: ms(end.as_ns() - start.as_ns()),
-        cause: detail.cause,
+        cause,
         detail,
         from_device: who.map(|w| w.0),
         micro_batch: who.map(|w| w.1),
@@ -375,12 +434,22 @@ fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec
     let (Some(first), Some(last)) = (recs.first(), recs.last()) else {
         return;
     };
-    let plain = |cause, op| GapDetail { cause, op, producer: None, route: None };
+    let plain = |cause, op| GapDetail { cause, op, producer: None, route: None, link: None };
     push_gap(gaps, device, t0, first.start, plain(Cause::Fill, first.op));
     for w in recs.windows(2) {
         let (a, b) = (&w[0], &w[1]);
         if b.start <= a.end {
             continue;
+        }
+        let mut from = a.end;
+        // A blocking send keeps the device until its data has arrived.
+        if trace.blocking_sends {
+            if let Some(t) = trace.outgoing(a.op).filter(|t| t.end > a.end) {
+                let until = t.end.min(b.start);
+                let detail = GapDetail { route: Some((t.src, t.dst)), ..plain(Cause::Send, a.op) };
+                push_gap(gaps, device, from, until, detail);
+                from = until;
+            }
         }
         // Only an op that needs data from another stage can find its device
         // free but itself not ready, so a dependency always exists here.
@@ -389,12 +458,14 @@ fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec
             DataKind::Activation => Cause::Activation,
             DataKind::Gradient => Cause::Gradient,
         };
-        let route = dep.transfer.map(|t| (trace.transfers[t].src, trace.transfers[t].dst));
+        let transfer = dep.transfer.map(|t| &trace.transfers[t]);
+        let route = transfer.map(|t| (t.src, t.dst));
+        let link = transfer.and_then(|t| t.bottleneck).and_then(|l| trace.link_names.get(l as usize).cloned());
         let producer = Some((dep.producer, dep.producer_device));
         let waiting_until = dep.produced_at.min(b.start);
-        push_gap(gaps, device, a.end, waiting_until, GapDetail { cause, op: b.op, producer, route });
-        let link_from = dep.produced_at.max(a.end);
-        push_gap(gaps, device, link_from, b.start, GapDetail { cause: Cause::Link, op: b.op, producer, route });
+        push_gap(gaps, device, from, waiting_until, GapDetail { cause, op: b.op, producer, route, link: None });
+        let link_from = dep.produced_at.max(from);
+        push_gap(gaps, device, link_from, b.start, GapDetail { cause: Cause::Link, op: b.op, producer, route, link });
     }
     push_gap(gaps, device, last.end, t1, plain(Cause::Drain, last.op));
 }
@@ -490,10 +561,17 @@ pub fn summary(report: &Report) -> String {
     );
     let _ = writeln!(s, "simulated        {} ops, {} transfers", report.ops, report.transfers);
     let _ = writeln!(s);
+    let placed = report.devices.iter().any(|d| d.cluster_device != d.device);
     let _ = writeln!(
         s,
-        "{:>6}  {:>12}  {:>12}  {:>8}  {:>16}  {:>25}",
-        "device", "busy", "idle", "bubble", "peak activations", "peak mem / capacity"
+        "{:>6}  {:>12}  {:>12}  {:>8}  {:>16}  {:>25}{}",
+        "device",
+        "busy",
+        "idle",
+        "bubble",
+        "peak activations",
+        "peak mem / capacity",
+        if placed { "  placed on" } else { "" }
     );
     for d in &report.devices {
         let capacity = d.memory_capacity_bytes.map_or_else(|| "unlimited".to_string(), format_bytes);
@@ -506,7 +584,23 @@ pub fn summary(report: &Report) -> String {
             d.bubble_fraction * 100.0,
             d.peak_activations,
             format!("{} / {}", format_bytes(d.peak_memory_bytes), capacity),
-            if d.fits { "" } else { "  OVER CAPACITY" }
+            if placed { format!("  cluster device {}", d.cluster_device) } else { String::new() }
+        );
+        if !d.fits {
+            s.pop();
+            let _ = writeln!(s, "  OVER CAPACITY");
+        }
+    }
+    if let Some(l) = busiest_link(report) {
+        let _ = writeln!(s);
+        let _ = writeln!(
+            s,
+            "most utilised link: {} ({:.1}% of the step busy, {} carried, up to {} transfer{} at once)",
+            l.name,
+            l.utilization * 100.0,
+            format_bytes(l.bytes),
+            l.peak_concurrent,
+            if l.peak_concurrent == 1 { "" } else { "s" }
         );
     }
     let over: Vec<String> = report.devices.iter().filter(|d| !d.fits).map(|d| d.device.to_string()).collect();

@@ -95,10 +95,22 @@ pub struct LinkParams {
     pub bytes_per_s: u64,
 }
 
+/// How devices are connected.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Fabric {
+    /// `devices` + `link`: every ordered pair of devices joined directly by
+    /// its own one-hop link.
+    Flat { link: LinkParams },
+    /// `nodes` x `devices_per_node`: devices reach their node's switch over
+    /// `device_link`; nodes reach the fabric over `cards` copies of `node_link`.
+    TwoLevel { nodes: u32, devices_per_node: u32, device_link: LinkParams, node_link: LinkParams, cards: u32 },
+}
+
 #[derive(Clone, Debug, PartialEq)]
 pub struct Cluster {
+    /// All devices (`nodes x devices_per_node` for a two-level fabric).
     pub devices: u32,
-    pub link: LinkParams,
+    pub fabric: Fabric,
     pub device: DeviceSpec,
     /// Each op's compute time is scaled by a factor drawn uniformly from
     /// `[1 - jitter, 1 + jitter]` with the scenario's seed; 0 (the default)
@@ -116,6 +128,8 @@ pub struct Pipeline {
     pub chunks: u32,
     /// Samples per micro-batch.
     pub micro_batch_size: u32,
+    /// A device waits for each of its sends to arrive before its next op.
+    pub blocking_sends: bool,
 }
 
 /// A validated scenario.
@@ -128,6 +142,8 @@ pub struct Scenario {
     pub cluster: Cluster,
     pub pipeline: Pipeline,
     pub training: Training,
+    /// The device each pipeline stage runs on (`placement`), one per stage.
+    pub placement: Vec<u32>,
 }
 
 /// The summed cost of one piece of the model (one virtual stage).
@@ -495,7 +511,8 @@ impl<'a> MapAt<'a> {
     }
 }
 
-const PIPELINE_KEYS: [&str; 6] = ["stages", "split", "micro_batches", "schedule", "chunks", "micro_batch_size"];
+const PIPELINE_KEYS: [&str; 7] =
+    ["stages", "split", "micro_batches", "schedule", "chunks", "micro_batch_size", "blocking_sends"];
 
 fn from_tree(
     doc: &Node,
@@ -506,7 +523,7 @@ fn from_tree(
 ) -> Result<Scenario, ScenarioError> {
     let cx = Cx { file, base_dir, profiles };
     let root = At { cx: &cx, path: "", node: doc };
-    let top = root.map(&["title", "seed", "model", "cluster", "pipeline", "training"])?;
+    let top = root.map(&["title", "seed", "model", "cluster", "pipeline", "training", "placement"])?;
     let title = top.opt("title", |a| a.text())?.unwrap_or_else(|| default_title.to_string());
     let seed = top.opt("seed", |a| a.int(0, u64::MAX as i128).map(|v| v as u64))?.unwrap_or(1);
 
@@ -517,7 +534,61 @@ fn from_tree(
     let (source, layers) = top.req("model", |m| read_model(m, &cluster, micro_batch_size))?;
     let training = top.opt("training", read_training)?.unwrap_or_default();
     let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster))?;
-    Ok(Scenario { title, seed, source, layers, cluster, pipeline, training })
+    let placement = match top.get("placement") {
+        None => (0..pipeline.stages).collect(),
+        Some((path, node)) => read_placement(At { cx: &cx, path: &path, node }, &cluster, pipeline.stages)?,
+    };
+    Ok(Scenario { title, seed, source, layers, cluster, pipeline, training, placement })
+}
+
+/// `packed` puts stage s on device s; `spread` deals stages out over the
+/// nodes in turn (stage s on node s mod nodes, in that node's next free
+/// slot); a list names a distinct device for each stage.
+fn read_placement(a: At<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u32>, ScenarioError> {
+    match &a.node.value {
+        Value::Str(s) if s == "packed" => Ok((0..stages).collect()),
+        Value::Str(s) if s == "spread" => {
+            let (nodes, dpn) = match cluster.fabric {
+                Fabric::TwoLevel { nodes, devices_per_node, .. } => (nodes, devices_per_node),
+                Fabric::Flat { .. } => (1, cluster.devices),
+            };
+            Ok((0..stages).map(|s| (s % nodes) * dpn + s / nodes).collect())
+        }
+        Value::Seq(items) => {
+            if items.len() as u32 != stages {
+                return Err(
+                    a.err(format!("names {} devices, but there are {stages} stages (one device each)", items.len()))
+                );
+            }
+            let mut out = Vec::with_capacity(items.len());
+            for (i, item) in items.iter().enumerate() {
+                let path = format!("{}.{i}", a.path);
+                let at = At { cx: a.cx, path: &path, node: item };
+                let d = at.int(0, cluster.devices as i128 - 1).map_err(|_| {
+                    at.err(format!(
+                        "must name a device from 0 to {}, found {}",
+                        cluster.devices - 1,
+                        describe(&item.value)
+                    ))
+                })? as u32;
+                if let Some(j) = out.iter().position(|&x| x == d) {
+                    return Err(at.err(format!("device {d} is already given to stage {j}")));
+                }
+                out.push(d);
+            }
+            Ok(out)
+        }
+        other => Err(a.err(format!("expected packed, spread or a list of device ids, found {}", describe(other)))),
+    }
+}
+
+fn describe(v: &Value) -> String {
+    match v {
+        Value::Str(s) => format!("`{s}`"),
+        Value::Int(i) => i.to_string(),
+        Value::Float(f) => f.to_string(),
+        other => other.kind().to_string(),
+    }
 }
 
 fn positive<T: PartialOrd + Default>(a: &At<'_>, v: T) -> Result<T, ScenarioError> {
@@ -528,15 +599,43 @@ fn positive<T: PartialOrd + Default>(a: &At<'_>, v: T) -> Result<T, ScenarioErro
     }
 }
 
+fn read_link(l: At<'_>, with_count: bool) -> Result<(LinkParams, u32), ScenarioError> {
+    let keys: &[&str] = if with_count { &["latency", "bandwidth", "count"] } else { &["latency", "bandwidth"] };
+    let l = l.map(keys)?;
+    let latency_ns = l.req("latency", |a| a.duration_ns())?;
+    let bytes_per_s = l.req("bandwidth", |a| positive(&a, a.bytes_per_s()?))?;
+    let count = if with_count { l.opt("count", |a| a.int(1, 64).map(|v| v as u32))?.unwrap_or(1) } else { 1 };
+    Ok((LinkParams { latency_ns, bytes_per_s }, count))
+}
+
 fn read_cluster(c: At<'_>) -> Result<Cluster, ScenarioError> {
-    let c = c.map(&["devices", "link", "jitter", "device"])?;
-    let devices = c.req("devices", |a| a.int(1, MAX_DEVICES).map(|v| v as u32))?;
-    let link = c.req("link", |l| {
-        let l = l.map(&["latency", "bandwidth"])?;
-        let latency_ns = l.req("latency", |a| a.duration_ns())?;
-        let bytes_per_s = l.req("bandwidth", |a| positive(&a, a.bytes_per_s()?))?;
-        Ok(LinkParams { latency_ns, bytes_per_s })
-    })?;
+    let c_at = c;
+    let c = c.map(&["devices", "link", "nodes", "devices_per_node", "device_link", "node_link", "jitter", "device"])?;
+    let flat = ["devices", "link"].iter().any(|k| c.get(k).is_some());
+    let boxes = ["nodes", "devices_per_node", "device_link", "node_link"].iter().any(|k| c.get(k).is_some());
+    let (devices, fabric) = if flat && boxes {
+        return Err(c_at.err(
+            "give either devices and link (every device pair joined directly) or nodes, devices_per_node, device_link and node_link, not both",
+        ));
+    } else if boxes {
+        let nodes = c.req("nodes", |a| a.int(1, 4096).map(|v| v as u32))?;
+        let dpn = c.req("devices_per_node", |a| a.int(1, 4096).map(|v| v as u32))?;
+        let (device_link, _) = c.req("device_link", |l| read_link(l, false))?;
+        let (node_link, cards) = c.req("node_link", |l| read_link(l, true))?;
+        let total = nodes as i128 * dpn as i128;
+        if total > MAX_DEVICES {
+            return Err(c.cx.err(
+                &join(c.path, "nodes"),
+                c.origin,
+                format!("nodes x devices_per_node = {total} devices, more than {MAX_DEVICES}"),
+            ));
+        }
+        (total as u32, Fabric::TwoLevel { nodes, devices_per_node: dpn, device_link, node_link, cards })
+    } else {
+        let devices = c.req("devices", |a| a.int(1, MAX_DEVICES).map(|v| v as u32))?;
+        let (link, _) = c.req("link", |l| read_link(l, false))?;
+        (devices, Fabric::Flat { link })
+    };
     let jitter = c.opt("jitter", |a| a.fraction())?.unwrap_or(0.0);
     let device = c
         .opt("device", |d| {
@@ -556,7 +655,7 @@ fn read_cluster(c: At<'_>) -> Result<Cluster, ScenarioError> {
             })
         })?
         .unwrap_or_default();
-    Ok(Cluster { devices, link, jitter, device })
+    Ok(Cluster { devices, fabric, jitter, device })
 }
 
 fn read_training(t: At<'_>) -> Result<Training, ScenarioError> {
@@ -670,6 +769,12 @@ fn read_layers(list: At<'_>) -> Result<Vec<Layer>, ScenarioError> {
 fn read_pipeline(p: At<'_>, layers: &[Layer], cluster: &Cluster) -> Result<Pipeline, ScenarioError> {
     let m = p.map(&PIPELINE_KEYS)?;
     let micro_batch_size = m.opt("micro_batch_size", |a| a.u32(1))?.unwrap_or(1);
+    let blocking_sends = m
+        .opt("blocking_sends", |a| match &a.node.value {
+            Value::Bool(b) => Ok(*b),
+            other => Err(a.err(format!("expected true or false, found {}", describe(other)))),
+        })?
+        .unwrap_or(false);
     let stages = m.req("stages", |a| {
         let v = a.u32(1)?;
         if v > MAX_STAGES {
@@ -735,7 +840,7 @@ fn read_pipeline(p: At<'_>, layers: &[Layer], cluster: &Cluster) -> Result<Pipel
         };
         p.cx.err(&join(p.path, key), &field_origin(key), e.to_string())
     })?;
-    Ok(Pipeline { stages, split, micro_batches, schedule, chunks, micro_batch_size })
+    Ok(Pipeline { stages, split, micro_batches, schedule, chunks, micro_batch_size, blocking_sends })
 }
 
 /// `layers` split into `pieces` contiguous runs whose sizes differ by at most
@@ -780,7 +885,10 @@ pipeline:
         assert_eq!(s.layers.len(), 8);
         assert_eq!(s.layers[0].forward_ns, 1_200_000);
         assert_eq!(s.layers[3].name, "block.2");
-        assert_eq!(s.cluster.link, LinkParams { latency_ns: 5_000, bytes_per_s: 64_000_000_000 });
+        assert_eq!(
+            s.cluster.fabric,
+            Fabric::Flat { link: LinkParams { latency_ns: 5_000, bytes_per_s: 64_000_000_000 } }
+        );
         assert_eq!(s.pipeline.schedule, ScheduleKind::OneFOneB);
         let pieces = s.pieces();
         assert_eq!(pieces[0].forward_ns, 2_200_000);
@@ -859,7 +967,7 @@ pipeline:
         assert!(e.to_string().starts_with("t.yaml:12:3: pipeline.micro_batches: missing"), "{e}");
         let text = EXAMPLE.replace("  chunks: 1\n", "  chunk: 1\n");
         let e = parse_with(&text, &[]).unwrap_err();
-        assert_eq!(e.to_string(), "t.yaml:16:3: pipeline.chunk: unknown key `chunk`; expected one of: stages, split, micro_batches, schedule, chunks, micro_batch_size");
+        assert_eq!(e.to_string(), "t.yaml:16:3: pipeline.chunk: unknown key `chunk`; expected one of: stages, split, micro_batches, schedule, chunks, micro_batch_size, blocking_sends");
         let e = parse_with(&EXAMPLE.replace("cluster:", "klaster:"), &[]).unwrap_err();
         assert_eq!(e.key(), Some("klaster"));
     }
