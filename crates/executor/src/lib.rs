@@ -20,7 +20,7 @@
 //! It deliberately knows nothing about scenario files, units or reports.
 
 use baton_engine::{Fired, Model, Scheduler, SimDuration, SimTime};
-use baton_link::{LinkStats, Network, Topology, TransferId};
+use baton_link::{LinkStats, Network, NextCompletion, Topology, TransferId};
 use baton_schedule::{validate, Op, OpKind, Plan, ScheduleError};
 use thiserror::Error;
 
@@ -217,6 +217,8 @@ struct Exec<'a> {
     blocking_sends: bool,
     /// Per device: sends not yet delivered (only counted when sends block).
     pending_sends: Vec<u32>,
+    /// Scratch list of transfers whose last byte has left.
+    due: Vec<TransferId>,
 }
 
 impl Exec<'_> {
@@ -232,7 +234,7 @@ impl Exec<'_> {
         }
     }
 
-    fn try_start(&mut self, d: usize, sched: &mut Scheduler<Ev, TransferId>) {
+    fn try_start(&mut self, d: usize, sched: &mut Scheduler<Ev, NextCompletion>) {
         if self.busy[d] || self.pending_sends[d] > 0 {
             return;
         }
@@ -255,7 +257,7 @@ impl Exec<'_> {
     }
 
     /// Hands data from `from_stage` to `to_stage` of `micro_batch`.
-    fn send(&mut self, sched: &mut Scheduler<Ev, TransferId>, kind: DataKind, op: Op, to_stage: u32) {
+    fn send(&mut self, sched: &mut Scheduler<Ev, NextCompletion>, kind: DataKind, op: Op, to_stage: u32) {
         let p = self.plan.shape.stages;
         let (src, dst) = (op.stage % p, to_stage % p);
         let target = self.idx(op.micro_batch, to_stage);
@@ -300,9 +302,9 @@ impl Exec<'_> {
 
 impl Model for Exec<'_> {
     type Event = Ev;
-    type Key = TransferId;
+    type Key = NextCompletion;
 
-    fn handle(&mut self, fired: Fired<Ev, TransferId>, sched: &mut Scheduler<Ev, TransferId>) {
+    fn handle(&mut self, fired: Fired<Ev, NextCompletion>, sched: &mut Scheduler<Ev, NextCompletion>) {
         match fired {
             Fired::Event(Ev::OpDone(d)) => {
                 let d = d as usize;
@@ -326,13 +328,19 @@ impl Model for Exec<'_> {
                 }
                 self.try_start(d, sched);
             }
-            Fired::Deadline(tid) => {
-                let fin = self.net.finish(sched, tid);
-                let rec = self.in_flight[tid.0 as usize];
-                let t = &mut self.transfers[rec as usize];
-                t.sent = sched.now();
-                t.bottleneck = fin.bottleneck.map(|l| l.0);
-                sched.schedule(fin.delivered_at, Ev::Arrival(rec));
+            Fired::Deadline(NextCompletion) => {
+                let mut due = std::mem::take(&mut self.due);
+                due.clear();
+                self.net.take_due(sched.now(), &mut due);
+                for &tid in &due {
+                    let fin = self.net.finish(sched, tid);
+                    let rec = self.in_flight[tid.0 as usize];
+                    let t = &mut self.transfers[rec as usize];
+                    t.sent = sched.now();
+                    t.bottleneck = fin.bottleneck.map(|l| l.0);
+                    sched.schedule(fin.delivered_at, Ev::Arrival(rec));
+                }
+                self.due = due;
             }
             Fired::Event(Ev::Arrival(rec)) => {
                 let now = sched.now();
@@ -352,7 +360,7 @@ impl Model for Exec<'_> {
             }
         }
         // Hand out bandwidth once this instant's starts and finishes are in.
-        if self.net.is_dirty() && sched.peek_time() != Some(sched.now()) {
+        if self.net.needs_settle() && sched.peek_time() != Some(sched.now()) {
             self.net.settle(sched);
         }
     }
@@ -440,6 +448,7 @@ pub fn simulate_with(
         jitter,
         blocking_sends: options.blocking_sends,
         pending_sends: vec![0; p],
+        due: Vec::new(),
     };
     let mut sched = Scheduler::with_capacity(2 * p + 16);
     for d in 0..p {

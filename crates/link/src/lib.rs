@@ -239,6 +239,8 @@ struct Flow {
     /// Bytes per nanosecond.
     rate: f64,
     last_ns: u64,
+    /// When the last byte leaves, at the current rate (rounded up).
+    completion_ns: u64,
     bytes: u64,
     src: u32,
     dst: u32,
@@ -248,6 +250,12 @@ struct Flow {
     /// On finite links, sharing bandwidth (not instant).
     on_links: bool,
     mark: u32,
+    /// The settle in which its rate was last recomputed.
+    settled: u32,
+    /// Bumped whenever `completion_ns` changes or the flow ends.
+    version: u32,
+    /// Its narrowest finite link (always part of its water-filling).
+    narrowest: u32,
     /// The link that set the current rate, and since when.
     limit: u32,
     limit_since: u64,
@@ -257,6 +265,46 @@ struct Flow {
 }
 
 const NO_LINK: u32 = u32::MAX;
+
+impl Flow {
+    /// Records that the rate is set by link `limit` from `now` on.
+    fn note_limit(&mut self, limit: u32, now: u64) {
+        if self.limit == limit {
+            return;
+        }
+        if self.limit != NO_LINK {
+            let stretch = now - self.limit_since;
+            if stretch > self.top_ns || self.top == NO_LINK {
+                self.top = self.limit;
+                self.top_ns = stretch;
+            }
+        }
+        self.limit = limit;
+        self.limit_since = now;
+    }
+
+    /// Sets a new rate, bringing progress up to now at the old one; returns
+    /// whether the completion time changed (and the version with it).
+    fn set_rate(&mut self, now: u64, rate: f64, limit: u32) -> bool {
+        if self.rate.is_finite() && self.rate > 0.0 {
+            self.remaining = (self.remaining - self.rate * (now - self.last_ns) as f64).max(0.0);
+        }
+        self.last_ns = now;
+        let changed = self.rate != rate;
+        if changed {
+            self.rate = rate;
+            self.completion_ns = now.saturating_add(ceil_ns(self.remaining / rate));
+            self.version = self.version.wrapping_add(1);
+        }
+        self.note_limit(limit, now);
+        changed
+    }
+}
+
+/// The key of the network's one deadline in the engine: the next moment a
+/// transfer's last byte leaves. It moves whenever rates change.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub struct NextCompletion;
 
 /// What [`Network::finish`] returns about a transfer whose last byte left.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -275,10 +323,19 @@ pub struct Finished {
 ///
 /// Starting and finishing transfers only records the change; [`Network::settle`]
 /// then recomputes the rates of every transfer connected to a changed link
-/// and moves their deadlines. Calling it once per simulated instant, after
-/// all of that instant's starts and finishes, gives the same rates as calling
-/// it after each change (rates are a function of who is in flight), and
-/// transfers that start together are re-rated together.
+/// and moves the network's one deadline ([`NextCompletion`]) to the earliest
+/// completion. Calling it once per simulated instant, after all of that
+/// instant's starts and finishes, gives the same rates as calling it after
+/// each change (rates are a function of who is in flight).
+///
+/// Cost of a settle: water-filling over the connected component of the
+/// changed links, `O(rounds x links in the component + route lengths)`, then a
+/// scan of the transfers in flight for the earliest completion. It grows with
+/// the number of concurrent transfers and the links they cross, never with
+/// the size of the topology. Links that cannot limit any of their transfers
+/// (their capacity is at least the sum of what each transfer could get through
+/// the rest of its route) are left out of the water-filling; dropping a
+/// constraint that the others imply does not change the max-min allocation.
 #[derive(Clone, Debug)]
 pub struct Network {
     topo: Topology,
@@ -287,6 +344,12 @@ pub struct Network {
     on_link: Vec<Vec<u32>>,
     /// Flows on each link whose route has more than one finite link.
     multi_hop: Vec<u32>,
+    /// Per link: the sum over its flows of the most each could get elsewhere
+    /// on its route (finite part), and how many could get without limit.
+    bound_sum: Vec<f64>,
+    bound_inf: Vec<u32>,
+    /// Finite links that can limit a transfer on them.
+    binding: Vec<bool>,
     link_mark: Vec<u32>,
     flows: Vec<Flow>,
     free: Vec<u32>,
@@ -296,12 +359,23 @@ pub struct Network {
     /// Links whose membership changed since the last settle.
     dirty: Vec<u32>,
     dirty_mark: Vec<bool>,
+    /// A completion time may have changed since the last settle.
+    next_stale: bool,
+    next_due: Option<u64>,
+    /// Flows in flight, and each flow slot's position in that list.
+    live: Vec<u32>,
+    live_pos: Vec<u32>,
     // Scratch space reused between calls.
     comp_flows: Vec<u32>,
     comp_links: Vec<u32>,
     residual: Vec<f64>,
     unfixed: Vec<u32>,
     new_rates: Vec<(u32, f64, u32)>,
+    scratch_bounds: Vec<(usize, f64, usize)>,
+    /// Settle generation, and the generation in which each link's rates were
+    /// last recomputed (a link is recomputed at most once per settle).
+    settle_gen: u32,
+    link_done: Vec<u32>,
 }
 
 /// Rounds a non-negative duration in ns up to a whole ns, ignoring float noise.
@@ -309,11 +383,15 @@ fn ceil_ns(x: f64) -> u64 {
     if !x.is_finite() || x <= 0.0 {
         return if x.is_finite() || x < 0.0 { 0 } else { u64::MAX / 4 };
     }
-    let c = (x - 1e-6).ceil();
-    if c <= 0.0 {
-        0
+    let t = x - 1e-6;
+    if t <= 0.0 {
+        return 0;
+    }
+    let whole = t as u64;
+    if (whole as f64) < t {
+        whole + 1
     } else {
-        c as u64
+        whole
     }
 }
 
@@ -330,6 +408,9 @@ impl Network {
             cap,
             on_link: vec![Vec::new(); n],
             multi_hop: vec![0; n],
+            bound_sum: vec![0.0; n],
+            bound_inf: vec![0; n],
+            binding: vec![false; n],
             link_mark: vec![0; n],
             flows: Vec::new(),
             free: Vec::new(),
@@ -338,11 +419,18 @@ impl Network {
             in_flight: 0,
             dirty: Vec::new(),
             dirty_mark: vec![false; n],
+            next_stale: false,
+            next_due: None,
+            live: Vec::new(),
+            live_pos: Vec::new(),
             comp_flows: Vec::new(),
             comp_links: Vec::new(),
             residual: vec![0.0; n],
             unfixed: vec![0; n],
             new_rates: Vec::new(),
+            scratch_bounds: Vec::new(),
+            settle_gen: 0,
+            link_done: vec![0; n],
         }
     }
 
@@ -361,8 +449,8 @@ impl Network {
     }
 
     /// Whether starts or finishes await [`Network::settle`].
-    pub fn is_dirty(&self) -> bool {
-        !self.dirty.is_empty()
+    pub fn needs_settle(&self) -> bool {
+        !self.dirty.is_empty() || self.next_stale
     }
 
     /// The rate (bytes per second) a transfer in flight is granted now
@@ -371,18 +459,22 @@ impl Network {
         self.flows.get(id.0 as usize).filter(|f| f.live).map(|f| f.rate * 1e9)
     }
 
+    /// When a transfer in flight will have pushed its last byte (as of the
+    /// last settle).
+    pub fn completion_of(&self, id: TransferId) -> Option<SimTime> {
+        self.flows.get(id.0 as usize).filter(|f| f.live).map(|f| SimTime(f.completion_ns))
+    }
+
     /// The sum of the rates of the transfers on link `l`, in bytes per second
     /// (as of the last settle): never more than its bandwidth.
     pub fn load_bytes_per_s(&self, l: LinkId) -> f64 {
         self.on_link[l.0 as usize].iter().map(|&f| self.flows[f as usize].rate).sum::<f64>() * 1e9
     }
 
-    /// The finite links of a route: unlimited links never constrain a rate.
-    fn finite_links(&self, route: (u32, u32)) -> impl Iterator<Item = usize> + '_ {
-        self.topo.route_links[route.0 as usize..route.1 as usize]
-            .iter()
-            .map(|l| l.0 as usize)
-            .filter(|&l| self.cap[l].is_finite())
+    /// Recomputes whether finite link `l` can limit any of its transfers
+    /// (see the type's doc); a kept link never changes the result.
+    fn update_binding(&mut self, l: usize) {
+        self.binding[l] = self.bound_inf[l] > 0 || self.bound_sum[l] >= self.cap[l] * (1.0 - 1e-9);
     }
 
     fn mark_dirty(&mut self, l: usize) {
@@ -392,16 +484,47 @@ impl Network {
         }
     }
 
-    /// Starts sending `bytes` from `src` to `dst` now. The transfer's deadline
-    /// is set by the next [`Network::settle`] (at once when it needs no
-    /// bandwidth); when it fires, call [`Network::finish`].
-    pub fn start<E>(&mut self, sched: &mut Scheduler<E, TransferId>, src: u32, dst: u32, bytes: u64) -> TransferId {
+    /// Calls `visit(link, bound, finite links on the route)` for each finite
+    /// link of `route`, where `bound` is the smallest capacity among the
+    /// route's other finite links (infinite when there is none).
+    fn each_bound(&self, route: (u32, u32), mut visit: impl FnMut(usize, f64, usize)) {
+        let links = &self.topo.route_links[route.0 as usize..route.1 as usize];
+        // The two smallest capacities give every "smallest of the others".
+        let (mut min1, mut min1_at, mut min2, mut finite) = (f64::INFINITY, usize::MAX, f64::INFINITY, 0usize);
+        for (i, l) in links.iter().enumerate() {
+            let c = self.cap[l.0 as usize];
+            if !c.is_finite() {
+                continue;
+            }
+            finite += 1;
+            if c < min1 {
+                min2 = min1;
+                min1 = c;
+                min1_at = i;
+            } else if c < min2 {
+                min2 = c;
+            }
+        }
+        for (i, l) in links.iter().enumerate() {
+            let k = l.0 as usize;
+            if self.cap[k].is_finite() {
+                visit(k, if i == min1_at { min2 } else { min1 }, finite);
+            }
+        }
+    }
+
+    /// Starts sending `bytes` from `src` to `dst` now. Its rate and the
+    /// network's deadline are set by the next [`Network::settle`]; when the
+    /// deadline fires, [`Network::take_due`] lists the transfers to finish.
+    pub fn start<E>(&mut self, sched: &Scheduler<E, NextCompletion>, src: u32, dst: u32, bytes: u64) -> TransferId {
         let now = sched.now().as_ns();
         let route = self.topo.route_bounds(src, dst);
         let flow = Flow {
             remaining: bytes as f64,
             rate: 0.0,
             last_ns: now,
+            // Not due until it has a rate (instant transfers are set below).
+            completion_ns: u64::MAX,
             bytes,
             src,
             dst,
@@ -409,6 +532,9 @@ impl Network {
             live: true,
             on_links: false,
             mark: 0,
+            settled: 0,
+            version: 0,
+            narrowest: NO_LINK,
             limit: NO_LINK,
             limit_since: now,
             top: NO_LINK,
@@ -416,7 +542,8 @@ impl Network {
         };
         let id = match self.free.pop() {
             Some(i) => {
-                self.flows[i as usize] = flow;
+                let version = self.flows[i as usize].version.wrapping_add(1);
+                self.flows[i as usize] = Flow { version, ..flow };
                 i
             }
             None => {
@@ -425,8 +552,12 @@ impl Network {
             }
         };
         self.in_flight += 1;
-        let tid = TransferId(id);
-        let finite: Vec<usize> = if bytes == 0 { Vec::new() } else { self.finite_links(route).collect() };
+        self.next_stale = true;
+        if self.live_pos.len() <= id as usize {
+            self.live_pos.resize(id as usize + 1, 0);
+        }
+        self.live_pos[id as usize] = self.live.len() as u32;
+        self.live.push(id);
         // Every link crossed counts as busy; only finite ones share bandwidth.
         for r in route.0..route.1 {
             let l = self.topo.route_links[r as usize].0 as usize;
@@ -437,25 +568,54 @@ impl Network {
             st.active += 1;
             st.peak_concurrent = st.peak_concurrent.max(st.active);
         }
-        if finite.is_empty() {
+        let mut any = false;
+        if bytes > 0 {
+            let mut added = std::mem::take(&mut self.scratch_bounds);
+            added.clear();
+            self.each_bound(route, |l, b, n| added.push((l, b, n)));
+            let mut narrowest = usize::MAX;
+            for &(l, b, n) in &added {
+                any = true;
+                self.on_link[l].push(id);
+                self.multi_hop[l] += (n > 1) as u32;
+                if b.is_finite() {
+                    self.bound_sum[l] += b;
+                } else {
+                    self.bound_inf[l] += 1;
+                }
+                self.update_binding(l);
+                self.mark_dirty(l);
+                if narrowest == usize::MAX || self.cap[l] < self.cap[narrowest] {
+                    narrowest = l;
+                }
+            }
+            self.flows[id as usize].narrowest = narrowest as u32;
+            self.scratch_bounds = added;
+        }
+        if !any {
             // Nothing to share: the last byte leaves at once.
-            self.flows[id as usize].rate = f64::INFINITY;
-            sched.set_deadline(tid, SimTime(now));
-            return tid;
+            let f = &mut self.flows[id as usize];
+            f.rate = f64::INFINITY;
+            f.completion_ns = now;
+            return TransferId(id);
         }
         self.flows[id as usize].on_links = true;
-        let multi = finite.len() > 1;
-        for l in finite {
-            self.on_link[l].push(id);
-            self.multi_hop[l] += multi as u32;
-            self.mark_dirty(l);
-        }
-        tid
+        TransferId(id)
     }
 
-    /// Ends a transfer whose deadline fired and says when its bytes arrive.
-    /// The bandwidth it frees is handed out at the next [`Network::settle`].
-    pub fn finish<E>(&mut self, sched: &mut Scheduler<E, TransferId>, id: TransferId) -> Finished {
+    /// The transfers whose last byte has left by `now`, in order of
+    /// completion (ties by id), appended to `out`; finish each with
+    /// [`Network::finish`].
+    pub fn take_due(&mut self, now: SimTime, out: &mut Vec<TransferId>) {
+        let first = out.len();
+        let flows = &self.flows;
+        out.extend(self.live.iter().filter(|&&id| flows[id as usize].completion_ns <= now.as_ns()).map(|&id| TransferId(id)));
+        out[first..].sort_unstable_by_key(|t| (flows[t.0 as usize].completion_ns, t.0));
+    }
+
+    /// Ends a transfer whose last byte has left and says when its bytes
+    /// arrive. The bandwidth it frees is handed out at the next settle.
+    pub fn finish<E>(&mut self, sched: &Scheduler<E, NextCompletion>, id: TransferId) -> Finished {
         let now = sched.now().as_ns();
         let i = id.0 as usize;
         let (src, dst, bytes, route, on_links) = {
@@ -472,91 +632,112 @@ impl Network {
             }
         }
         if on_links {
-            let finite: Vec<usize> = self.finite_links(route).collect();
-            let multi = finite.len() > 1;
-            for l in finite {
+            let mut removed = std::mem::take(&mut self.scratch_bounds);
+            removed.clear();
+            self.each_bound(route, |l, b, n| removed.push((l, b, n)));
+            for &(l, b, n) in &removed {
+                let multi = n > 1;
                 if let Some(pos) = self.on_link[l].iter().position(|&x| x == id.0) {
                     self.on_link[l].swap_remove(pos);
                 }
                 self.multi_hop[l] -= multi as u32;
+                if b.is_finite() {
+                    self.bound_sum[l] -= b;
+                    if self.on_link[l].is_empty() {
+                        self.bound_sum[l] = 0.0; // no drift once a link empties
+                    }
+                } else {
+                    self.bound_inf[l] -= 1;
+                }
+                self.update_binding(l);
                 self.mark_dirty(l);
             }
+            self.scratch_bounds = removed;
         }
         self.note_limit(i, NO_LINK, now);
+        let pos = self.live_pos[i] as usize;
+        self.live.swap_remove(pos);
+        if let Some(&moved) = self.live.get(pos) {
+            self.live_pos[moved as usize] = pos as u32;
+        }
         let f = &mut self.flows[i];
         f.live = false;
+        f.version = f.version.wrapping_add(1);
         let bottleneck = (f.top != NO_LINK).then_some(LinkId(f.top));
         self.free.push(id.0);
         self.in_flight -= 1;
+        self.next_stale = true;
         Finished { src, dst, bytes, delivered_at: SimTime(now) + self.topo.route_latency(src, dst), bottleneck }
     }
 
     /// Records that flow `i`'s rate is set by link `limit` from `now` on.
     fn note_limit(&mut self, i: usize, limit: u32, now: u64) {
-        let f = &mut self.flows[i];
-        if f.limit == limit {
-            return;
-        }
-        if f.limit != NO_LINK {
-            let stretch = now - f.limit_since;
-            if stretch > f.top_ns || f.top == NO_LINK {
-                f.top = f.limit;
-                f.top_ns = stretch;
-            }
-        }
-        f.limit = limit;
-        f.limit_since = now;
+        self.flows[i].note_limit(limit, now);
     }
 
     /// Recomputes the rates of every transfer connected (through shared
     /// links) to a link whose transfers changed since the last call, and moves
-    /// their deadlines. Call it before simulated time moves on.
-    pub fn settle<E>(&mut self, sched: &mut Scheduler<E, TransferId>) {
+    /// the network's deadline to the earliest completion. Call it before
+    /// simulated time moves on.
+    pub fn settle<E>(&mut self, sched: &mut Scheduler<E, NextCompletion>) {
+        self.settle_gen = self.settle_gen.wrapping_add(1);
+        if self.settle_gen == 0 {
+            self.link_done.iter_mut().for_each(|g| *g = 0);
+            self.flows.iter_mut().for_each(|f| f.settled = 0);
+            self.settle_gen = 1;
+        }
         while let Some(l) = self.dirty.pop() {
             let l = l as usize;
             self.dirty_mark[l] = false;
-            if self.on_link[l].is_empty() {
+            let gen = self.settle_gen;
+            if self.on_link[l].is_empty()
+                || self.link_done[l] == gen
+                || self.on_link[l].iter().all(|&f| self.flows[f as usize].settled == gen)
+            {
                 continue;
             }
             if self.multi_hop[l] == 0 {
-                self.rerate_one_link(sched, l);
+                self.rerate_one_link(sched.now().as_ns(), l);
             } else {
-                self.rerate_component(sched, l);
+                self.rerate_component(sched.now().as_ns(), l);
+            }
+        }
+        if self.next_stale {
+            self.next_stale = false;
+            let flows = &self.flows;
+            let next = self.live.iter().map(|&id| flows[id as usize].completion_ns).min();
+            if next != self.next_due || sched.deadline_of(&NextCompletion).is_none() {
+                match next {
+                    Some(t) => sched.set_deadline(NextCompletion, SimTime(t)),
+                    None => {
+                        sched.cancel_deadline(&NextCompletion);
+                    }
+                }
+                self.next_due = next;
             }
         }
     }
 
-    /// Sets a flow's new rate (bringing its progress up to now at the old one)
-    /// and, if it changed, its deadline.
-    fn apply_rate<E>(&mut self, sched: &mut Scheduler<E, TransferId>, g: u32, rate: f64, limit: u32) {
-        let now = sched.now().as_ns();
-        let fl = &mut self.flows[g as usize];
-        if fl.rate.is_finite() && fl.rate > 0.0 {
-            fl.remaining = (fl.remaining - fl.rate * (now - fl.last_ns) as f64).max(0.0);
-        }
-        fl.last_ns = now;
-        let changed = fl.rate != rate;
-        fl.rate = rate;
-        let remaining = fl.remaining;
-        self.note_limit(g as usize, limit, now);
-        if changed {
-            let at = now.saturating_add(ceil_ns(remaining / rate));
-            sched.set_deadline(TransferId(g), SimTime(at));
+    /// Sets a flow's new rate, bringing its progress up to now at the old one.
+    fn apply_rate(&mut self, now: u64, g: u32, rate: f64, limit: u32) {
+        if self.flows[g as usize].set_rate(now, rate, limit) {
+            self.next_stale = true;
         }
     }
 
     /// The common case: every flow on link `l` crosses no other finite link,
     /// so max-min fairness is an equal share of its capacity.
-    fn rerate_one_link<E>(&mut self, sched: &mut Scheduler<E, TransferId>, l: usize) {
+    fn rerate_one_link(&mut self, now: u64, l: usize) {
         let share = self.cap[l] / self.on_link[l].len() as f64;
         for idx in 0..self.on_link[l].len() {
             let g = self.on_link[l][idx];
-            self.apply_rate(sched, g, share, l as u32);
+            self.apply_rate(now, g, share, l as u32);
         }
     }
 
-    /// Water-filling over the component of flows connected to link `start`.
-    fn rerate_component<E>(&mut self, sched: &mut Scheduler<E, TransferId>, start: usize) {
+    /// Water-filling over the component of flows connected to link `start`
+    /// through links that can limit them.
+    fn rerate_component(&mut self, now: u64, start: usize) {
         self.epoch = self.epoch.wrapping_add(2);
         if self.epoch < 2 {
             // Marks wrapped around: clear them so stale marks cannot match.
@@ -566,89 +747,105 @@ impl Network {
         }
         let epoch = self.epoch;
         let fixed = epoch + 1;
-        let mut comp_flows = std::mem::take(&mut self.comp_flows);
-        let mut comp_links = std::mem::take(&mut self.comp_links);
-        let mut new_rates = std::mem::take(&mut self.new_rates);
+        let gen = self.settle_gen;
+        let Network {
+            topo,
+            cap,
+            on_link,
+            binding,
+            link_mark,
+            flows,
+            comp_flows,
+            comp_links,
+            new_rates,
+            residual,
+            unfixed,
+            link_done,
+            next_stale,
+            ..
+        } = self;
+        let route_links = &topo.route_links[..];
         comp_flows.clear();
         comp_links.clear();
         new_rates.clear();
 
-        // Breadth-first walk over links and the flows on them.
-        self.link_mark[start] = epoch;
-        comp_links.push(start as u32);
+        // Seed with the changed link's flows, then walk flows and the links
+        // that can limit them (a flow's narrowest link always counts).
+        for &g in &on_link[start] {
+            let f = &mut flows[g as usize];
+            if f.mark != epoch {
+                f.mark = epoch;
+                comp_flows.push(g);
+            }
+        }
         let mut head = 0;
-        while head < comp_links.len() {
-            let l = comp_links[head] as usize;
+        while head < comp_flows.len() {
+            let g = comp_flows[head] as usize;
             head += 1;
-            for idx in 0..self.on_link[l].len() {
-                let g = self.on_link[l][idx] as usize;
-                if self.flows[g].mark == epoch {
+            let (r0, r1, narrowest) = (flows[g].route.0 as usize, flows[g].route.1 as usize, flows[g].narrowest);
+            for &LinkId(k) in &route_links[r0..r1] {
+                let ku = k as usize;
+                if link_mark[ku] == epoch || !(k == narrowest || binding[ku]) {
                     continue;
                 }
-                self.flows[g].mark = epoch;
-                comp_flows.push(g as u32);
-                let route = self.flows[g].route;
-                for r in route.0..route.1 {
-                    let k = self.topo.route_links[r as usize].0 as usize;
-                    if self.cap[k].is_finite() && self.link_mark[k] != epoch {
-                        self.link_mark[k] = epoch;
-                        comp_links.push(k as u32);
+                link_mark[ku] = epoch;
+                comp_links.push(k);
+                for &h in &on_link[ku] {
+                    let f = &mut flows[h as usize];
+                    if f.mark != epoch {
+                        f.mark = epoch;
+                        comp_flows.push(h);
                     }
                 }
             }
         }
-        // Links changed inside this component are settled by this pass.
-        for &l in &comp_links {
-            if self.dirty_mark[l as usize] {
-                self.dirty_mark[l as usize] = false;
-            }
-        }
-        self.dirty.retain(|&l| self.link_mark[l as usize] != epoch);
 
         // Water-filling: repeatedly saturate the link with the smallest fair share.
-        for &l in &comp_links {
-            let l = l as usize;
-            self.residual[l] = self.cap[l];
-            self.unfixed[l] = self.on_link[l].len() as u32;
+        for &l in comp_links.iter() {
+            residual[l as usize] = cap[l as usize];
+            unfixed[l as usize] = on_link[l as usize].len() as u32;
         }
         let mut left = comp_flows.len();
         while left > 0 {
             let mut best: Option<(f64, u32)> = None;
-            for &l in &comp_links {
-                let n = self.unfixed[l as usize];
+            for &l in comp_links.iter() {
+                let n = unfixed[l as usize];
                 if n == 0 {
                     continue;
                 }
-                let share = self.residual[l as usize].max(0.0) / n as f64;
+                let share = residual[l as usize].max(0.0) / n as f64;
                 if best.is_none_or(|(s, _)| share < s) {
                     best = Some((share, l));
                 }
             }
             let Some((share, l)) = best else { break };
-            for idx in 0..self.on_link[l as usize].len() {
-                let g = self.on_link[l as usize][idx];
-                if self.flows[g as usize].mark != epoch {
+            for &g in &on_link[l as usize] {
+                let f = &mut flows[g as usize];
+                if f.mark != epoch {
                     continue;
                 }
-                self.flows[g as usize].mark = fixed;
+                f.mark = fixed;
                 left -= 1;
                 new_rates.push((g, share, l));
-                let route = self.flows[g as usize].route;
-                for r in route.0..route.1 {
-                    let k = self.topo.route_links[r as usize].0 as usize;
-                    if self.cap[k].is_finite() {
-                        self.residual[k] -= share;
-                        self.unfixed[k] -= 1;
+                for &LinkId(k) in &route_links[f.route.0 as usize..f.route.1 as usize] {
+                    if link_mark[k as usize] == epoch {
+                        residual[k as usize] -= share;
+                        unfixed[k as usize] -= 1;
                     }
                 }
             }
         }
-        for &(g, rate, l) in &new_rates {
-            self.apply_rate(sched, g, rate, l);
+        for &(g, rate, l) in new_rates.iter() {
+            let f = &mut flows[g as usize];
+            if f.set_rate(now, rate, l) {
+                *next_stale = true;
+            }
+            f.settled = gen;
         }
-        self.comp_flows = comp_flows;
-        self.comp_links = comp_links;
-        self.new_rates = new_rates;
+        // The component's links are final for this settle.
+        for &l in comp_links.iter() {
+            link_done[l as usize] = gen;
+        }
     }
 }
 
@@ -661,23 +858,28 @@ mod tests {
     /// one's delivery time in ns, in input order.
     pub(crate) fn deliveries(topo: Topology, transfers: &[(u64, u32, u32, u64)]) -> Vec<u64> {
         let mut net = Network::new(topo);
-        let mut sched: Scheduler<usize, TransferId> = Scheduler::new();
+        let mut sched: Scheduler<usize, NextCompletion> = Scheduler::new();
         for (i, t) in transfers.iter().enumerate() {
             sched.schedule(SimTime(t.0), i);
         }
         let mut ids = std::collections::HashMap::new();
         let mut out = vec![0; transfers.len()];
+        let mut due = Vec::new();
         while let Some((now, fired)) = sched.pop() {
             match fired {
                 Fired::Event(i) => {
                     let (_, s, d, b) = transfers[i];
-                    let id = net.start(&mut sched, s, d, b);
+                    let id = net.start(&sched, s, d, b);
                     ids.insert(id, i);
                 }
-                Fired::Deadline(id) => {
-                    let fin = net.finish(&mut sched, id);
-                    assert!(fin.delivered_at >= now);
-                    out[ids.remove(&id).unwrap()] = fin.delivered_at.0;
+                Fired::Deadline(NextCompletion) => {
+                    due.clear();
+                    net.take_due(now, &mut due);
+                    for &id in &due {
+                        let fin = net.finish(&sched, id);
+                        assert!(fin.delivered_at >= now);
+                        out[ids.remove(&id).unwrap()] = fin.delivered_at.0;
+                    }
                 }
             }
             // Settle once the instant's changes are all in, before time moves on.
@@ -736,17 +938,21 @@ mod tests {
         let spec = LinkSpec { latency_ns: 0, bytes_per_s: 1_000_000_000 };
         let topo = Topology::full_mesh(2, spec);
         let mut net = Network::new(topo);
-        let mut sched: Scheduler<(), TransferId> = Scheduler::new();
-        let a = net.start(&mut sched, 0, 1, 1000);
-        let b = net.start(&mut sched, 0, 1, 1000);
+        let mut sched: Scheduler<(), NextCompletion> = Scheduler::new();
+        let a = net.start(&sched, 0, 1, 1000);
+        let b = net.start(&sched, 0, 1, 1000);
         net.settle(&mut sched);
         assert_eq!(net.rate_bytes_per_s(a), Some(5e8));
         let mut done = 0;
-        while let Some((_, f)) = sched.pop() {
-            if let Fired::Deadline(id) = f {
-                assert!(id == a || id == b);
-                net.finish(&mut sched, id);
-                done += 1;
+        while let Some((now, f)) = sched.pop() {
+            if let Fired::Deadline(NextCompletion) = f {
+                let mut due = Vec::new();
+                net.take_due(now, &mut due);
+                for id in due {
+                    assert!(id == a || id == b);
+                    net.finish(&sched, id);
+                    done += 1;
+                }
             }
             net.settle(&mut sched);
         }
@@ -771,10 +977,10 @@ mod tests {
             vec![vec![vec![], vec![a], vec![a, b]], vec![vec![], vec![], vec![b]], vec![vec![], vec![], vec![]]];
         let topo = Topology::from_routes(vec![("L1".into(), l1), ("L2".into(), l2)], &routes);
         let mut net = Network::new(topo);
-        let mut sched: Scheduler<(), TransferId> = Scheduler::new();
-        let fa = net.start(&mut sched, 0, 1, 1 << 30);
-        let fb = net.start(&mut sched, 0, 2, 1 << 30);
-        let fc = net.start(&mut sched, 1, 2, 1 << 30);
+        let mut sched: Scheduler<(), NextCompletion> = Scheduler::new();
+        let fa = net.start(&sched, 0, 1, 1 << 30);
+        let fb = net.start(&sched, 0, 2, 1 << 30);
+        let fc = net.start(&sched, 1, 2, 1 << 30);
         net.settle(&mut sched);
         let rates: Vec<f64> = [fa, fb, fc].iter().map(|&f| net.rate_bytes_per_s(f).unwrap() / gb as f64).collect();
         assert_eq!(rates, vec![8.0, 2.0, 2.0]);
@@ -804,14 +1010,14 @@ mod tests {
         assert_eq!(t, vec![2000, 4000, 4000, 2000]);
         // Both capacities 1 with A, B, C: (0.5, 0.5, 0.5); 1000 bytes take 2000 ns.
         let mut net = Network::new(two_links(1, 1));
-        let mut sched: Scheduler<(), TransferId> = Scheduler::new();
-        let ids: Vec<TransferId> =
-            [(0, 1), (0, 2), (1, 2)].iter().map(|&(a, b)| net.start(&mut sched, a, b, 1000)).collect();
+        let mut sched: Scheduler<(), NextCompletion> = Scheduler::new();
+        let ids: Vec<TransferId> = [(0, 1), (0, 2), (1, 2)].iter().map(|&(a, b)| net.start(&sched, a, b, 1000)).collect();
         net.settle(&mut sched);
         for id in &ids {
             assert_eq!(net.rate_bytes_per_s(*id), Some(0.5e9));
-            assert_eq!(sched.deadline_of(id), Some(SimTime(2000)));
+            assert_eq!(net.completion_of(*id), Some(SimTime(2000)));
         }
+        assert_eq!(sched.deadline_of(&NextCompletion), Some(SimTime(2000)));
     }
 
     #[test]
@@ -834,6 +1040,32 @@ mod tests {
 
     use proptest::prelude::*;
 
+    /// Max-min fair rates (bytes per second) by textbook water-filling over
+    /// every link, nothing left out (Bertsekas & Gallager, sec. 6.5.2).
+    fn reference_rates(topo: &Topology, flows: &[(TransferId, &[LinkId])]) -> Vec<f64> {
+        let mut rate = vec![None; flows.len()];
+        let mut residual: Vec<f64> = (0..topo.link_count()).map(|l| topo.link(LinkId(l as u32)).bytes_per_s as f64).collect();
+        loop {
+            let mut best: Option<(f64, usize)> = None;
+            for (l, r) in residual.iter().enumerate() {
+                let n = flows.iter().enumerate().filter(|(i, f)| rate[*i].is_none() && f.1.contains(&LinkId(l as u32))).count();
+                if n > 0 && best.is_none_or(|(s, _)| r / (n as f64) < s) {
+                    best = Some((r / n as f64, l));
+                }
+            }
+            let Some((share, l)) = best else { break };
+            for (i, f) in flows.iter().enumerate() {
+                if rate[i].is_none() && f.1.contains(&LinkId(l as u32)) {
+                    rate[i] = Some(share);
+                    for k in f.1 {
+                        residual[k.0 as usize] -= share;
+                    }
+                }
+            }
+        }
+        rate.into_iter().map(|r| r.unwrap_or(0.0)).collect()
+    }
+
     proptest! {
         #![proptest_config(ProptestConfig { cases: 200, ..ProptestConfig::default() })]
 
@@ -852,7 +1084,7 @@ mod tests {
             let topo = Topology::two_level(nodes, dpn, dl, nl, cards, &used);
             let ts: Vec<(u64, u32, u32, u64)> = transfers.iter().map(|&(t, a, b, n)| (t, a % devices, b % devices, n)).collect();
             let mut net = Network::new(topo.clone());
-            let mut sched: Scheduler<usize, TransferId> = Scheduler::new();
+            let mut sched: Scheduler<usize, NextCompletion> = Scheduler::new();
             for (i, t) in ts.iter().enumerate() {
                 sched.schedule(SimTime(t.0), i);
             }
@@ -860,14 +1092,32 @@ mod tests {
             let mut done = vec![0u64; ts.len()];
             while let Some((now, fired)) = sched.pop() {
                 match fired {
-                    Fired::Event(i) => { ids.insert(net.start(&mut sched, ts[i].1, ts[i].2, ts[i].3), i); }
-                    Fired::Deadline(id) => { done[ids[&id]] = net.finish(&mut sched, id).delivered_at.0; }
+                    Fired::Event(i) => { ids.insert(net.start(&sched, ts[i].1, ts[i].2, ts[i].3), i); }
+                    Fired::Deadline(NextCompletion) => {
+                        let mut due = Vec::new();
+                        net.take_due(now, &mut due);
+                        for id in due {
+                            done[ids[&id]] = net.finish(&sched, id).delivered_at.0;
+                        }
+                    }
                 }
                 if sched.peek_time() != Some(now) {
                     net.settle(&mut sched);
                     for l in 0..topo.link_count() {
                         let cap = topo.link(LinkId(l as u32)).bytes_per_s as f64;
                         prop_assert!(net.load_bytes_per_s(LinkId(l as u32)) <= cap * (1.0 + 1e-9));
+                    }
+                    // The rates equal plain water-filling over every link.
+                    let live: Vec<(TransferId, &[LinkId])> = ids
+                        .iter()
+                        .filter(|(id, _)| net.completion_of(**id).is_some())
+                        .filter(|(_, &i)| ts[i].3 > 0 && !topo.route(ts[i].1, ts[i].2).is_empty())
+                        .map(|(&id, &i)| (id, topo.route(ts[i].1, ts[i].2)))
+                        .collect();
+                    let want = reference_rates(&topo, &live);
+                    for ((id, _), r) in live.iter().zip(want) {
+                        let got = net.rate_bytes_per_s(*id).unwrap();
+                        prop_assert!((got - r).abs() <= 1e-6 * r.max(1.0), "rate {got} vs {r}");
                     }
                 }
             }
