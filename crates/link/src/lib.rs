@@ -249,13 +249,10 @@ struct Flow {
     live: bool,
     /// On finite links, sharing bandwidth (not instant).
     on_links: bool,
-    mark: u32,
     /// The settle in which its rate was last recomputed.
     settled: u32,
     /// Bumped whenever `completion_ns` changes or the flow ends.
     version: u32,
-    /// Its narrowest finite link (always part of its water-filling).
-    narrowest: u32,
     /// The link that set the current rate, and since when.
     limit: u32,
     limit_since: u64,
@@ -265,6 +262,16 @@ struct Flow {
 }
 
 const NO_LINK: u32 = u32::MAX;
+
+/// What the component walk and water-filling read of a flow.
+#[derive(Clone, Copy, Debug, Default)]
+struct Walk {
+    /// Component-walk marks (epoch: in the component; epoch + 1: fixed).
+    mark: u32,
+    /// Its narrowest finite link (always part of its water-filling).
+    narrowest: u32,
+    route: (u32, u32),
+}
 
 impl Flow {
     /// Records that the rate is set by link `limit` from `now` on.
@@ -352,6 +359,9 @@ pub struct Network {
     binding: Vec<bool>,
     link_mark: Vec<u32>,
     flows: Vec<Flow>,
+    /// The fields of each flow slot the component walk reads, kept apart
+    /// from the rest so the walk touches little memory.
+    walk: Vec<Walk>,
     free: Vec<u32>,
     stats: Vec<LinkStats>,
     epoch: u32,
@@ -413,6 +423,7 @@ impl Network {
             binding: vec![false; n],
             link_mark: vec![0; n],
             flows: Vec::new(),
+            walk: Vec::new(),
             free: Vec::new(),
             stats: vec![LinkStats::default(); n],
             epoch: 0,
@@ -531,10 +542,8 @@ impl Network {
             route,
             live: true,
             on_links: false,
-            mark: 0,
             settled: 0,
             version: 0,
-            narrowest: NO_LINK,
             limit: NO_LINK,
             limit_since: now,
             top: NO_LINK,
@@ -544,10 +553,12 @@ impl Network {
             Some(i) => {
                 let version = self.flows[i as usize].version.wrapping_add(1);
                 self.flows[i as usize] = Flow { version, ..flow };
+                self.walk[i as usize] = Walk { mark: 0, narrowest: NO_LINK, route };
                 i
             }
             None => {
                 self.flows.push(flow);
+                self.walk.push(Walk { mark: 0, narrowest: NO_LINK, route });
                 (self.flows.len() - 1) as u32
             }
         };
@@ -589,7 +600,7 @@ impl Network {
                     narrowest = l;
                 }
             }
-            self.flows[id as usize].narrowest = narrowest as u32;
+            self.walk[id as usize].narrowest = narrowest as u32;
             self.scratch_bounds = added;
         }
         if !any {
@@ -607,9 +618,16 @@ impl Network {
     /// completion (ties by id), appended to `out`; finish each with
     /// [`Network::finish`].
     pub fn take_due(&mut self, now: SimTime, out: &mut Vec<TransferId>) {
+        // The deadline that fired is gone from the engine; settle sets the next.
+        if self.next_due.is_some_and(|t| t <= now.as_ns()) {
+            self.next_due = None;
+            self.next_stale = true;
+        }
         let first = out.len();
         let flows = &self.flows;
-        out.extend(self.live.iter().filter(|&&id| flows[id as usize].completion_ns <= now.as_ns()).map(|&id| TransferId(id)));
+        out.extend(
+            self.live.iter().filter(|&&id| flows[id as usize].completion_ns <= now.as_ns()).map(|&id| TransferId(id)),
+        );
         out[first..].sort_unstable_by_key(|t| (flows[t.0 as usize].completion_ns, t.0));
     }
 
@@ -706,7 +724,7 @@ impl Network {
             self.next_stale = false;
             let flows = &self.flows;
             let next = self.live.iter().map(|&id| flows[id as usize].completion_ns).min();
-            if next != self.next_due || sched.deadline_of(&NextCompletion).is_none() {
+            if next != self.next_due {
                 match next {
                     Some(t) => sched.set_deadline(NextCompletion, SimTime(t)),
                     None => {
@@ -741,7 +759,7 @@ impl Network {
         self.epoch = self.epoch.wrapping_add(2);
         if self.epoch < 2 {
             // Marks wrapped around: clear them so stale marks cannot match.
-            self.flows.iter_mut().for_each(|f| f.mark = 0);
+            self.walk.iter_mut().for_each(|w| w.mark = 0);
             self.link_mark.iter_mut().for_each(|m| *m = 0);
             self.epoch = 2;
         }
@@ -755,6 +773,7 @@ impl Network {
             binding,
             link_mark,
             flows,
+            walk,
             comp_flows,
             comp_links,
             new_rates,
@@ -772,9 +791,9 @@ impl Network {
         // Seed with the changed link's flows, then walk flows and the links
         // that can limit them (a flow's narrowest link always counts).
         for &g in &on_link[start] {
-            let f = &mut flows[g as usize];
-            if f.mark != epoch {
-                f.mark = epoch;
+            let w = &mut walk[g as usize];
+            if w.mark != epoch {
+                w.mark = epoch;
                 comp_flows.push(g);
             }
         }
@@ -782,8 +801,8 @@ impl Network {
         while head < comp_flows.len() {
             let g = comp_flows[head] as usize;
             head += 1;
-            let (r0, r1, narrowest) = (flows[g].route.0 as usize, flows[g].route.1 as usize, flows[g].narrowest);
-            for &LinkId(k) in &route_links[r0..r1] {
+            let Walk { route: (r0, r1), narrowest, .. } = walk[g];
+            for &LinkId(k) in &route_links[r0 as usize..r1 as usize] {
                 let ku = k as usize;
                 if link_mark[ku] == epoch || !(k == narrowest || binding[ku]) {
                     continue;
@@ -791,9 +810,9 @@ impl Network {
                 link_mark[ku] = epoch;
                 comp_links.push(k);
                 for &h in &on_link[ku] {
-                    let f = &mut flows[h as usize];
-                    if f.mark != epoch {
-                        f.mark = epoch;
+                    let w = &mut walk[h as usize];
+                    if w.mark != epoch {
+                        w.mark = epoch;
                         comp_flows.push(h);
                     }
                 }
@@ -820,14 +839,14 @@ impl Network {
             }
             let Some((share, l)) = best else { break };
             for &g in &on_link[l as usize] {
-                let f = &mut flows[g as usize];
-                if f.mark != epoch {
+                let w = &mut walk[g as usize];
+                if w.mark != epoch {
                     continue;
                 }
-                f.mark = fixed;
+                w.mark = fixed;
                 left -= 1;
                 new_rates.push((g, share, l));
-                for &LinkId(k) in &route_links[f.route.0 as usize..f.route.1 as usize] {
+                for &LinkId(k) in &route_links[w.route.0 as usize..w.route.1 as usize] {
                     if link_mark[k as usize] == epoch {
                         residual[k as usize] -= share;
                         unfixed[k as usize] -= 1;
@@ -1011,7 +1030,8 @@ mod tests {
         // Both capacities 1 with A, B, C: (0.5, 0.5, 0.5); 1000 bytes take 2000 ns.
         let mut net = Network::new(two_links(1, 1));
         let mut sched: Scheduler<(), NextCompletion> = Scheduler::new();
-        let ids: Vec<TransferId> = [(0, 1), (0, 2), (1, 2)].iter().map(|&(a, b)| net.start(&sched, a, b, 1000)).collect();
+        let ids: Vec<TransferId> =
+            [(0, 1), (0, 2), (1, 2)].iter().map(|&(a, b)| net.start(&sched, a, b, 1000)).collect();
         net.settle(&mut sched);
         for id in &ids {
             assert_eq!(net.rate_bytes_per_s(*id), Some(0.5e9));
@@ -1044,11 +1064,16 @@ mod tests {
     /// every link, nothing left out (Bertsekas & Gallager, sec. 6.5.2).
     fn reference_rates(topo: &Topology, flows: &[(TransferId, &[LinkId])]) -> Vec<f64> {
         let mut rate = vec![None; flows.len()];
-        let mut residual: Vec<f64> = (0..topo.link_count()).map(|l| topo.link(LinkId(l as u32)).bytes_per_s as f64).collect();
+        let mut residual: Vec<f64> =
+            (0..topo.link_count()).map(|l| topo.link(LinkId(l as u32)).bytes_per_s as f64).collect();
         loop {
             let mut best: Option<(f64, usize)> = None;
             for (l, r) in residual.iter().enumerate() {
-                let n = flows.iter().enumerate().filter(|(i, f)| rate[*i].is_none() && f.1.contains(&LinkId(l as u32))).count();
+                let n = flows
+                    .iter()
+                    .enumerate()
+                    .filter(|(i, f)| rate[*i].is_none() && f.1.contains(&LinkId(l as u32)))
+                    .count();
                 if n > 0 && best.is_none_or(|(s, _)| r / (n as f64) < s) {
                     best = Some((r / n as f64, l));
                 }
