@@ -110,6 +110,9 @@ pub struct Trace {
     pub link_stats: Vec<LinkStats>,
     /// Names of the topology's links.
     pub link_names: Vec<String>,
+    /// Bandwidth of each link in bytes per second (`LinkSpec::UNLIMITED` for
+    /// links that never limit).
+    pub link_bytes_per_s: Vec<u64>,
     /// Events the engine delivered.
     pub events: u64,
     /// Whether sends blocked the sender until delivered.
@@ -430,6 +433,8 @@ pub fn simulate_with(
     }
     let link_names =
         (0..topology.link_count()).map(|l| topology.link_name(baton_link::LinkId(l as u32)).to_string()).collect();
+    let link_bytes_per_s =
+        (0..topology.link_count()).map(|l| topology.link(baton_link::LinkId(l as u32)).bytes_per_s).collect();
     let mut exec = Exec {
         plan: &plan,
         costs,
@@ -475,6 +480,7 @@ pub fn simulate_with(
         transfers,
         link_stats,
         link_names,
+        link_bytes_per_s,
         events: sched.delivered(),
         blocking_sends: options.blocking_sends,
         op_index,

@@ -185,6 +185,8 @@ pub struct DeviceReport {
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct LinkReport {
     pub name: String,
+    /// Its bandwidth in bytes per second (`null` when unlimited).
+    pub bytes_per_s: Option<u64>,
     pub bytes: u64,
     /// Time during which at least one transfer was pushing bytes over it.
     pub busy_ms: f64,
@@ -357,9 +359,11 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
             .link_stats
             .iter()
             .zip(&trace.link_names)
-            .filter(|(st, _)| st.bytes > 0 || st.peak_concurrent > 0)
-            .map(|(st, name)| LinkReport {
+            .zip(&trace.link_bytes_per_s)
+            .filter(|((st, _), _)| st.bytes > 0 || st.peak_concurrent > 0)
+            .map(|((st, name), &bw)| LinkReport {
                 name: name.clone(),
+                bytes_per_s: (bw != baton_link::LinkSpec::UNLIMITED).then_some(bw),
                 bytes: st.bytes,
                 busy_ms: ms(st.busy_ns),
                 utilization: if step_ns == 0 { 0.0 } else { st.busy_ns as f64 / step_ns as f64 },
@@ -370,10 +374,12 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
     }
 }
 
-/// The link busy the largest share of the step (ties: the first).
+/// The link busy the largest share of the step (ties: the slower link, then
+/// the first).
 pub fn busiest_link(report: &Report) -> Option<&LinkReport> {
+    let speed = |l: &LinkReport| l.bytes_per_s.unwrap_or(u64::MAX);
     report.links.iter().fold(None, |best: Option<&LinkReport>, l| match best {
-        Some(b) if b.utilization >= l.utilization => Some(b),
+        Some(b) if b.utilization > l.utilization || (b.utilization == l.utilization && speed(b) <= speed(l)) => Some(b),
         _ => Some(l),
     })
 }
