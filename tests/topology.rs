@@ -146,3 +146,39 @@ fn charts_show_communication_lanes_unless_hidden() {
     assert!(a.contains("<title>receive: gradient of micro-batch"));
     assert!(!b.contains("<title>send:"));
 }
+
+mod unlimited {
+    use baton::executor::{simulate, StageCost};
+    use baton::link::{LinkSpec, Topology};
+    use baton::schedule::{build, ScheduleKind, Shape};
+    use proptest::prelude::*;
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 48, ..ProptestConfig::default() })]
+
+        /// Without contention (unlimited bandwidth on every link) each transfer
+        /// takes exactly its route's latency, whatever shares its links.
+        #[test]
+        fn transfers_cost_only_latency(
+            nodes in 1u32..4, dpn in 1u32..4, m in 1u32..6, seed in 0u64..1000,
+            dl_ns in 0u64..5_000, nl_ns in 0u64..20_000, bytes in 0u64..1_000_000_000,
+        ) {
+            let devices = nodes * dpn;
+            // Place the stages on the devices in a scrambled order.
+            let mut placement: Vec<u32> = (0..devices).collect();
+            placement.sort_by_key(|d| (*d as u64).wrapping_mul(seed | 1).rotate_left(7) ^ seed);
+            let p = devices;
+            let plan = build(ScheduleKind::OneFOneB, Shape::new(p, m, 1)).unwrap();
+            let costs = vec![StageCost { forward: baton::engine::SimDuration(1_000), backward: baton::engine::SimDuration(2_000), send_bytes: bytes }; p as usize];
+            let dl = LinkSpec { latency_ns: dl_ns, bytes_per_s: LinkSpec::UNLIMITED };
+            let nl = LinkSpec { latency_ns: nl_ns, bytes_per_s: LinkSpec::UNLIMITED };
+            let topo = Topology::two_level(nodes, dpn, dl, nl, 1, &placement);
+            let latency = |a: u32, b: u32| topo.route_latency(a, b).as_ns();
+            let trace = simulate(plan, &costs, topo.clone(), &(0..p).collect::<Vec<_>>()).unwrap();
+            for t in &trace.transfers {
+                prop_assert_eq!(t.end.as_ns() - t.start.as_ns(), latency(t.src, t.dst));
+                prop_assert_eq!(t.sent, t.start);
+            }
+        }
+    }
+}

@@ -263,6 +263,74 @@ struct Flow {
 
 const NO_LINK: u32 = u32::MAX;
 
+/// Completion times of flow slots in a tournament tree: the minimum is at the
+/// root, an update walks one leaf-to-root path, and the slots due by a time
+/// are found by descending only into subtrees whose minimum is due.
+#[derive(Clone, Debug, Default)]
+struct MinTree {
+    /// `tree[1]` is the root; leaves start at `tree[size]`.
+    tree: Vec<u64>,
+    size: usize,
+}
+
+impl MinTree {
+    fn ensure(&mut self, slots: usize) {
+        if slots <= self.size {
+            return;
+        }
+        let mut size = self.size.max(16);
+        while size < slots {
+            size *= 2;
+        }
+        let mut tree = vec![u64::MAX; 2 * size];
+        for i in 0..self.size {
+            tree[size + i] = self.tree[self.size + i];
+        }
+        for i in (1..size).rev() {
+            tree[i] = tree[2 * i].min(tree[2 * i + 1]);
+        }
+        self.tree = tree;
+        self.size = size;
+    }
+
+    fn set(&mut self, slot: usize, value: u64) {
+        self.ensure(slot + 1);
+        let mut i = self.size + slot;
+        self.tree[i] = value;
+        while i > 1 {
+            i /= 2;
+            let m = self.tree[2 * i].min(self.tree[2 * i + 1]);
+            if self.tree[i] == m {
+                break;
+            }
+            self.tree[i] = m;
+        }
+    }
+
+    fn min(&self) -> Option<u64> {
+        self.tree.get(1).copied().filter(|&m| m != u64::MAX)
+    }
+
+    /// Appends the slots whose value is at most `t`, in slot order.
+    fn due(&self, t: u64, out: &mut Vec<TransferId>) {
+        if self.size > 0 {
+            self.due_below(1, t, out);
+        }
+    }
+
+    fn due_below(&self, i: usize, t: u64, out: &mut Vec<TransferId>) {
+        if self.tree[i] > t {
+            return;
+        }
+        if i >= self.size {
+            out.push(TransferId((i - self.size) as u32));
+        } else {
+            self.due_below(2 * i, t, out);
+            self.due_below(2 * i + 1, t, out);
+        }
+    }
+}
+
 /// What the component walk and water-filling read of a flow.
 #[derive(Clone, Copy, Debug, Default)]
 struct Walk {
@@ -372,15 +440,13 @@ pub struct Network {
     /// A completion time may have changed since the last settle.
     next_stale: bool,
     next_due: Option<u64>,
-    /// Flows in flight, and each flow slot's position in that list.
-    live: Vec<u32>,
-    live_pos: Vec<u32>,
+    /// Completion time of each flow slot in flight (`u64::MAX` otherwise).
+    due: MinTree,
     // Scratch space reused between calls.
     comp_flows: Vec<u32>,
     comp_links: Vec<u32>,
     residual: Vec<f64>,
     unfixed: Vec<u32>,
-    new_rates: Vec<(u32, f64, u32)>,
     scratch_bounds: Vec<(usize, f64, usize)>,
     /// Settle generation, and the generation in which each link's rates were
     /// last recomputed (a link is recomputed at most once per settle).
@@ -432,13 +498,11 @@ impl Network {
             dirty_mark: vec![false; n],
             next_stale: false,
             next_due: None,
-            live: Vec::new(),
-            live_pos: Vec::new(),
+            due: MinTree::default(),
             comp_flows: Vec::new(),
             comp_links: Vec::new(),
             residual: vec![0.0; n],
             unfixed: vec![0; n],
-            new_rates: Vec::new(),
             scratch_bounds: Vec::new(),
             settle_gen: 0,
             link_done: vec![0; n],
@@ -564,11 +628,6 @@ impl Network {
         };
         self.in_flight += 1;
         self.next_stale = true;
-        if self.live_pos.len() <= id as usize {
-            self.live_pos.resize(id as usize + 1, 0);
-        }
-        self.live_pos[id as usize] = self.live.len() as u32;
-        self.live.push(id);
         // Every link crossed counts as busy; only finite ones share bandwidth.
         for r in route.0..route.1 {
             let l = self.topo.route_links[r as usize].0 as usize;
@@ -580,7 +639,19 @@ impl Network {
             st.peak_concurrent = st.peak_concurrent.max(st.active);
         }
         let mut any = false;
-        if bytes > 0 {
+        let single = route.1 - route.0 == 1;
+        if bytes > 0 && single {
+            // One link: nothing else on the route bounds the transfer.
+            let l = self.topo.route_links[route.0 as usize].0 as usize;
+            if self.cap[l].is_finite() {
+                any = true;
+                self.on_link[l].push(id);
+                self.bound_inf[l] += 1;
+                self.binding[l] = true;
+                self.mark_dirty(l);
+                self.walk[id as usize].narrowest = l as u32;
+            }
+        } else if bytes > 0 {
             let mut added = std::mem::take(&mut self.scratch_bounds);
             added.clear();
             self.each_bound(route, |l, b, n| added.push((l, b, n)));
@@ -608,6 +679,7 @@ impl Network {
             let f = &mut self.flows[id as usize];
             f.rate = f64::INFINITY;
             f.completion_ns = now;
+            self.due.set(id as usize, now);
             return TransferId(id);
         }
         self.flows[id as usize].on_links = true;
@@ -624,10 +696,8 @@ impl Network {
             self.next_stale = true;
         }
         let first = out.len();
+        self.due.due(now.as_ns(), out);
         let flows = &self.flows;
-        out.extend(
-            self.live.iter().filter(|&&id| flows[id as usize].completion_ns <= now.as_ns()).map(|&id| TransferId(id)),
-        );
         out[first..].sort_unstable_by_key(|t| (flows[t.0 as usize].completion_ns, t.0));
     }
 
@@ -649,7 +719,15 @@ impl Network {
                 st.busy_ns += now - st.busy_since;
             }
         }
-        if on_links {
+        if on_links && route.1 - route.0 == 1 {
+            let l = self.topo.route_links[route.0 as usize].0 as usize;
+            if let Some(pos) = self.on_link[l].iter().position(|&x| x == id.0) {
+                self.on_link[l].swap_remove(pos);
+            }
+            self.bound_inf[l] -= 1;
+            self.update_binding(l);
+            self.mark_dirty(l);
+        } else if on_links {
             let mut removed = std::mem::take(&mut self.scratch_bounds);
             removed.clear();
             self.each_bound(route, |l, b, n| removed.push((l, b, n)));
@@ -673,11 +751,7 @@ impl Network {
             self.scratch_bounds = removed;
         }
         self.note_limit(i, NO_LINK, now);
-        let pos = self.live_pos[i] as usize;
-        self.live.swap_remove(pos);
-        if let Some(&moved) = self.live.get(pos) {
-            self.live_pos[moved as usize] = pos as u32;
-        }
+        self.due.set(i, u64::MAX);
         let f = &mut self.flows[i];
         f.live = false;
         f.version = f.version.wrapping_add(1);
@@ -722,8 +796,7 @@ impl Network {
         }
         if self.next_stale {
             self.next_stale = false;
-            let flows = &self.flows;
-            let next = self.live.iter().map(|&id| flows[id as usize].completion_ns).min();
+            let next = self.due.min();
             if next != self.next_due {
                 match next {
                     Some(t) => sched.set_deadline(NextCompletion, SimTime(t)),
@@ -739,6 +812,7 @@ impl Network {
     /// Sets a flow's new rate, bringing its progress up to now at the old one.
     fn apply_rate(&mut self, now: u64, g: u32, rate: f64, limit: u32) {
         if self.flows[g as usize].set_rate(now, rate, limit) {
+            self.due.set(g as usize, self.flows[g as usize].completion_ns);
             self.next_stale = true;
         }
     }
@@ -776,17 +850,16 @@ impl Network {
             walk,
             comp_flows,
             comp_links,
-            new_rates,
             residual,
             unfixed,
             link_done,
             next_stale,
+            due,
             ..
         } = self;
         let route_links = &topo.route_links[..];
         comp_flows.clear();
         comp_links.clear();
-        new_rates.clear();
 
         // Seed with the changed link's flows, then walk flows and the links
         // that can limit them (a flow's narrowest link always counts).
@@ -804,7 +877,7 @@ impl Network {
             let Walk { route: (r0, r1), narrowest, .. } = walk[g];
             for &LinkId(k) in &route_links[r0 as usize..r1 as usize] {
                 let ku = k as usize;
-                if link_mark[ku] == epoch || !(k == narrowest || binding[ku]) {
+                if !(binding[ku] || k == narrowest) || link_mark[ku] == epoch {
                     continue;
                 }
                 link_mark[ku] = epoch;
@@ -845,21 +918,19 @@ impl Network {
                 }
                 w.mark = fixed;
                 left -= 1;
-                new_rates.push((g, share, l));
                 for &LinkId(k) in &route_links[w.route.0 as usize..w.route.1 as usize] {
                     if link_mark[k as usize] == epoch {
                         residual[k as usize] -= share;
                         unfixed[k as usize] -= 1;
                     }
                 }
+                let f = &mut flows[g as usize];
+                if f.set_rate(now, share, l) {
+                    due.set(g as usize, f.completion_ns);
+                    *next_stale = true;
+                }
+                f.settled = gen;
             }
-        }
-        for &(g, rate, l) in new_rates.iter() {
-            let f = &mut flows[g as usize];
-            if f.set_rate(now, rate, l) {
-                *next_stale = true;
-            }
-            f.settled = gen;
         }
         // The component's links are final for this settle.
         for &l in comp_links.iter() {
