@@ -361,18 +361,19 @@ impl Flow {
     /// Sets a new rate, bringing progress up to now at the old one; returns
     /// whether the completion time changed (and the version with it).
     fn set_rate(&mut self, now: u64, rate: f64, limit: u32) -> bool {
+        self.note_limit(limit, now);
+        if self.rate == rate {
+            // Same rate: progress stays linear from the last checkpoint.
+            return false;
+        }
         if self.rate.is_finite() && self.rate > 0.0 {
             self.remaining = (self.remaining - self.rate * (now - self.last_ns) as f64).max(0.0);
         }
         self.last_ns = now;
-        let changed = self.rate != rate;
-        if changed {
-            self.rate = rate;
-            self.completion_ns = now.saturating_add(ceil_ns(self.remaining / rate));
-            self.version = self.version.wrapping_add(1);
-        }
-        self.note_limit(limit, now);
-        changed
+        self.rate = rate;
+        self.completion_ns = now.saturating_add(ceil_ns(self.remaining / rate));
+        self.version = self.version.wrapping_add(1);
+        true
     }
 }
 
@@ -666,7 +667,11 @@ impl Network {
                     self.bound_inf[l] += 1;
                 }
                 self.update_binding(l);
-                self.mark_dirty(l);
+                // A link that cannot limit anyone changes no rate; the new
+                // transfer's narrowest link always can, so it gets a rate.
+                if self.binding[l] {
+                    self.mark_dirty(l);
+                }
                 if narrowest == usize::MAX || self.cap[l] < self.cap[narrowest] {
                     narrowest = l;
                 }
@@ -745,8 +750,12 @@ impl Network {
                 } else {
                     self.bound_inf[l] -= 1;
                 }
+                // Only a link that could limit its transfers before frees
+                // bandwidth that changes rates.
+                if self.binding[l] {
+                    self.mark_dirty(l);
+                }
                 self.update_binding(l);
-                self.mark_dirty(l);
             }
             self.scratch_bounds = removed;
         }
