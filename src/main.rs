@@ -307,17 +307,13 @@ fn run(args: RunArgs) -> Result<(), Failure> {
         let options = baton::report::gantt::ChartOptions { comm_lanes: !args.no_comm_lanes };
         let svg =
             baton::report::gantt::render_with(&outcome.trace, report, options).context("cannot draw the chart")?;
-        let mut p = prepare(path)?;
-        p.write_all(svg.as_bytes())?;
-        pending.push(p);
+        stage(path, svg.as_bytes(), &mut pending)?;
     }
     if let Some(path) = &args.memory_svg {
         let memory = baton::memory_inputs(&scenario);
         let svg = baton::report::memory_chart::render(&outcome.trace, report, &memory)
             .context("cannot draw the memory chart")?;
-        let mut p = prepare(path)?;
-        p.write_all(svg.as_bytes())?;
-        pending.push(p);
+        stage(path, svg.as_bytes(), &mut pending)?;
     }
     if let Some(path) = &args.layers_csv {
         let mut p = prepare(path)?;
@@ -343,9 +339,7 @@ fn run(args: RunArgs) -> Result<(), Failure> {
         if is_stdout(path) {
             json_to_stdout = true;
         } else {
-            let mut p = prepare(path)?;
-            p.write_all(text.as_bytes())?;
-            pending.push(p);
+            stage(path, text.as_bytes(), &mut pending)?;
         }
     }
     for p in pending {
@@ -559,9 +553,7 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
         if is_stdout(path) {
             json_to_stdout = true;
         } else {
-            let mut f = prepare(path)?;
-            f.write_all(json_text.as_bytes())?;
-            pending.push(f);
+            stage(path, json_text.as_bytes(), &mut pending)?;
         }
     }
     if let Some(path) = &args.apply {
@@ -595,9 +587,7 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
                 list(&plan.best.split)
             )));
         }
-        let mut f = prepare(path)?;
-        f.write_all(new_text.as_bytes())?;
-        pending.push(f);
+        stage(path, new_text.as_bytes(), &mut pending)?;
     }
     for f in pending {
         f.commit()?;
@@ -639,10 +629,16 @@ fn write_text(path: &Path, text: &str, pending: &mut Vec<Pending>) -> Result<boo
     if is_stdout(path) {
         return Ok(true);
     }
-    let mut f = prepare(path)?;
-    f.write_all(text.as_bytes())?;
-    pending.push(f);
+    stage(path, text.as_bytes(), pending)?;
     Ok(false)
+}
+
+/// Prepares `bytes` for `path`; they replace it when the pending files are committed.
+fn stage(path: &Path, bytes: &[u8], pending: &mut Vec<Pending>) -> Result<()> {
+    let mut f = prepare(path)?;
+    f.write_all(bytes)?;
+    pending.push(f);
+    Ok(())
 }
 
 fn sweep(args: SweepArgs) -> Result<(), Failure> {
@@ -704,9 +700,7 @@ fn sweep(args: SweepArgs) -> Result<(), Failure> {
     if let Some(path) = &args.svg {
         let title = doc.scenario(&args.sets).map(|s| s.title).unwrap_or_default();
         let svg = sw::chart(&title, &grid, &points, by).map_err(|e| Failure::Other(anyhow::anyhow!(e)))?;
-        let mut f = prepare(path)?;
-        f.write_all(svg.as_bytes())?;
-        pending.push(f);
+        stage(path, svg.as_bytes(), &mut pending)?;
     }
     let json = sw::to_json(&keys, &points);
     let json_to_stdout = match &args.json {
@@ -819,9 +813,7 @@ fn compare(args: CompareArgs) -> Result<(), Failure> {
         let options = baton::report::gantt::ChartOptions { comm_lanes: !args.no_comm_lanes };
         let svg =
             baton::report::gantt::render_runs_with(&chart_runs, &title, options).context("cannot draw the chart")?;
-        let mut f = prepare(path)?;
-        f.write_all(svg.as_bytes())?;
-        pending.push(f);
+        stage(path, svg.as_bytes(), &mut pending)?;
     }
     let reports: Vec<&baton::report::Report> = outcomes.iter().map(|o| &o.report).collect();
     let json = format!("{}\n", serde_json::to_string_pretty(&reports).context("cannot encode the reports")?);
