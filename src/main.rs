@@ -483,7 +483,8 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
     let gain_ns = proxy.step_time_ns.saturating_sub(best.step_time_ns);
     let _ = writeln!(
         out,
-        "exact proxy split {} (bottleneck {}); local search on the simulated step: {} move(s) in {} simulations, {} ({:.2}%) faster",
+        "{} split {} (bottleneck {}); local search on the simulated step: {} move(s) in {} simulations, {} ({:.2}%) faster",
+        if plan.proxy.exact { "exact" } else { "best-found (search budget reached)" },
         list(&plan.proxy.split),
         format_ns(plan.proxy.device_ns.iter().copied().max().unwrap_or(0)),
         plan.moves,
@@ -531,6 +532,7 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
         "baseline_bubble_fraction": base.bubble_fraction,
         "baseline_fits": base.fits,
         "proxy_split": plan.proxy.split,
+        "proxy_exact": plan.proxy.exact,
         "proxy_bottleneck_ms": ms(plan.proxy.device_ns.iter().copied().max().unwrap_or(0)),
         "proxy_step_time_ms": proxy.step_time_ms,
         "local_search_moves": plan.moves,

@@ -253,3 +253,17 @@ fn split_memory_accounting_equals_the_simulated_peak() {
         assert_eq!(eval.device_bytes, simulated, "{schedule}");
     }
 }
+
+#[test]
+fn interleaved_split_searches_devices_exactly() {
+    // With two chunks per device the device time is a sum of separated
+    // pieces; the branch-and-bound must finish (exact) on the demo and the
+    // proposed split must cover the layers.
+    let out = baton(&["split", "scenarios/interleaved.yaml", "--json", "-"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let v = json(&out);
+    assert_eq!(v["proxy_exact"], true);
+    let split: Vec<u32> = serde_json::from_value(v["split"].clone()).unwrap();
+    assert_eq!((split.len(), split.iter().sum::<u32>()), (8, 16));
+    assert!(v["step_time_ms"].as_f64().unwrap() <= v["proxy_step_time_ms"].as_f64().unwrap());
+}
