@@ -249,10 +249,6 @@ struct Flow {
     live: bool,
     /// On finite links, sharing bandwidth (not instant).
     on_links: bool,
-    /// The settle in which its rate was last recomputed.
-    settled: u32,
-    /// Bumped whenever `completion_ns` changes or the flow ends.
-    version: u32,
     /// The link that set the current rate, and since when.
     limit: u32,
     limit_since: u64,
@@ -336,6 +332,8 @@ impl MinTree {
 struct Walk {
     /// Component-walk marks (epoch: in the component; epoch + 1: fixed).
     mark: u32,
+    /// The settle in which its rate was last recomputed.
+    settled: u32,
     /// Its narrowest finite link (always part of its water-filling).
     narrowest: u32,
     route: (u32, u32),
@@ -359,7 +357,7 @@ impl Flow {
     }
 
     /// Sets a new rate, bringing progress up to now at the old one; returns
-    /// whether the completion time changed (and the version with it).
+    /// whether the completion time changed.
     fn set_rate(&mut self, now: u64, rate: f64, limit: u32) -> bool {
         self.note_limit(limit, now);
         if self.rate == rate {
@@ -372,7 +370,6 @@ impl Flow {
         self.last_ns = now;
         self.rate = rate;
         self.completion_ns = now.saturating_add(ceil_ns(self.remaining / rate));
-        self.version = self.version.wrapping_add(1);
         true
     }
 }
@@ -607,8 +604,6 @@ impl Network {
             route,
             live: true,
             on_links: false,
-            settled: 0,
-            version: 0,
             limit: NO_LINK,
             limit_since: now,
             top: NO_LINK,
@@ -616,14 +611,13 @@ impl Network {
         };
         let id = match self.free.pop() {
             Some(i) => {
-                let version = self.flows[i as usize].version.wrapping_add(1);
-                self.flows[i as usize] = Flow { version, ..flow };
-                self.walk[i as usize] = Walk { mark: 0, narrowest: NO_LINK, route };
+                self.flows[i as usize] = flow;
+                self.walk[i as usize] = Walk { mark: 0, settled: 0, narrowest: NO_LINK, route };
                 i
             }
             None => {
                 self.flows.push(flow);
-                self.walk.push(Walk { mark: 0, narrowest: NO_LINK, route });
+                self.walk.push(Walk { mark: 0, settled: 0, narrowest: NO_LINK, route });
                 (self.flows.len() - 1) as u32
             }
         };
@@ -763,7 +757,6 @@ impl Network {
         self.due.set(i, u64::MAX);
         let f = &mut self.flows[i];
         f.live = false;
-        f.version = f.version.wrapping_add(1);
         let bottleneck = (f.top != NO_LINK).then_some(LinkId(f.top));
         self.free.push(id.0);
         self.in_flight -= 1;
@@ -784,7 +777,7 @@ impl Network {
         self.settle_gen = self.settle_gen.wrapping_add(1);
         if self.settle_gen == 0 {
             self.link_done.iter_mut().for_each(|g| *g = 0);
-            self.flows.iter_mut().for_each(|f| f.settled = 0);
+            self.walk.iter_mut().for_each(|w| w.settled = 0);
             self.settle_gen = 1;
         }
         while let Some(l) = self.dirty.pop() {
@@ -793,7 +786,7 @@ impl Network {
             let gen = self.settle_gen;
             if self.on_link[l].is_empty()
                 || self.link_done[l] == gen
-                || self.on_link[l].iter().all(|&f| self.flows[f as usize].settled == gen)
+                || self.on_link[l].iter().all(|&f| self.walk[f as usize].settled == gen)
             {
                 continue;
             }
@@ -938,7 +931,7 @@ impl Network {
                     due.set(g as usize, f.completion_ns);
                     *next_stale = true;
                 }
-                f.settled = gen;
+                walk[g as usize].settled = gen;
             }
         }
         // The component's links are final for this settle.
