@@ -331,20 +331,10 @@ fn run(args: RunArgs) -> Result<(), Failure> {
         pending.push(p);
     }
     let json = match &args.json {
-        Some(_) => Some(baton::report::to_json(report).context("cannot encode the report")?),
-        None => None,
+        Some(_) => baton::report::to_json(report).context("cannot encode the report")?,
+        None => String::new(),
     };
-    let mut json_to_stdout = false;
-    if let (Some(path), Some(text)) = (&args.json, &json) {
-        if is_stdout(path) {
-            json_to_stdout = true;
-        } else {
-            stage(path, text.as_bytes(), &mut pending)?;
-        }
-    }
-    for p in pending {
-        p.commit()?;
-    }
+    let json_to_stdout = commit_all(pending, args.json.as_deref(), &json)?;
 
     let mut summary = String::new();
     if args.show_layers {
@@ -355,7 +345,7 @@ fn run(args: RunArgs) -> Result<(), Failure> {
     if json_to_stdout {
         eprint!("{summary}");
         let mut out = std::io::stdout().lock();
-        out.write_all(json.unwrap_or_default().as_bytes()).context("cannot write to standard output")?;
+        out.write_all(json.as_bytes()).context("cannot write to standard output")?;
     } else {
         let mut out = std::io::stdout().lock();
         out.write_all(summary.as_bytes()).context("cannot write to standard output")?;
@@ -550,14 +540,6 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
     let json_text = format!("{}\n", serde_json::to_string_pretty(&json).context("cannot encode the result")?);
 
     let mut pending = Vec::new();
-    let mut json_to_stdout = false;
-    if let Some(path) = &args.json {
-        if is_stdout(path) {
-            json_to_stdout = true;
-        } else {
-            stage(path, json_text.as_bytes(), &mut pending)?;
-        }
-    }
     if let Some(path) = &args.apply {
         if !fits {
             return Err(Failure::OverCapacity(format!("no split fits in memory; {} not written", path.display())));
@@ -591,9 +573,7 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
         }
         stage(path, new_text.as_bytes(), &mut pending)?;
     }
-    for f in pending {
-        f.commit()?;
-    }
+    let json_to_stdout = commit_all(pending, args.json.as_deref(), &json_text)?;
     if json_to_stdout {
         eprint!("{out}");
         std::io::stdout().lock().write_all(json_text.as_bytes()).context("cannot write to standard output")?;
@@ -633,6 +613,19 @@ fn write_text(path: &Path, text: &str, pending: &mut Vec<Pending>) -> Result<boo
     }
     stage(path, text.as_bytes(), pending)?;
     Ok(false)
+}
+
+/// Stages the JSON (unless it goes to standard output) and replaces every
+/// destination; returns whether the JSON is for standard output.
+fn commit_all(mut pending: Vec<Pending>, json_path: Option<&Path>, json: &str) -> Result<bool, Failure> {
+    let to_stdout = match json_path {
+        Some(path) => write_text(path, json, &mut pending)?,
+        None => false,
+    };
+    for f in pending {
+        f.commit()?;
+    }
+    Ok(to_stdout)
 }
 
 /// Prepares `bytes` for `path`; they replace it when the pending files are committed.
@@ -692,12 +685,7 @@ fn sweep(args: SweepArgs) -> Result<(), Failure> {
 
     let mut pending = Vec::new();
     if let Some(path) = &args.csv {
-        let mut f = prepare(path)?;
-        let mut buf = std::io::BufWriter::new(f.tmp.as_file_mut());
-        sw::write_csv(&keys, &points, &mut buf).with_context(|| format!("cannot write {}", path.display()))?;
-        buf.flush().with_context(|| format!("cannot write {}", path.display()))?;
-        drop(buf);
-        pending.push(f);
+        stage_sweep_csv(path, &keys, &points, &mut pending)?;
     }
     if let Some(path) = &args.svg {
         let title = doc.scenario(&args.sets).map(|s| s.title).unwrap_or_default();
@@ -705,13 +693,7 @@ fn sweep(args: SweepArgs) -> Result<(), Failure> {
         stage(path, svg.as_bytes(), &mut pending)?;
     }
     let json = sw::to_json(&keys, &points);
-    let json_to_stdout = match &args.json {
-        Some(path) => write_text(path, &json, &mut pending)?,
-        None => false,
-    };
-    for f in pending {
-        f.commit()?;
-    }
+    let json_to_stdout = commit_all(pending, args.json.as_deref(), &json)?;
     let mut text = String::new();
     if let Some((i, n)) = shard {
         text.push_str(&format!("shard {i}/{n}: {} of the grid's {} points\n", indices.len(), grid.len()));
@@ -743,6 +725,22 @@ fn emit(text: &str, json_to_stdout: bool, json: &str, outputs: &[(&str, &Option<
     Ok(())
 }
 
+/// Stages a sweep's ranked points as CSV for `path`.
+fn stage_sweep_csv(
+    path: &Path,
+    keys: &[String],
+    points: &[baton::sweep::Point],
+    pending: &mut Vec<Pending>,
+) -> Result<()> {
+    let mut f = prepare(path)?;
+    let mut buf = std::io::BufWriter::new(f.tmp.as_file_mut());
+    baton::sweep::write_csv(keys, points, &mut buf).with_context(|| format!("cannot write {}", path.display()))?;
+    buf.flush().with_context(|| format!("cannot write {}", path.display()))?;
+    drop(buf);
+    pending.push(f);
+    Ok(())
+}
+
 fn merge(args: MergeArgs) -> Result<(), Failure> {
     use baton::sweep as sw;
     let by: sw::RankBy = args.rank_by.parse().map_err(input)?;
@@ -755,19 +753,10 @@ fn merge(args: MergeArgs) -> Result<(), Failure> {
     let (keys, points) = sw::merge(&parts, by).map_err(input)?;
     let mut pending = Vec::new();
     if let Some(path) = &args.csv {
-        let mut f = prepare(path)?;
-        sw::write_csv(&keys, &points, f.tmp.as_file_mut())
-            .with_context(|| format!("cannot write {}", path.display()))?;
-        pending.push(f);
+        stage_sweep_csv(path, &keys, &points, &mut pending)?;
     }
     let json = sw::to_json(&keys, &points);
-    let json_to_stdout = match &args.json {
-        Some(path) => write_text(path, &json, &mut pending)?,
-        None => false,
-    };
-    for f in pending {
-        f.commit()?;
-    }
+    let json_to_stdout = commit_all(pending, args.json.as_deref(), &json)?;
     let text = sw::table(&keys, &points, by, args.top, None, &[]);
     emit(&text, json_to_stdout, &json, &[("CSV", &args.csv), ("JSON", &args.json)])
 }
@@ -819,12 +808,6 @@ fn compare(args: CompareArgs) -> Result<(), Failure> {
     }
     let reports: Vec<&baton::report::Report> = outcomes.iter().map(|o| &o.report).collect();
     let json = format!("{}\n", serde_json::to_string_pretty(&reports).context("cannot encode the reports")?);
-    let json_to_stdout = match &args.json {
-        Some(path) => write_text(path, &json, &mut pending)?,
-        None => false,
-    };
-    for f in pending {
-        f.commit()?;
-    }
+    let json_to_stdout = commit_all(pending, args.json.as_deref(), &json)?;
     emit(&text, json_to_stdout, &json, &[("chart", &args.svg), ("JSON", &args.json)])
 }
