@@ -9,12 +9,15 @@
 //! `b` bytes pushes its bytes at the rate it is granted, and is delivered the
 //! route's total latency after its last byte leaves. Rates are max-min fair
 //! (water-filling) over all transfers in flight on every directed link they
-//! cross; on a single link that is an equal share. Whenever a transfer starts
-//! or ends, only the transfers connected to it through shared links are
-//! re-rated, and their completion deadlines moved in the engine's movable
-//! queue. The cost of one start or end therefore grows with the number of
-//! transfers it shares links with (and their links), not with the size of the
-//! topology.
+//! cross; on a single link that is an equal share. Starts and ends are
+//! recorded as they happen; [`Network::settle`], called once per simulated
+//! instant, re-rates only the transfers connected to a changed link through
+//! links that can limit them, and moves the network's one deadline in the
+//! engine's movable queue ([`NextCompletion`], the earliest last byte, kept in
+//! a tournament tree of completion times). The cost of a settle therefore
+//! grows with the number of transfers in flight that share links with the
+//! change (and their links), not with the size of the topology. Links with
+//! unlimited bandwidth ([`LinkSpec::UNLIMITED`]) only add latency.
 //!
 //! Bytes are tracked as `f64` and a completion deadline is the exact finishing
 //! time rounded up to the next whole nanosecond (with a tolerance of 1e-6 ns so
