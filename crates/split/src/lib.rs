@@ -382,7 +382,7 @@ pub fn solve(problem: &Problem) -> Result<Outcome, SplitError> {
     Ok(Outcome::Fits(proxy))
 }
 
-/// Most search nodes [`Ctx::best_by_device`] visits before it settles for the
+/// Most search nodes the device-level branch-and-bound visits before it settles for the
 /// best split found so far.
 pub const DEVICE_SEARCH_BUDGET: u64 = 2_000_000;
 
