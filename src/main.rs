@@ -65,7 +65,7 @@ enum Command {
 
 #[derive(Args)]
 struct SweepArgs {
-    /// The scenario file (YAML), parsed once for the whole sweep.
+    /// The scenario file (YAML), parsed once for the whole sweep, e.g. scenarios/choose-m.yaml.
     scenario: PathBuf,
     /// A key and the values it takes, e.g. --vary pipeline.micro_batches=8,16,32
     /// or --vary pipeline.micro_batches=4..64*2; repeatable (the grid is every combination).
@@ -101,7 +101,7 @@ struct SweepArgs {
 
 #[derive(Args)]
 struct MergeArgs {
-    /// CSV files written by `baton sweep --shard I/N --csv PATH`.
+    /// CSV files written by `baton sweep --shard I/N --csv PATH`, e.g. part1.csv part2.csv.
     #[arg(required = true)]
     parts: Vec<PathBuf>,
     /// Write the combined, ranked CSV, e.g. --csv sweep.csv.
