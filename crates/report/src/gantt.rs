@@ -348,27 +348,21 @@ pub fn render_runs_with(runs: &[Run<'_>], title: &str, options: ChartOptions) ->
                 );
                 let half = comm_h / 2.0;
                 let send_y = lane_y(first_lane[r] + t.src as usize) + lane_h + 2.0;
-                let (x0, x1) = (x_of(t.start.as_ns()), x_of(t.sent.as_ns()));
-                let _ = writeln!(
-                    body,
-                    "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}send: {what}</title></rect>",
-                    x0,
-                    send_y,
-                    (x1 - x0).max(0.5),
-                    half,
-                    hex(SEND)
-                );
                 let recv_y = lane_y(first_lane[r] + t.dst as usize) + lane_h + 2.0 + half;
-                let (x0, x1) = (x_of(t.start.as_ns()), x_of(t.end.as_ns()));
-                let _ = writeln!(
-                    body,
-                    "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}receive: {what}</title></rect>",
-                    x0,
-                    recv_y,
-                    (x1 - x0).max(0.5),
-                    half,
-                    hex(RECEIVE)
-                );
+                // Sends: bytes leaving the sender; receives: data in flight to the receiver.
+                let marks = [("send", send_y, t.sent, SEND), ("receive", recv_y, t.end, RECEIVE)];
+                for (side, y, until, colour) in marks {
+                    let (x0, x1) = (x_of(t.start.as_ns()), x_of(until.as_ns()));
+                    let _ = writeln!(
+                        body,
+                        "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{side}: {what}</title></rect>",
+                        x0,
+                        y,
+                        (x1 - x0).max(0.5),
+                        half,
+                        hex(colour)
+                    );
+                }
             }
         }
         body.push_str("</g>\n");
