@@ -113,6 +113,24 @@ pub fn layer_table(s: &Scenario) -> String {
     }
     let params: u64 = s.layers.iter().map(|l| l.params).sum();
     let _ = writeln!(out, "total parameters {params}");
+    // Tied weights: which devices hold a copy.
+    let p = s.pipeline.stages as usize;
+    let mut first = 0usize;
+    for (k, &n) in s.pipeline.split.iter().enumerate() {
+        for l in &s.layers[first..first + n as usize] {
+            if l.tied_params > 0 && k % p != 0 {
+                let _ = writeln!(
+                    out,
+                    "{} shares {} parameters with {} (tied weights); device {} keeps its own copy, counted in its model state",
+                    l.name,
+                    l.tied_params,
+                    s.layers[0].name,
+                    k % p
+                );
+            }
+        }
+        first += n as usize;
+    }
     out
 }
 

@@ -470,18 +470,40 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
         imbalance
     );
     let _ = writeln!(out);
-    let gain_ns = proxy.step_time_ns.saturating_sub(best.step_time_ns);
+    let start_report = match plan.start {
+        baton::planner::Start::Proxy => proxy,
+        baton::planner::Start::Scenario => base,
+    };
+    let gain_ns = start_report.step_time_ns.saturating_sub(best.step_time_ns);
+    let proxy_name = if plan.proxy.exact { "exact" } else { "best-found (search budget reached)" };
     let _ = writeln!(
         out,
-        "{} split {} (bottleneck {}); local search on the simulated step: {} move(s) in {} simulations, {} ({:.2}%) faster",
-        if plan.proxy.exact { "exact" } else { "best-found (search budget reached)" },
+        "{proxy_name} split {} (bottleneck {}): simulated step {}",
         list(&plan.proxy.split),
         format_ns(plan.proxy.device_ns.iter().copied().max().unwrap_or(0)),
-        plan.moves,
-        plan.simulations,
-        format_ns(gain_ns),
-        if proxy.step_time_ns > 0 { gain_ns as f64 * 100.0 / proxy.step_time_ns as f64 } else { 0.0 }
+        format_ns(proxy.step_time_ns),
     );
+    if plan.no_fit.is_none() {
+        let searched_baseline = base.fits && plan.baseline.split != plan.proxy.split;
+        let _ = writeln!(
+            out,
+            "local search on the simulated step from the {}{}: {} move(s) from the {} split, {} ({:.2}%) faster than it; {} simulations",
+            if plan.proxy.exact { "exact split" } else { "proxy's split" },
+            if searched_baseline { " and from the scenario's split" } else { "" },
+            plan.moves,
+            if plan.start == baton::planner::Start::Scenario { "scenario's" } else { proxy_name.split(' ').next().unwrap_or("exact") },
+            format_ns(gain_ns),
+            if start_report.step_time_ns > 0 { gain_ns as f64 * 100.0 / start_report.step_time_ns as f64 } else { 0.0 },
+            plan.simulations,
+        );
+        if plan.baseline_is_best {
+            let _ = writeln!(
+                out,
+                "the scenario's split {} is already the best found: no change proposed",
+                list(&plan.baseline.split)
+            );
+        }
+    }
     let _ = writeln!(out);
     let fits_text = |r: &baton::report::Report| {
         if r.fits {
@@ -498,9 +520,10 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
         ("samples/s", format!("{:.2}", base.samples_per_s), format!("{:.2}", best.samples_per_s)),
         ("fits memory", fits_text(base), fits_text(best)),
     ];
-    let _ = writeln!(out, "{:<14} {:<28} {:<28}", "", "scenario split", label);
+    let width = rows.iter().map(|r| r.1.len() + 2).max().unwrap_or(0).max(28);
+    let _ = writeln!(out, "{:<14} {:<width$} {}", "", "scenario split", label);
     for (name, a, b) in rows {
-        let _ = writeln!(out, "{name:<14} {a:<28} {b:<28}");
+        let _ = writeln!(out, "{name:<14} {a:<width$} {b}");
     }
 
     let ms = |ns: u64| ns as f64 / 1e6;
@@ -525,7 +548,10 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
         "proxy_exact": plan.proxy.exact,
         "proxy_bottleneck_ms": ms(plan.proxy.device_ns.iter().copied().max().unwrap_or(0)),
         "proxy_step_time_ms": proxy.step_time_ms,
+        "local_search_start": plan.start.name(),
         "local_search_moves": plan.moves,
+        "local_search_simulations": plan.simulations,
+        "baseline_is_best": plan.baseline_is_best,
         "local_search_gain_ms": ms(gain_ns),
         "shortfall_bytes": plan.no_fit.map(|x| x.0),
         "short_device": plan.no_fit.map(|x| x.1),

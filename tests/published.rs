@@ -131,3 +131,25 @@ fn link_latency_and_bandwidth_worked_by_hand() {
         out.trace.ops[0].iter().map(|r| (r.start.as_ns() / 1_000, r.end.as_ns() / 1_000)).collect();
     assert_eq!(d0, vec![(0, 100), (100, 200), (8_020, 8_220), (8_320, 8_520)]);
 }
+
+#[test]
+fn gradient_carries_the_size_of_the_boundary_it_crosses() {
+    // Worked by hand (no published source). Two layers on two devices,
+    // fill-drain, m = 1: `a` (F 100 us, B 200 us, activation 1 MB) on device 0,
+    // `b` (same times, activation 100 MB) on device 1; link 10 us, 1 GB/s
+    // (1,000 B/us). The only boundary is after `a`, so both the activation
+    // and the gradient that comes back carry 1 MB; `b`'s 100 MB never crosses.
+    //   F0@0 0-100; activation 1,000,000 B / 1,000 B/us + 10 = 1,010 us: 100-1110;
+    //   F0@1 1110-1210; B0@1 1210-1410; gradient 1,010 us: 1410-2420;
+    //   B0@0 2420-2620. Step 2,620 us.
+    let text = "model:\n  layers:\n    - { name: a, forward: 100us, backward: 200us, activation: 1MB }\n\
+                \x20   - { name: b, forward: 100us, backward: 200us, activation: 100MB }\n\
+                cluster: { devices: 2, link: { latency: 10us, bandwidth: 1GB/s } }\n\
+                pipeline: { stages: 2, micro_batches: 1, schedule: fill-drain }\n";
+    let s = parse(text, "grad.yaml", "grad", &[]).unwrap();
+    let out = baton::simulate(&s).unwrap();
+    assert_eq!(out.report.step_time_ns, 2_620_000);
+    let transfers: Vec<(u64, u64, u64)> =
+        out.trace.transfers.iter().map(|t| (t.bytes, t.start.as_ns() / 1_000, t.end.as_ns() / 1_000)).collect();
+    assert_eq!(transfers, vec![(1_000_000, 100, 1_110), (1_000_000, 1_410, 2_420)]);
+}

@@ -29,8 +29,9 @@ use thiserror::Error;
 pub struct StageCost {
     pub forward: SimDuration,
     pub backward: SimDuration,
-    /// Bytes of the activation this stage sends to the next one (and of the
-    /// gradient that comes back across the same boundary).
+    /// Bytes of the activation this stage sends to the next one; the
+    /// gradient the next stage sends back across the same boundary has the
+    /// same size (so the last stage's value never crosses a link).
     pub send_bytes: u64,
 }
 
@@ -272,7 +273,11 @@ impl Exec<'_> {
             self.try_start(dst as usize, sched);
             return;
         }
-        let bytes = self.costs[op.stage as usize].send_bytes;
+        // Both directions across the boundary between virtual stages k and
+        // k+1 carry stage k's output activation: the gradient coming back is
+        // the gradient of that same tensor.
+        let boundary = op.stage.min(to_stage);
+        let bytes = self.costs[boundary as usize].send_bytes;
         let rec = self.transfers.len() as u32;
         let now = sched.now();
         self.transfers.push(TransferRecord {

@@ -34,7 +34,14 @@ pub struct LayerCost {
     pub activation_bytes: u64,
     /// Bytes kept from the forward pass until the backward pass.
     pub stash_bytes: u64,
+    /// The layer's own parameters.
     pub params: u64,
+    /// Parameters the layer shares with the model's first layer (tied
+    /// weights: a transformer's output layer uses the token embedding's
+    /// matrix). Not counted in `params`; a device other than the first
+    /// layer's that runs this layer keeps its own copy, with its gradients
+    /// and optimizer state.
+    pub tied_params: u64,
 }
 
 /// A decoder-style transformer's shape.
@@ -91,6 +98,12 @@ impl Transformer {
         (self.vocab + self.seq_len) * self.hidden
     }
 
+    /// Parameters the output layer shares with the token embedding, `V h`
+    /// (the position embedding is not shared).
+    pub fn tied_params(&self) -> u64 {
+        self.vocab * self.hidden
+    }
+
     /// All parameters: eq. 2 of Narayanan et al. 2021,
     /// `12 l h^2 (1 + 13/(12h) + (V+s)/(12 l h))`.
     pub fn total_params(&self) -> u64 {
@@ -116,7 +129,8 @@ impl Transformer {
     /// The embedding lookup does no arithmetic (no FLOPs are counted for it, as
     /// in eq. 3 of Narayanan et al.) and stashes nothing but token ids, taken
     /// as 0 bytes. The logit layer's parameters are the token embedding's
-    /// (counted once, as in eq. 2), and it stashes its 16-bit input and logits,
+    /// (counted once, as in eq. 2: its `params` is 0 and its `tied_params`
+    /// is `V h`, copied when it runs on another device), and it stashes its 16-bit input and logits,
     /// `2 s b h + 2 s b V` bytes (common practice, no source).
     pub fn layer_table(&self, b: u64, speed: Speed) -> Vec<LayerCost> {
         let boundary = self.boundary_bytes(b);
@@ -130,6 +144,7 @@ impl Transformer {
             activation_bytes: boundary,
             stash_bytes: 0,
             params: self.embedding_params(),
+            tied_params: 0,
         });
         for i in 0..self.layers {
             out.push(LayerCost {
@@ -139,6 +154,7 @@ impl Transformer {
                 activation_bytes: boundary,
                 stash_bytes: self.layer_stash_bytes(b),
                 params: self.layer_params(),
+                tied_params: 0,
             });
         }
         out.push(LayerCost {
@@ -148,6 +164,7 @@ impl Transformer {
             activation_bytes: 2 * self.seq_len * b * self.vocab,
             stash_bytes: boundary + 2 * self.seq_len * b * self.vocab,
             params: 0,
+            tied_params: self.tied_params(),
         });
         out
     }

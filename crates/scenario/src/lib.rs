@@ -159,6 +159,9 @@ pub struct Piece {
     /// Bytes held per micro-batch from the forward's start to the backward's
     /// end: the layers' stashes, or with full recomputation the piece's input.
     pub stash_bytes: u64,
+    /// Its layers' parameters, plus their tied parameters when the piece
+    /// runs on another device than the first layer (a copy of the shared
+    /// weights; see [`Layer::tied_params`]).
     pub params: u64,
 }
 
@@ -179,10 +182,12 @@ impl Scenario {
     /// activation; nothing for the first piece, whose input is token ids).
     pub fn pieces_of(&self, split: &[u32]) -> Vec<Piece> {
         let full = self.training.recompute == Recompute::Full;
+        let p = self.pipeline.stages as usize;
         let mut first = 0usize;
         split
             .iter()
-            .map(|&n| {
+            .enumerate()
+            .map(|(k, &n)| {
                 let layers = &self.layers[first..first + n as usize];
                 let forward_ns: u64 = layers.iter().map(|l| l.forward_ns).sum();
                 let backward_ns: u64 = layers.iter().map(|l| l.backward_ns).sum();
@@ -194,7 +199,10 @@ impl Scenario {
                     backward_ns: if full { backward_ns + forward_ns } else { backward_ns },
                     send_bytes: layers.last().map_or(0, |l| l.activation_bytes),
                     stash_bytes: if full { input } else { layers.iter().map(|l| l.stash_bytes).sum() },
-                    params: layers.iter().map(|l| l.params).sum(),
+                    // The first layer is on device 0 (piece 0's); a piece on
+                    // another device copies the weights its layers share with it.
+                    params: layers.iter().map(|l| l.params).sum::<u64>()
+                        + if k % p != 0 { layers.iter().map(|l| l.tied_params).sum() } else { 0 },
                 };
                 first += n as usize;
                 piece
@@ -747,7 +755,7 @@ fn read_layers(list: At<'_>) -> Result<Vec<Layer>, ScenarioError> {
     for (i, item) in items.iter().enumerate() {
         let path = format!("{}.{i}", list.path);
         let at = At { cx: list.cx, path: &path, node: item };
-        let m = at.map(&["name", "repeat", "forward", "backward", "activation", "params", "stash"])?;
+        let m = at.map(&["name", "repeat", "forward", "backward", "activation", "params", "tied_params", "stash"])?;
         let name = m.opt("name", |a| a.text())?.unwrap_or_else(|| format!("layer{i}"));
         let repeat = m.opt("repeat", |a| a.int(1, MAX_LAYERS as i128))?.unwrap_or(1) as u64;
         let forward_ns = m.req("forward", |a| positive(&a, a.duration_ns()?))?;
@@ -755,12 +763,13 @@ fn read_layers(list: At<'_>) -> Result<Vec<Layer>, ScenarioError> {
         let activation_bytes = m.req("activation", |a| a.bytes())?;
         let stash_bytes = m.opt("stash", |a| a.bytes())?.unwrap_or(activation_bytes);
         let params = m.opt("params", |a| a.count())?.unwrap_or(0);
+        let tied_params = m.opt("tied_params", |a| a.count())?.unwrap_or(0);
         if layers.len() as u64 + repeat > MAX_LAYERS {
             return Err(at.err(format!("the model expands to more than {MAX_LAYERS} layers")));
         }
         for r in 0..repeat {
             let name = if repeat > 1 { format!("{name}.{r}") } else { name.clone() };
-            layers.push(Layer { name, forward_ns, backward_ns, activation_bytes, stash_bytes, params });
+            layers.push(Layer { name, forward_ns, backward_ns, activation_bytes, stash_bytes, params, tied_params });
         }
     }
     Ok(layers)

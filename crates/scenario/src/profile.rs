@@ -1,9 +1,9 @@
 //! Per-layer profiles as CSV: the table a user exports from their profiler.
 //!
-//! Header `name,forward_ms,backward_ms,activation_bytes,stash_bytes,params`;
+//! Header `name,forward_ms,backward_ms,activation_bytes,stash_bytes,params,tied_params`;
 //! `backward_ms` (default 2 x forward, common practice, no source),
-//! `stash_bytes` (default `activation_bytes`) and `params` (default 0) may be
-//! left out of the header or left empty in a row. Times are decimal
+//! `stash_bytes` (default `activation_bytes`), `params` and `tied_params`
+//! (default 0) may be left out of the header or left empty in a row. Times are decimal
 //! milliseconds, read exactly (to the nanosecond); sizes are whole bytes;
 //! parameter counts are whole numbers or carry a `k`, `M`, `B` or `T` suffix.
 
@@ -12,7 +12,8 @@ use std::io::Write;
 use crate::{units, Layer, ScenarioError};
 
 /// Columns a profile may have, in the order they are written.
-pub const COLUMNS: [&str; 6] = ["name", "forward_ms", "backward_ms", "activation_bytes", "stash_bytes", "params"];
+pub const COLUMNS: [&str; 7] =
+    ["name", "forward_ms", "backward_ms", "activation_bytes", "stash_bytes", "params", "tied_params"];
 const REQUIRED: [&str; 3] = ["name", "forward_ms", "activation_bytes"];
 
 /// Reads a profile; `file` labels errors, which name the line and column.
@@ -25,7 +26,7 @@ pub fn read(text: &str, file: &str) -> Result<Vec<Layer>, ScenarioError> {
     };
     let mut rdr = csv::ReaderBuilder::new().trim(csv::Trim::All).from_reader(text.as_bytes());
     let headers = rdr.headers().map_err(|e| err(1, "header", e.to_string()))?.clone();
-    let mut index = [None; 6];
+    let mut index = [None; COLUMNS.len()];
     for (i, h) in headers.iter().enumerate() {
         let Some(c) = COLUMNS.iter().position(|c| *c == h) else {
             return Err(err(1, h, format!("unknown column `{h}`; expected: {}", COLUMNS.join(", "))));
@@ -63,12 +64,15 @@ pub fn read(text: &str, file: &str) -> Result<Vec<Layer>, ScenarioError> {
         let backward_ns = ms(2)?.unwrap_or(forward_ns.saturating_mul(2));
         let activation_bytes = whole(3)?.ok_or_else(|| err(line, "activation_bytes", "is empty".into()))?;
         let stash_bytes = whole(4)?.unwrap_or(activation_bytes);
-        let params =
-            cell(5).map(|v| units::parse_count(v).map_err(|m| err(line, "params", m))).transpose()?.unwrap_or(0);
+        let count = |c: usize| -> Result<u64, ScenarioError> {
+            Ok(cell(c).map(|v| units::parse_count(v).map_err(|m| err(line, COLUMNS[c], m))).transpose()?.unwrap_or(0))
+        };
+        let params = count(5)?;
+        let tied_params = count(6)?;
         if layers.len() as u64 >= crate::MAX_LAYERS {
             return Err(err(line, "row", format!("more than {} layers", crate::MAX_LAYERS)));
         }
-        layers.push(Layer { name, forward_ns, backward_ns, activation_bytes, stash_bytes, params });
+        layers.push(Layer { name, forward_ns, backward_ns, activation_bytes, stash_bytes, params, tied_params });
     }
     if layers.is_empty() {
         return Err(err(1, "row", "the profile has no layers".into()));
@@ -99,6 +103,7 @@ pub fn write<W: Write>(layers: &[Layer], out: W) -> Result<(), csv::Error> {
             l.activation_bytes.to_string(),
             l.stash_bytes.to_string(),
             l.params.to_string(),
+            l.tied_params.to_string(),
         ])?;
     }
     w.flush()?;
@@ -119,7 +124,9 @@ mod tests {
         assert_eq!(l[1].stash_bytes, 2048, "stash defaults to activation");
         assert_eq!(l[1].params, 1_200_000_000);
         let short = read("name,forward_ms,activation_bytes\nx,2,10\n", "p.csv").unwrap();
-        assert_eq!((short[0].backward_ns, short[0].params), (4_000_000, 0));
+        assert_eq!((short[0].backward_ns, short[0].params, short[0].tied_params), (4_000_000, 0, 0));
+        let tied = read("name,forward_ms,activation_bytes,tied_params\nlogits,1,10,52.4M\n", "p.csv").unwrap();
+        assert_eq!(tied[0].tied_params, 52_400_000);
     }
 
     #[test]
@@ -147,6 +154,7 @@ mod tests {
             activation_bytes: 5,
             stash_bytes: 7,
             params: 9,
+            tied_params: 11,
         }];
         let mut out = Vec::new();
         write(&layers, &mut out).unwrap();

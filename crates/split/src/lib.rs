@@ -3,7 +3,9 @@
 //! Finds the contiguous split of a model's layers into `pieces = p x v`
 //! pieces that minimises the bottleneck, the largest piece's forward +
 //! backward time per micro-batch, subject to every piece fitting its device's
-//! memory: model state (parameters x bytes per parameter), plus the stash of
+//! memory: model state (parameters x bytes per parameter, a piece on any
+//! device but the first layer's also holding a copy of the weights its layers
+//! share with the first layer), plus the stash of
 //! as many micro-batches as the schedule keeps in flight on that piece, plus a
 //! reserve. With one chunk per device (`v = 1`) the piece is the device, so
 //! this is exactly the device bottleneck and the device memory.
@@ -57,6 +59,9 @@ pub struct Layer {
     /// forward counts twice).
     pub cost_ns: u64,
     pub params: u64,
+    /// Parameters shared with the first layer (tied weights): held again,
+    /// as a copy, by a piece on any device but device 0 (the first layer's).
+    pub tied_params: u64,
     /// Bytes stashed per micro-batch (used without recomputation).
     pub stash_bytes: u64,
     /// The activation this layer sends on (the next piece's input, stashed
@@ -137,6 +142,7 @@ pub const MAX_SWEEP: usize = 4_000_000;
 struct Prefix {
     cost: Vec<u128>,
     params: Vec<u128>,
+    tied: Vec<u128>,
     stash: Vec<u128>,
 }
 
@@ -151,7 +157,12 @@ impl Prefix {
             }
             v
         };
-        Prefix { cost: sums(&|l| l.cost_ns), params: sums(&|l| l.params), stash: sums(&|l| l.stash_bytes) }
+        Prefix {
+            cost: sums(&|l| l.cost_ns),
+            params: sums(&|l| l.params),
+            tied: sums(&|l| l.tied_params),
+            stash: sums(&|l| l.stash_bytes),
+        }
     }
 }
 
@@ -168,7 +179,9 @@ impl Ctx<'_> {
     /// Bytes piece `k` over layers `a..b` needs, reserve excluded.
     fn piece_bytes(&self, k: usize, a: usize, b: usize) -> u128 {
         let Some(m) = self.p.memory else { return 0 };
-        let state = (self.pre.params[b] - self.pre.params[a]) * m.state_bytes_per_param as u128;
+        // The first layer is on device 0; any other device copies tied weights.
+        let copies = if k % self.p.devices != 0 { self.pre.tied[b] - self.pre.tied[a] } else { 0 };
+        let state = (self.pre.params[b] - self.pre.params[a] + copies) * m.state_bytes_per_param as u128;
         let stash = if m.recompute {
             if a == 0 {
                 0
@@ -223,11 +236,16 @@ impl Ctx<'_> {
 
     /// Greedy is exact when a piece's limits do not depend on its position
     /// or its start: no memory limit, or the same in-flight count on every
-    /// piece and no recomputation.
+    /// piece, no recomputation and no tied weights (whose copies depend on
+    /// the piece's device).
     fn greedy_is_exact(&self) -> bool {
         match self.p.memory {
             None => true,
-            Some(m) => !m.recompute && self.p.in_flight.windows(2).all(|w| w[0] == w[1]),
+            Some(m) => {
+                !m.recompute
+                    && self.p.in_flight.windows(2).all(|w| w[0] == w[1])
+                    && self.p.layers.iter().all(|l| l.tied_params == 0)
+            }
         }
     }
 
@@ -488,7 +506,10 @@ fn even(n: usize, k: usize) -> Vec<u32> {
 /// minimising the largest run sum. Returns that sum and one optimal split.
 pub fn linear_partition(weights: &[u64], k: usize) -> Result<(u64, Vec<u32>), SplitError> {
     let problem = Problem {
-        layers: weights.iter().map(|&w| Layer { cost_ns: w, params: 0, stash_bytes: 0, activation_bytes: 0 }).collect(),
+        layers: weights
+            .iter()
+            .map(|&w| Layer { cost_ns: w, params: 0, tied_params: 0, stash_bytes: 0, activation_bytes: 0 })
+            .collect(),
         devices: k,
         chunks: 1,
         in_flight: vec![0; k],
@@ -526,7 +547,7 @@ mod tests {
     }
 
     fn layer(cost: u64, params: u64, stash: u64) -> Layer {
-        Layer { cost_ns: cost, params, stash_bytes: stash, activation_bytes: stash }
+        Layer { cost_ns: cost, params, tied_params: 0, stash_bytes: stash, activation_bytes: stash }
     }
 
     #[test]
@@ -589,16 +610,48 @@ mod tests {
             .collect()
     }
 
-    /// The best largest device time over every split whose devices fit
-    /// (reserve + each piece's state and in-flight stash within capacity).
+    /// Each device's time and memory under `split`, scored here from the
+    /// crate doc's rule, not with the crate's own accounting: a device's time
+    /// is the sum of its pieces' layer costs; its memory is the reserve plus,
+    /// for each of its pieces, (the layers' parameters, and their tied
+    /// parameters unless the piece is on device 0) x bytes per parameter +
+    /// micro-batches in flight x the piece's stash (its layers' stashes, or
+    /// with recomputation the activation of the layer before it).
+    fn score(p: &Problem, split: &[u32]) -> (Vec<u64>, Vec<u64>) {
+        let mut time = vec![0u64; p.devices];
+        let mut bytes = vec![p.memory.map_or(0, |m| m.reserved_bytes); p.devices];
+        let mut start = 0usize;
+        for (k, &len) in split.iter().enumerate() {
+            let layers = &p.layers[start..start + len as usize];
+            time[k % p.devices] += layers.iter().map(|l| l.cost_ns).sum::<u64>();
+            if let Some(m) = p.memory {
+                let mut params = layers.iter().map(|l| l.params).sum::<u64>();
+                if k % p.devices != 0 {
+                    params += layers.iter().map(|l| l.tied_params).sum::<u64>();
+                }
+                let stash = if !m.recompute {
+                    layers.iter().map(|l| l.stash_bytes).sum::<u64>()
+                } else if start == 0 {
+                    0
+                } else {
+                    p.layers[start - 1].activation_bytes
+                };
+                bytes[k % p.devices] += params * m.state_bytes_per_param + p.in_flight[k] * stash;
+            }
+            start += len as usize;
+        }
+        (time, bytes)
+    }
+
+    /// The best largest device time over every split whose devices fit.
     fn brute(p: &Problem) -> Option<u64> {
-        let cx = Ctx { p, pre: Prefix::new(&p.layers) };
         let cap = p.memory.map_or(u64::MAX, |m| m.capacity_bytes);
         compositions(p.layers.len(), p.devices * p.chunks)
             .into_iter()
-            .map(|split| cx.solution(&split))
-            .filter(|s| s.device_bytes.iter().all(|&b| b <= cap))
-            .map(|s| s.device_ns.iter().copied().max().unwrap_or(0))
+            .filter_map(|split| {
+                let (time, bytes) = score(p, &split);
+                bytes.iter().all(|&b| b <= cap).then(|| time.into_iter().max().unwrap_or(0))
+            })
             .min()
     }
 
@@ -610,13 +663,17 @@ mod tests {
                 prop::collection::vec(1u64..4, k),
                 0u64..400,
                 0u64..40,
+                0u64..8,
             )
-                .prop_map(move |(ls, in_flight, cap, reserved)| Problem {
+                .prop_map(move |(ls, in_flight, cap, reserved, tied)| Problem {
+                    // Tied weights on the last layer, as a transformer's output layer.
                     layers: ls
-                        .into_iter()
-                        .map(|(c, pa, st, act)| Layer {
+                        .iter()
+                        .enumerate()
+                        .map(|(i, &(c, pa, st, act))| Layer {
                             cost_ns: c,
                             params: pa,
+                            tied_params: if i + 1 == ls.len() { tied } else { 0 },
                             stash_bytes: st,
                             activation_bytes: act,
                         })
@@ -650,6 +707,12 @@ mod tests {
                     prop_assert_eq!(Some(s.device_ns.iter().copied().max().unwrap_or(0)), best);
                     prop_assert_eq!(s.split.iter().sum::<u32>() as usize, p.layers.len());
                     prop_assert!(s.split.iter().all(|&x| x >= 1));
+                    // The times and bytes it reports are the split's own.
+                    let (time, bytes) = score(&p, &s.split);
+                    prop_assert_eq!(&s.device_ns, &time);
+                    if p.memory.is_some() {
+                        prop_assert_eq!(&s.device_bytes, &bytes);
+                    }
                 }
                 Outcome::NoFit { shortfall_bytes, closest, .. } => {
                     prop_assert_eq!(best, None);
