@@ -4,8 +4,18 @@ use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
-use anyhow::{Context, Result};
+use anyhow::Context;
+use baton_output::{OutputError, Outputs};
 use clap::{Args, Parser, Subcommand};
+
+/// What every subcommand's help says about output paths.
+macro_rules! outputs_note {
+    () => {
+        "\n\nOutputs: every PATH may be `-` for standard output (at most one per command; the text\n\
+         summary then goes to standard error). Files are replaced only when every output is ready;\n\
+         a symbolic link is followed and its target replaced; devices and FIFOs are written in place."
+    };
+}
 
 /// Simulate pipeline-parallel training steps before you spend cluster time.
 #[derive(Parser)]
@@ -21,45 +31,45 @@ struct Cli {
 #[derive(Subcommand)]
 enum Command {
     /// Simulate one training step of a scenario and report step time, bubbles and idle gaps.
-    #[command(after_help = "Examples:\n  \
+    #[command(after_help = concat!("Examples:\n  \
         baton run scenarios/unbalanced-split.yaml\n  \
         baton run scenarios/unbalanced-split.yaml --svg timeline.svg --trace trace.csv\n  \
         baton run scenarios/interleaved.yaml --json report.json --set pipeline.micro_batches=16\n  \
         baton run scenarios/interleaved.yaml --json - | jq .step_time_ms\n\n\
         baton run scenarios/heavy-head.yaml --memory-svg memory.svg --strict\n  \
         baton run scenarios/heavy-head.yaml --show-layers --layers-csv layers.csv\n\n\
-        Exit status: 0 success, 2 invalid scenario or usage, 3 over memory capacity with --strict, 1 anything else.")]
+        Exit status: 0 success, 2 invalid scenario or usage, 3 over memory capacity with --strict, 1 anything else.", outputs_note!()))]
     Run(RunArgs),
     /// Find the split of the layers into stages that minimises the bottleneck
     /// within each device's memory, then refine it by simulation.
-    #[command(after_help = "Examples:\n  \
+    #[command(after_help = concat!("Examples:\n  \
         baton split scenarios/heavy-head.yaml\n  \
         baton split scenarios/heavy-head.yaml --stages 8 --json split.json\n  \
         baton split scenarios/heavy-head.yaml --apply heavy-head-split.yaml\n  \
         baton split scenarios/interleaved.yaml --chunks 2 --set pipeline.micro_batches=16\n\n\
-        Exit status: 0 a split fits, 3 no split fits in memory, 2 invalid scenario or usage, 1 anything else.")]
+        Exit status: 0 a split fits, 3 no split fits in memory, 2 invalid scenario or usage, 1 anything else.", outputs_note!()))]
     Split(SplitArgs),
     /// Simulate every combination of several values of some keys, in
     /// parallel, and rank them.
-    #[command(after_help = "Examples:\n  \
+    #[command(after_help = concat!("Examples:\n  \
         baton sweep scenarios/unbalanced-split.yaml --vary pipeline.micro_batches=4..64*2 --vary pipeline.schedule=fill-drain,1f1b\n  \
         baton sweep scenarios/unbalanced-split.yaml --vary 'pipeline.split=[3,3,3,3];[4,3,3,2];[4,4,2,2]' --csv splits.csv\n  \
         baton sweep scenarios/interleaved.yaml --vary pipeline.chunks=1..4 --vary pipeline.micro_batches=4..32*2 --rank-by throughput --svg sweep.svg\n  \
         baton sweep scenarios/heavy-head.yaml --vary pipeline.micro_batches=8..128*2 --shard 2/4 --csv part2.csv\n\n\
         Values: V1,V2 (or ; between bracketed lists), a..b for every whole number from a to b,\n\
         a..b*f for a, a*f, a*f^2, ... up to b. Invalid points are skipped with their reason.\n\
-        Exit status: 0 done, 2 invalid scenario, --vary or usage, 1 anything else.")]
+        Exit status: 0 done, 2 invalid scenario, --vary or usage, 1 anything else.", outputs_note!()))]
     Sweep(SweepArgs),
     /// Combine the CSV outputs of `baton sweep --shard` runs into one ranked result.
-    #[command(after_help = "Examples:\n  \
+    #[command(after_help = concat!("Examples:\n  \
         baton merge part1.csv part2.csv part3.csv part4.csv --csv sweep.csv\n  \
-        baton merge part*.csv --csv sweep.csv --rank-by throughput --json sweep.json")]
+        baton merge part*.csv --csv sweep.csv --rank-by throughput --json sweep.json", outputs_note!()))]
     Merge(MergeArgs),
     /// Simulate several scenarios (or one and a variant of it) and show them side by side.
-    #[command(after_help = "Examples:\n  \
+    #[command(after_help = concat!("Examples:\n  \
         baton compare scenarios/unbalanced-split.yaml balanced.yaml --svg both.svg\n  \
         baton compare scenarios/interleaved.yaml --set pipeline.schedule=1f1b --set pipeline.chunks=1\n\n\
-        With one scenario, --set makes the variant it is compared with; with several, --set applies to all.")]
+        With one scenario, --set makes the variant it is compared with; with several, --set applies to all.", outputs_note!()))]
     Compare(CompareArgs),
 }
 
@@ -72,14 +82,14 @@ struct SweepArgs {
     #[arg(long = "vary", value_name = "KEY=V1,V2,...")]
     vary: Vec<String>,
     /// Write one row per point as CSV, e.g. --csv sweep.csv.
-    #[arg(long, value_name = "PATH")]
+    #[arg(long, value_name = "PATH|-")]
     csv: Option<PathBuf>,
     /// Write the points as a JSON array, or to standard output with `-`, e.g. --json sweep.json.
     #[arg(long, value_name = "PATH|-")]
     json: Option<PathBuf>,
     /// Draw the ranking field against the first varied key, one line per value
     /// of the second, e.g. --svg sweep.svg.
-    #[arg(long, value_name = "PATH")]
+    #[arg(long, value_name = "PATH|-")]
     svg: Option<PathBuf>,
     /// Threads to simulate with (default: all cores), e.g. --jobs 2.
     #[arg(long, value_name = "N")]
@@ -105,7 +115,7 @@ struct MergeArgs {
     #[arg(required = true)]
     parts: Vec<PathBuf>,
     /// Write the combined, ranked CSV, e.g. --csv sweep.csv.
-    #[arg(long, value_name = "PATH")]
+    #[arg(long, value_name = "PATH|-")]
     csv: Option<PathBuf>,
     /// Write the combined points as JSON, e.g. --json sweep.json.
     #[arg(long, value_name = "PATH|-")]
@@ -124,7 +134,7 @@ struct CompareArgs {
     #[arg(required = true)]
     scenarios: Vec<PathBuf>,
     /// Draw the runs' Gantt charts stacked on one time axis, e.g. --svg compare.svg.
-    #[arg(long, value_name = "PATH")]
+    #[arg(long, value_name = "PATH|-")]
     svg: Option<PathBuf>,
     /// Write the reports as a JSON array, or to standard output with `-`, e.g. --json compare.json.
     #[arg(long, value_name = "PATH|-")]
@@ -157,7 +167,7 @@ struct SplitArgs {
     /// Write a copy of the scenario file with the proposed split (and any
     /// --stages/--chunks) to PATH, keeping everything else as written; --set
     /// overrides are not copied. E.g. --apply balanced.yaml.
-    #[arg(long, value_name = "PATH")]
+    #[arg(long, value_name = "PATH|-")]
     apply: Option<PathBuf>,
     /// Override a value of the scenario by its dotted key path before it is
     /// checked; repeatable, e.g. --set pipeline.micro_batches=32.
@@ -170,7 +180,7 @@ struct RunArgs {
     /// The scenario file (YAML), e.g. scenarios/unbalanced-split.yaml.
     scenario: PathBuf,
     /// Write the Gantt chart as SVG to PATH, e.g. --svg timeline.svg.
-    #[arg(long, value_name = "PATH")]
+    #[arg(long, value_name = "PATH|-")]
     svg: Option<PathBuf>,
     /// Write the report as JSON to PATH, or to standard output with `-`
     /// (the summary then goes to standard error), e.g. --json report.json.
@@ -178,7 +188,7 @@ struct RunArgs {
     json: Option<PathBuf>,
     /// Write every operation and transfer as CSV to PATH
     /// (device,kind,micro_batch,stage,start_ns,end_ns), e.g. --trace trace.csv.
-    #[arg(long, value_name = "PATH")]
+    #[arg(long, value_name = "PATH|-")]
     trace: Option<PathBuf>,
     /// Override a value of the scenario by its dotted key path before it is
     /// checked; repeatable, e.g. --set pipeline.micro_batches=16 --set pipeline.schedule=fill-drain.
@@ -186,7 +196,7 @@ struct RunArgs {
     sets: Vec<String>,
     /// Write each device's memory over the step (model state, activations,
     /// capacity) as SVG to PATH, e.g. --memory-svg memory.svg.
-    #[arg(long, value_name = "PATH")]
+    #[arg(long, value_name = "PATH|-")]
     memory_svg: Option<PathBuf>,
     /// Print the per-layer cost table the simulation used (from the layers,
     /// the profile or the transformer formulas), e.g. --show-layers.
@@ -194,7 +204,7 @@ struct RunArgs {
     show_layers: bool,
     /// Write the per-layer cost table as a profile CSV that `model: { profile: PATH }`
     /// reads back exactly, e.g. --layers-csv layers.csv.
-    #[arg(long, value_name = "PATH")]
+    #[arg(long, value_name = "PATH|-")]
     layers_csv: Option<PathBuf>,
     /// Exit with status 3 when any device's peak memory exceeds its capacity
     /// (outputs are still written), e.g. --strict.
@@ -254,87 +264,74 @@ fn main() -> ExitCode {
     }
 }
 
-/// An output file being prepared next to its destination; it only replaces
-/// the destination on [`Pending::commit`], so no half-written file is left.
-struct Pending {
-    tmp: tempfile::NamedTempFile,
-    dest: PathBuf,
+/// Resolves the requested outputs (`(option, label, path)`); refuses two on
+/// standard output or on one file before any work is done.
+fn open_outputs(requests: &[(&'static str, &'static str, &Option<PathBuf>)]) -> Result<Outputs, Failure> {
+    Outputs::open(requests.iter().filter_map(|&(option, label, path)| path.as_deref().map(|p| (option, label, p))))
+        .map_err(output_failure)
 }
 
-fn prepare(dest: &Path) -> Result<Pending> {
-    let dir = match dest.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
-        _ => PathBuf::from("."),
-    };
-    let tmp = tempfile::Builder::new()
-        .prefix(".baton-")
-        .tempfile_in(&dir)
-        .with_context(|| format!("cannot write {}: cannot create a file in {}", dest.display(), dir.display()))?;
-    Ok(Pending { tmp, dest: dest.to_path_buf() })
-}
-
-impl Pending {
-    fn write_all(&mut self, bytes: &[u8]) -> Result<()> {
-        self.tmp.write_all(bytes).with_context(|| format!("cannot write {}", self.dest.display()))
-    }
-
-    fn commit(self) -> Result<()> {
-        let dest = self.dest;
-        self.tmp.as_file().sync_all().with_context(|| format!("cannot write {}", dest.display()))?;
-        // Temporary files are private; a report is an ordinary file.
-        #[cfg(unix)]
-        {
-            use std::os::unix::fs::PermissionsExt;
-            let _ = self.tmp.as_file().set_permissions(std::fs::Permissions::from_mode(0o644));
-        }
-        self.tmp.persist(&dest).map_err(|e| e.error).with_context(|| format!("cannot write {}", dest.display()))?;
-        Ok(())
+fn output_failure(e: OutputError) -> Failure {
+    if e.is_usage() {
+        Failure::Input(e.into())
+    } else {
+        Failure::Other(e.into())
     }
 }
 
-fn is_stdout(p: &Path) -> bool {
-    p.as_os_str() == "-"
+/// Commits every output, then prints `text` and a line per file written: on
+/// standard output, or on standard error when an output took standard output.
+fn finish(outputs: Outputs, text: &str) -> Result<(), Failure> {
+    let to_stdout = outputs.to_stdout();
+    let written = outputs.commit().map_err(output_failure)?;
+    let mut lines = text.to_string();
+    for w in written.iter().filter(|w| !w.to_stdout) {
+        lines.push_str(&format!("{} written to {}\n", w.label, w.path.display()));
+    }
+    if to_stdout {
+        eprint!("{lines}");
+    } else {
+        std::io::stdout().lock().write_all(lines.as_bytes()).context("cannot write to standard output")?;
+    }
+    Ok(())
 }
 
 fn run(args: RunArgs) -> Result<(), Failure> {
+    let mut outputs = open_outputs(&[
+        ("--svg", "chart", &args.svg),
+        ("--memory-svg", "memory chart", &args.memory_svg),
+        ("--layers-csv", "layer table", &args.layers_csv),
+        ("--trace", "trace", &args.trace),
+        ("--json", "report", &args.json),
+    ])?;
     let scenario = baton::scenario::load(&args.scenario, &args.sets).map_err(|e| Failure::Input(e.into()))?;
     let outcome = baton::simulate(&scenario).map_err(|e| Failure::Input(e.into()))?;
     let report = &outcome.report;
 
-    // Prepare every file first; replace the destinations only when all are ready.
-    let mut pending = Vec::new();
-    if let Some(path) = &args.svg {
+    if outputs.wants("--svg") {
         let options = baton::report::gantt::ChartOptions { comm_lanes: !args.no_comm_lanes };
         let svg =
             baton::report::gantt::render_with(&outcome.trace, report, options).context("cannot draw the chart")?;
-        stage(path, svg.as_bytes(), &mut pending)?;
+        outputs.write("--svg", svg.as_bytes()).map_err(output_failure)?;
     }
-    if let Some(path) = &args.memory_svg {
+    if outputs.wants("--memory-svg") {
         let memory = baton::memory_inputs(&scenario);
         let svg = baton::report::memory_chart::render(&outcome.trace, report, &memory)
             .context("cannot draw the memory chart")?;
-        stage(path, svg.as_bytes(), &mut pending)?;
+        outputs.write("--memory-svg", svg.as_bytes()).map_err(output_failure)?;
     }
-    if let Some(path) = &args.layers_csv {
-        let mut p = prepare(path)?;
-        baton::scenario::profile::write(&scenario.layers, p.tmp.as_file_mut())
-            .with_context(|| format!("cannot write {}", path.display()))?;
-        pending.push(p);
+    outputs
+        .write_with("--layers-csv", |w| {
+            baton::scenario::profile::write(&scenario.layers, w).map_err(std::io::Error::other)
+        })
+        .map_err(output_failure)?;
+    outputs
+        .write_with("--trace", |w| baton::report::write_trace_csv(&outcome.trace, w).map_err(std::io::Error::other))
+        .map_err(output_failure)?;
+    if outputs.wants("--json") {
+        let json = baton::report::to_json(report).context("cannot encode the report")?;
+        outputs.write("--json", json.as_bytes()).map_err(output_failure)?;
     }
-    if let Some(path) = &args.trace {
-        let mut p = prepare(path)?;
-        let mut buf = std::io::BufWriter::new(p.tmp.as_file_mut());
-        baton::report::write_trace_csv(&outcome.trace, &mut buf)
-            .with_context(|| format!("cannot write {}", path.display()))?;
-        buf.flush().with_context(|| format!("cannot write {}", path.display()))?;
-        drop(buf);
-        pending.push(p);
-    }
-    let json = match &args.json {
-        Some(_) => baton::report::to_json(report).context("cannot encode the report")?,
-        None => String::new(),
-    };
-    let json_to_stdout = commit_all(pending, args.json.as_deref(), &json)?;
 
     let mut summary = String::new();
     if args.show_layers {
@@ -342,26 +339,7 @@ fn run(args: RunArgs) -> Result<(), Failure> {
         summary.push('\n');
     }
     summary.push_str(&baton::report::summary(report));
-    if json_to_stdout {
-        eprint!("{summary}");
-        let mut out = std::io::stdout().lock();
-        out.write_all(json.as_bytes()).context("cannot write to standard output")?;
-    } else {
-        let mut out = std::io::stdout().lock();
-        out.write_all(summary.as_bytes()).context("cannot write to standard output")?;
-        let outputs = [
-            ("chart", &args.svg),
-            ("memory chart", &args.memory_svg),
-            ("layer table", &args.layers_csv),
-            ("trace", &args.trace),
-            ("report", &args.json),
-        ];
-        for (label, path) in outputs {
-            if let Some(p) = path {
-                writeln!(out, "{label} written to {}", p.display()).context("cannot write to standard output")?;
-            }
-        }
-    }
+    finish(outputs, &summary)?;
     if args.strict && !report.fits {
         let over: Vec<String> = report.devices.iter().filter(|d| !d.fits).map(|d| d.device.to_string()).collect();
         return Err(Failure::OverCapacity(format!(
@@ -381,6 +359,10 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
     use baton::report::format_bytes;
     use std::fmt::Write as _;
 
+    let mut outputs = open_outputs(&[
+        ("--apply", "scenario with the proposed split", &args.apply),
+        ("--json", "result", &args.json),
+    ])?;
     let mut sets = args.sets.clone();
     if let Some(n) = args.stages {
         sets.push(format!("pipeline.stages={n}"));
@@ -565,7 +547,6 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
     });
     let json_text = format!("{}\n", serde_json::to_string_pretty(&json).context("cannot encode the result")?);
 
-    let mut pending = Vec::new();
     if let Some(path) = &args.apply {
         if !fits {
             return Err(Failure::OverCapacity(format!("no split fits in memory; {} not written", path.display())));
@@ -597,23 +578,10 @@ fn split(args: SplitArgs) -> Result<(), Failure> {
                 list(&plan.best.split)
             )));
         }
-        stage(path, new_text.as_bytes(), &mut pending)?;
+        outputs.write("--apply", new_text.as_bytes()).map_err(output_failure)?;
     }
-    let json_to_stdout = commit_all(pending, args.json.as_deref(), &json_text)?;
-    if json_to_stdout {
-        eprint!("{out}");
-        std::io::stdout().lock().write_all(json_text.as_bytes()).context("cannot write to standard output")?;
-    } else {
-        let mut o = std::io::stdout().lock();
-        o.write_all(out.as_bytes()).context("cannot write to standard output")?;
-        if let Some(p) = &args.json {
-            writeln!(o, "result written to {}", p.display()).context("cannot write to standard output")?;
-        }
-        if let Some(p) = &args.apply {
-            writeln!(o, "scenario with the proposed split written to {}", p.display())
-                .context("cannot write to standard output")?;
-        }
-    }
+    outputs.write("--json", json_text.as_bytes()).map_err(output_failure)?;
+    finish(outputs, &out)?;
     if !fits {
         return Err(Failure::OverCapacity("no split fits in memory".into()));
     }
@@ -631,42 +599,13 @@ fn input<E: Into<anyhow::Error>>(e: E) -> Failure {
     Failure::Input(e.into())
 }
 
-/// Writes `text` to `path` (atomically) or to standard output for `-`;
-/// returns whether it went to standard output.
-fn write_text(path: &Path, text: &str, pending: &mut Vec<Pending>) -> Result<bool, Failure> {
-    if is_stdout(path) {
-        return Ok(true);
-    }
-    stage(path, text.as_bytes(), pending)?;
-    Ok(false)
-}
-
-/// Stages the JSON (unless it goes to standard output) and replaces every
-/// destination; returns whether the JSON is for standard output.
-fn commit_all(mut pending: Vec<Pending>, json_path: Option<&Path>, json: &str) -> Result<bool, Failure> {
-    let to_stdout = match json_path {
-        Some(path) => write_text(path, json, &mut pending)?,
-        None => false,
-    };
-    for f in pending {
-        f.commit()?;
-    }
-    Ok(to_stdout)
-}
-
-/// Prepares `bytes` for `path`; they replace it when the pending files are committed.
-fn stage(path: &Path, bytes: &[u8], pending: &mut Vec<Pending>) -> Result<()> {
-    let mut f = prepare(path)?;
-    f.write_all(bytes)?;
-    pending.push(f);
-    Ok(())
-}
-
 fn sweep(args: SweepArgs) -> Result<(), Failure> {
     use baton::sweep::{self as sw, Grid, RankBy};
     use std::io::IsTerminal;
     use std::time::{Duration, Instant};
 
+    let mut outputs =
+        open_outputs(&[("--csv", "CSV", &args.csv), ("--svg", "chart", &args.svg), ("--json", "JSON", &args.json)])?;
     let by: RankBy = args.rank_by.parse().map_err(input)?;
     let axes = args.vary.iter().map(|v| sw::parse_vary(v)).collect::<Result<Vec<_>, _>>().map_err(input)?;
     let grid = Grid::new(axes).map_err(input)?;
@@ -709,17 +648,15 @@ fn sweep(args: SweepArgs) -> Result<(), Failure> {
     sw::rank(&mut points, by);
     let keys = grid.keys();
 
-    let mut pending = Vec::new();
-    if let Some(path) = &args.csv {
-        stage_sweep_csv(path, &keys, &points, &mut pending)?;
-    }
-    if let Some(path) = &args.svg {
+    outputs
+        .write_with("--csv", |w| sw::write_csv(&keys, &points, w).map_err(std::io::Error::other))
+        .map_err(output_failure)?;
+    if outputs.wants("--svg") {
         let title = doc.scenario(&args.sets).map(|s| s.title).unwrap_or_default();
         let svg = sw::chart(&title, &grid, &points, by).map_err(|e| Failure::Other(anyhow::anyhow!(e)))?;
-        stage(path, svg.as_bytes(), &mut pending)?;
+        outputs.write("--svg", svg.as_bytes()).map_err(output_failure)?;
     }
-    let json = sw::to_json(&keys, &points);
-    let json_to_stdout = commit_all(pending, args.json.as_deref(), &json)?;
+    outputs.write("--json", sw::to_json(&keys, &points).as_bytes()).map_err(output_failure)?;
     let mut text = String::new();
     if let Some((i, n)) = shard {
         text.push_str(&format!("shard {i}/{n}: {} of the grid's {} points\n", indices.len(), grid.len()));
@@ -727,48 +664,16 @@ fn sweep(args: SweepArgs) -> Result<(), Failure> {
     let scenario_path = args.scenario.display().to_string();
     text.push_str(&sw::table(&keys, &points, by, args.top, Some(&scenario_path), &args.sets));
     text.push_str(&format!("simulated {} points in {:.2} s\n", points.len(), started.elapsed().as_secs_f64()));
-    emit(&text, json_to_stdout, &json, &[("CSV", &args.csv), ("chart", &args.svg), ("JSON", &args.json)])?;
+    finish(outputs, &text)?;
     if shard.is_none() && !points.is_empty() && points.iter().all(|p| p.result.is_err()) {
         return Err(input(anyhow::anyhow!("every point was skipped; see the reasons above")));
     }
     Ok(())
 }
 
-/// Prints the text summary (to standard error when JSON goes to standard output).
-fn emit(text: &str, json_to_stdout: bool, json: &str, outputs: &[(&str, &Option<PathBuf>)]) -> Result<(), Failure> {
-    if json_to_stdout {
-        eprint!("{text}");
-        std::io::stdout().lock().write_all(json.as_bytes()).context("cannot write to standard output")?;
-    } else {
-        let mut o = std::io::stdout().lock();
-        o.write_all(text.as_bytes()).context("cannot write to standard output")?;
-        for (label, path) in outputs {
-            if let Some(p) = path {
-                writeln!(o, "{label} written to {}", p.display()).context("cannot write to standard output")?;
-            }
-        }
-    }
-    Ok(())
-}
-
-/// Stages a sweep's ranked points as CSV for `path`.
-fn stage_sweep_csv(
-    path: &Path,
-    keys: &[String],
-    points: &[baton::sweep::Point],
-    pending: &mut Vec<Pending>,
-) -> Result<()> {
-    let mut f = prepare(path)?;
-    let mut buf = std::io::BufWriter::new(f.tmp.as_file_mut());
-    baton::sweep::write_csv(keys, points, &mut buf).with_context(|| format!("cannot write {}", path.display()))?;
-    buf.flush().with_context(|| format!("cannot write {}", path.display()))?;
-    drop(buf);
-    pending.push(f);
-    Ok(())
-}
-
 fn merge(args: MergeArgs) -> Result<(), Failure> {
     use baton::sweep as sw;
+    let mut outputs = open_outputs(&[("--csv", "CSV", &args.csv), ("--json", "JSON", &args.json)])?;
     let by: sw::RankBy = args.rank_by.parse().map_err(input)?;
     let mut parts = Vec::new();
     for p in &args.parts {
@@ -777,17 +682,15 @@ fn merge(args: MergeArgs) -> Result<(), Failure> {
         parts.push((p.display().to_string(), text));
     }
     let (keys, points) = sw::merge(&parts, by).map_err(input)?;
-    let mut pending = Vec::new();
-    if let Some(path) = &args.csv {
-        stage_sweep_csv(path, &keys, &points, &mut pending)?;
-    }
-    let json = sw::to_json(&keys, &points);
-    let json_to_stdout = commit_all(pending, args.json.as_deref(), &json)?;
-    let text = sw::table(&keys, &points, by, args.top, None, &[]);
-    emit(&text, json_to_stdout, &json, &[("CSV", &args.csv), ("JSON", &args.json)])
+    outputs
+        .write_with("--csv", |w| sw::write_csv(&keys, &points, w).map_err(std::io::Error::other))
+        .map_err(output_failure)?;
+    outputs.write("--json", sw::to_json(&keys, &points).as_bytes()).map_err(output_failure)?;
+    finish(outputs, &sw::table(&keys, &points, by, args.top, None, &[]))
 }
 
 fn compare(args: CompareArgs) -> Result<(), Failure> {
+    let mut outputs = open_outputs(&[("--svg", "chart", &args.svg), ("--json", "JSON", &args.json)])?;
     let mut runs = Vec::new();
     let variant = args.scenarios.len() == 1 && !args.sets.is_empty();
     for (i, path) in args.scenarios.iter().enumerate() {
@@ -816,8 +719,7 @@ fn compare(args: CompareArgs) -> Result<(), Failure> {
         .map(|(i, o)| baton::compare::Entry { label: label(i), source: runs[i].0.clone(), report: &o.report })
         .collect();
     let text = baton::compare::table(&entries);
-    let mut pending = Vec::new();
-    if let Some(path) = &args.svg {
+    if outputs.wants("--svg") {
         let chart_runs: Vec<baton::report::gantt::Run> = outcomes
             .iter()
             .enumerate()
@@ -830,10 +732,12 @@ fn compare(args: CompareArgs) -> Result<(), Failure> {
         let options = baton::report::gantt::ChartOptions { comm_lanes: !args.no_comm_lanes };
         let svg =
             baton::report::gantt::render_runs_with(&chart_runs, &title, options).context("cannot draw the chart")?;
-        stage(path, svg.as_bytes(), &mut pending)?;
+        outputs.write("--svg", svg.as_bytes()).map_err(output_failure)?;
     }
-    let reports: Vec<&baton::report::Report> = outcomes.iter().map(|o| &o.report).collect();
-    let json = format!("{}\n", serde_json::to_string_pretty(&reports).context("cannot encode the reports")?);
-    let json_to_stdout = commit_all(pending, args.json.as_deref(), &json)?;
-    emit(&text, json_to_stdout, &json, &[("chart", &args.svg), ("JSON", &args.json)])
+    if outputs.wants("--json") {
+        let reports: Vec<&baton::report::Report> = outcomes.iter().map(|o| &o.report).collect();
+        let json = format!("{}\n", serde_json::to_string_pretty(&reports).context("cannot encode the reports")?);
+        outputs.write("--json", json.as_bytes()).map_err(output_failure)?;
+    }
+    finish(outputs, &text)
 }
