@@ -1,5 +1,7 @@
 //! The `baton` command as a user runs it: outputs, exit statuses, refusals.
 
+mod common;
+
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
@@ -44,19 +46,49 @@ fn run_writes_all_outputs() {
         assert!(stdout.contains(needle), "summary lacks {needle}: {stdout}");
     }
 
+    // The demo's step and busy times from the reference model in
+    // tests/common (the README's rules; no transfer shares a link here):
+    // embed F 0.6 B 1.2 ms, ten blocks F 1.1 B 2.2 ms, head F 2.4 B 4.8 ms, all
+    // sending 12 MiB, split [3, 3, 3, 3], 1F1B, m = 8, 4 us and 48 GB/s.
+    let mib = 1 << 20;
+    let mut layers = vec![(600_000, 1_200_000, 12 * mib)];
+    layers.extend([(1_100_000, 2_200_000, 12 * mib); 10]);
+    layers.push((2_400_000, 4_800_000, 12 * mib));
+    let want = common::reference_step(&common::stages_of(&layers, &[3, 3, 3, 3]), 8, "1f1b", 4_000, 48_000_000_000)
+        .expect("no transfer shares a link");
+    // Busy per device = 8 x (F + B) of its three layers: 8 x (2.8 + 5.6) ms on
+    // device 0, 8 x 9.9 on devices 1 and 2, 8 x 13.8 on device 3.
+    assert_eq!(want.busy_ns, vec![67_200_000, 79_200_000, 79_200_000, 110_400_000]);
     let v: serde_json::Value = serde_json::from_slice(&std::fs::read(&json).unwrap()).unwrap();
-    assert!(v["step_time_ms"].as_f64().unwrap() > 0.0);
-    assert!(v["bubble_fraction"].as_f64().unwrap() > 0.0);
+    assert_eq!(v["step_time_ns"].as_u64(), Some(want.step_ns));
+    assert_eq!(v["step_time_ms"].as_f64(), Some(want.step_ns as f64 / 1e6));
+    let idle: Vec<u64> = want.busy_ns.iter().map(|b| want.step_ns - b).collect();
+    let bubble = idle.iter().sum::<u64>() as f64 / (4 * want.step_ns) as f64;
+    assert!((v["bubble_fraction"].as_f64().unwrap() - bubble).abs() < 1e-12);
     assert_eq!(v["seed"], 1);
     let devices = v["devices"].as_array().unwrap();
     assert_eq!(devices.len(), 4);
-    for key in ["device", "busy_ms", "idle_ms", "bubble_fraction", "peak_activations"] {
-        assert!(!devices[0][key].is_null(), "devices[].{key}");
+    for (d, dev) in devices.iter().enumerate() {
+        assert_eq!(dev["device"], d);
+        assert_eq!(dev["busy_ms"].as_f64(), Some(want.busy_ns[d] as f64 / 1e6));
+        assert_eq!(dev["idle_ms"].as_f64(), Some(idle[d] as f64 / 1e6));
+        assert!((dev["bubble_fraction"].as_f64().unwrap() - idle[d] as f64 / want.step_ns as f64).abs() < 1e-12);
+        // 1F1B holds min(p - d, m) micro-batches on device d (Narayanan et
+        // al., SC 2021, sec. 2.2.1).
+        assert_eq!(dev["peak_activations"], 4 - d);
     }
+    // The gaps cover each device's idle time exactly, and each is a real interval.
     let gaps = v["gaps"].as_array().unwrap();
-    assert!(!gaps.is_empty());
-    for key in ["device", "start_ms", "end_ms", "cause"] {
-        assert!(!gaps[0][key].is_null(), "gaps[].{key}");
+    for (d, idle_ns) in idle.iter().enumerate() {
+        let sum: f64 = gaps
+            .iter()
+            .filter(|g| g["device"] == d)
+            .map(|g| g["end_ms"].as_f64().unwrap() - g["start_ms"].as_f64().unwrap())
+            .sum();
+        assert!((sum - *idle_ns as f64 / 1e6).abs() < 1e-9, "device {d}: gaps {sum} ms, idle {idle_ns} ns");
+    }
+    for g in gaps {
+        assert!(["fill", "drain", "activation", "gradient", "link"].contains(&g["cause"].as_str().unwrap()), "{g}");
     }
 
     let trace = std::fs::read_to_string(&csv).unwrap();
@@ -68,8 +100,10 @@ fn run_writes_all_outputs() {
     assert_eq!(rows.iter().filter(|r| r.contains(",send,")).count(), 48);
 
     let svg_text = std::fs::read_to_string(&svg).unwrap();
+    // A tooltip on every op (64), on each transfer's send and receive mark
+    // (2 x 48) and on every idle gap.
     let titles = check_xml(&svg_text);
-    assert!(titles >= 64, "every bar has a tooltip: {titles}");
+    assert_eq!(titles, 64 + 2 * 48 + gaps.len(), "every bar, mark and gap has a tooltip");
     assert!(svg_text.contains("Harbor-7") && svg_text.contains("time (ms)") && svg_text.contains("device 3"));
     assert!(svg_text.contains("step time") && svg_text.contains("bubble"));
     assert!(files_in(dir.path()).len() == 3, "no temporary files left behind");
@@ -194,19 +228,28 @@ fn large_chart_drops_labels_that_do_not_fit() {
     ]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let doc = std::fs::read_to_string(&svg).unwrap();
-    assert!(check_xml(&doc) >= 8 * 128);
+    // 8 x 64 x 2 ops and 7 x 64 x 2 transfers (a send and a receive mark each), plus the gaps.
+    assert!(check_xml(&doc) >= 8 * 128 + 2 * 7 * 128);
     let attr = |s: &str, name: &str| -> f64 {
         let key = format!(" {name}=\"");
         let i = s.find(&key).unwrap() + key.len();
         s[i..].split('"').next().unwrap().parse().unwrap()
     };
     let mut labels = 0;
+    let mut expected_labels = 0;
     let mut lanes: std::collections::BTreeMap<i64, Vec<(f64, f64)>> = Default::default();
     for bar in doc.split("<g><title>").skip(1) {
         let bar = &bar[..bar.find("</g>").unwrap()];
         let rect = &bar[bar.find("<rect").unwrap()..];
         let (x, w, y) = (attr(rect, "x"), attr(rect, "width"), attr(rect, "y"));
         lanes.entry(y.round() as i64).or_default().push((x, w));
+        // The chart's rule: a micro-batch number is drawn when its bar is at
+        // least 0.62 em per digit (10 px font) plus 3 px wide.
+        let title = &bar[..bar.find("</title>").unwrap()];
+        let mb = title.split("micro-batch ").nth(1).map(|t| t.split(',').next().unwrap().len());
+        if let Some(digits) = mb {
+            expected_labels += usize::from(w >= digits as f64 * 6.2 + 3.0);
+        }
         if let Some(t) = bar.find("<text") {
             let label = &bar[t..];
             let digits = label[label.find('>').unwrap() + 1..label.find("</text>").unwrap()].len();
@@ -224,7 +267,8 @@ fn large_chart_drops_labels_that_do_not_fit() {
             assert!(w[0].0 + w[0].1 <= w[1].0 + 0.02, "bars overlap");
         }
     }
-    assert!(labels > 0, "labels that fit are kept");
+    assert_eq!(labels, expected_labels, "exactly the labels that fit are kept");
+    assert!(expected_labels > 0 && expected_labels < 8 * 128, "some labels fit and some do not");
 }
 
 #[test]

@@ -6,6 +6,8 @@ use baton::scenario::{parse, Scenario};
 use baton::schedule::OpKind;
 use proptest::prelude::*;
 
+mod common;
+
 #[derive(Debug, Clone)]
 struct Case {
     p: u32,
@@ -115,8 +117,179 @@ proptest! {
             prop_assert_eq!(gap_ns, d.idle_ns);
         }
 
+        // Transfers, checked against the scenario rather than the executor's
+        // own look-ups: piece k holds the layers of an even split (the first
+        // `n mod pieces` pieces one more), the boundary between pieces k and
+        // k+1 carries the activation of piece k's last layer in both
+        // directions, and the flat cluster gives each ordered device pair its
+        // own link (latency, bandwidth in GB/s = bytes per ns).
+        let pieces = (c.p * c.v) as usize;
+        let n = c.layers.len();
+        let mut last_layer = Vec::with_capacity(pieces);
+        let mut end = 0usize;
+        for k in 0..pieces {
+            end += n / pieces + usize::from(k < n % pieces);
+            last_layer.push(end - 1);
+        }
+        for t in &trace.transfers {
+            let boundary = t.from_stage.min(t.to_stage) as usize;
+            prop_assert_eq!(t.from_stage.abs_diff(t.to_stage), 1);
+            prop_assert_eq!(t.bytes, c.layers[last_layer[boundary]].2 as u64 * 1_000, "boundary {}", boundary);
+            prop_assert_eq!((t.src, t.dst), (t.from_stage % c.p, t.to_stage % c.p));
+            prop_assert_eq!(t.end.as_ns() - t.sent.as_ns(), latency);
+            // Alone on its link from start until its last byte leaves (no other
+            // transfer between the same two devices in flight at once: one that
+            // starts exactly when another's last byte leaves does not share),
+            // it takes latency + ceil(bytes / bandwidth).
+            let alone = !trace.transfers.iter().any(|o| {
+                !std::ptr::eq(o, t) && (o.src, o.dst) == (t.src, t.dst) && o.start < t.sent && t.start < o.sent
+            });
+            if alone {
+                prop_assert_eq!(t.end.as_ns() - t.start.as_ns(), latency + t.bytes.div_ceil(c.gbps as u64));
+            }
+        }
+        // Every boundary crossing between devices is one transfer per
+        // micro-batch and direction; boundaries inside a device move nothing.
+        let crossing = (0..pieces.saturating_sub(1)).filter(|&k| k as u32 % c.p != (k as u32 + 1) % c.p).count();
+        prop_assert_eq!(trace.transfers.len(), 2 * crossing * c.m as usize);
+
         // Same input, byte-identical outputs.
         let again = baton::simulate(&scenario(&c)).unwrap();
         prop_assert!(outputs(trace, report) == outputs(&again.trace, &again.report));
+    }
+}
+
+/// A random scenario with a random input split and memory limit, for `baton split`.
+#[derive(Debug, Clone)]
+struct SplitCase {
+    p: u32,
+    m: u32,
+    v: u32,
+    schedule: &'static str,
+    /// forward us, backward us, activation kB, stash kB, params k.
+    layers: Vec<(u32, u32, u32, u32, u32)>,
+    /// Layers per piece of the input split.
+    split: Vec<u32>,
+    latency_us: u32,
+    gbps: u32,
+    memory_mb: Option<u32>,
+}
+
+fn split_case() -> impl Strategy<Value = SplitCase> {
+    (1u32..5, 1u32..4, 0usize..3, 1u32..3, 0u32..3, 0u32..50, 1u32..50, 0usize..8, prop::option::of(50u32..400))
+        .prop_flat_map(|(p, mult, k, v, extra, latency_us, gbps, more, memory_mb)| {
+            let schedule = ["fill-drain", "1f1b", "interleaved"][k];
+            let (m, v) = if schedule == "interleaved" { (p * mult, v) } else { (p * mult + extra, 1) };
+            let pieces = (p * v) as usize;
+            let n = pieces + more;
+            (
+                prop::collection::vec((1u32..300, 1u32..600, 0u32..20_000, 0u32..20_000, 0u32..2_000), n),
+                prop::sample::subsequence((1..n).collect::<Vec<_>>(), pieces - 1),
+            )
+                .prop_map(move |(layers, cuts)| {
+                    let mut split = Vec::with_capacity(pieces);
+                    let mut at = 0;
+                    for c in cuts.iter().copied().chain([n]) {
+                        split.push((c - at) as u32);
+                        at = c;
+                    }
+                    SplitCase { p, m, v, schedule, layers, split, latency_us, gbps, memory_mb }
+                })
+        })
+}
+
+fn split_scenario(c: &SplitCase) -> Scenario {
+    let mut text = String::from("title: split case\nmodel:\n  layers:\n");
+    for (f, b, a, st, pa) in &c.layers {
+        text +=
+            &format!("    - {{ forward: {f}us, backward: {b}us, activation: {a}kB, stash: {st}kB, params: {pa}k }}\n");
+    }
+    let memory = c.memory_mb.map_or(String::new(), |mb| format!(", device: {{ memory: {mb}MB }}"));
+    let split: Vec<String> = c.split.iter().map(u32::to_string).collect();
+    text += &format!(
+        "cluster: {{ devices: {}, link: {{ latency: {}us, bandwidth: {}GB/s }}{memory} }}\n\
+         pipeline: {{ stages: {}, micro_batches: {}, schedule: {}, chunks: {}, split: [{}] }}\n",
+        c.p,
+        c.latency_us,
+        c.gbps,
+        c.p,
+        c.m,
+        c.schedule,
+        c.v,
+        split.join(", ")
+    );
+    parse(&text, "split.yaml", "split", &[]).unwrap()
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 48, ..ProptestConfig::default() })]
+
+    /// `baton split` never proposes a split slower than the scenario's own
+    /// when that one fits, the proposal fits whenever the input does, and it
+    /// keeps the input when nothing found is faster.
+    #[test]
+    fn split_is_never_slower_than_a_fitting_input(c in split_case()) {
+        let s = split_scenario(&c);
+        let input = baton::simulate(&s).unwrap().report;
+        let plan = baton::planner::plan(&s).unwrap();
+        let best = &plan.best.outcome.report;
+        prop_assert_eq!(plan.baseline.outcome.report.step_time_ns, input.step_time_ns);
+        if input.fits {
+            prop_assert!(plan.no_fit.is_none());
+            prop_assert!(best.fits);
+            prop_assert!(best.step_time_ns <= input.step_time_ns, "{} > {}", best.step_time_ns, input.step_time_ns);
+            if best.step_time_ns == input.step_time_ns {
+                prop_assert_eq!(&plan.best.split, &c.split, "no change for no gain");
+                prop_assert!(plan.baseline_is_best);
+            }
+        }
+        // The proposal, simulated on its own, is what the plan reports.
+        let again = baton::simulate(&{
+            let mut t = s.clone();
+            t.pipeline.split = plan.best.split.clone();
+            t
+        })
+        .unwrap()
+        .report;
+        prop_assert_eq!(again.step_time_ns, best.step_time_ns);
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 256, ..ProptestConfig::default() })]
+
+    /// baton's step time and busy times equal those of the reference model in
+    /// tests/common (written from the README's rules, sharing no code with
+    /// baton) for fill-drain and 1F1B on flat clusters, whenever no two
+    /// transfers are on one link at once (the reference does not model sharing).
+    #[test]
+    fn steps_match_the_reference_model(
+        stages in prop::collection::vec((1u64..500, 0u64..900, 0u64..4_000), 1..6),
+        m in 1usize..10,
+        one_f_one_b in any::<bool>(),
+        latency_us in 0u64..30,
+        gbps in 1u64..40,
+    ) {
+        let schedule = if one_f_one_b { "1f1b" } else { "fill-drain" };
+        let p = stages.len();
+        let mut text = String::from("title: reference\nmodel:\n  layers:\n");
+        for (f, b, kb) in &stages {
+            text += &format!("    - {{ forward: {f}us, backward: {b}us, activation: {kb}kB }}\n");
+        }
+        text += &format!(
+            "cluster: {{ devices: {p}, link: {{ latency: {latency_us}us, bandwidth: {gbps}GB/s }} }}\n\
+             pipeline: {{ stages: {p}, micro_batches: {m}, schedule: {schedule} }}\n"
+        );
+        let s = parse(&text, "reference.yaml", "reference", &[]).unwrap();
+        let r = baton::simulate(&s).unwrap().report;
+        let reference: Vec<common::RefStage> = stages
+            .iter()
+            .map(|&(f, b, kb)| common::RefStage { forward_ns: f * 1_000, backward_ns: b * 1_000, send_bytes: kb * 1_000 })
+            .collect();
+        if let Some(want) = common::reference_step(&reference, m, schedule, latency_us * 1_000, gbps * 1_000_000_000) {
+            prop_assert_eq!(r.step_time_ns, want.step_ns);
+            let busy: Vec<u64> = r.devices.iter().map(|d| d.busy_ns).collect();
+            prop_assert_eq!(busy, want.busy_ns);
+        }
     }
 }

@@ -1,5 +1,7 @@
 //! `baton sweep`, `baton merge` and `baton compare` as a user runs them.
 
+mod common;
+
 use std::path::Path;
 use std::process::{Command, Output};
 
@@ -295,8 +297,30 @@ fn compare_shows_differences_and_stacks_charts() {
     let out = baton(&["compare", DEMO, "--set", "pipeline.split=[4, 3, 3, 2]", "--svg", svg.to_str().unwrap()]);
     ok(&out);
     let t = text(&out.stdout);
+    // The two step times from the reference model in tests/common (written
+    // from the README's rules; no transfer shares a link in either run), and
+    // the difference and ratio from them.
+    let ms = 1_000_000;
+    let mib = 1 << 20;
+    let mut layers = vec![(600_000, 1_200_000, 12 * mib)];
+    layers.extend([(1_100_000, 2_200_000, 12 * mib); 10]);
+    layers.push((2_400_000, 4_800_000, 12 * mib));
+    let step_of = |split: &[usize]| {
+        common::reference_step(&common::stages_of(&layers, split), 8, "1f1b", 4_000, 48_000_000_000).unwrap().step_ns
+    };
+    let (a, b) = (step_of(&[3, 3, 3, 3]), step_of(&[4, 3, 3, 2]));
+    let (a_ms, b_ms) = (a as f64 / ms as f64, b as f64 / ms as f64);
+    let expected = [
+        format!("{a_ms:.3} ms"),
+        format!("{b_ms:.3} ms"),
+        format!("{:.3} ms", b_ms - a_ms),
+        format!("x{:.3}", b as f64 / a as f64),
+    ];
+    assert_eq!(expected, ["140.197 ms", "122.294 ms", "-17.903 ms", "x0.872"], "the README's figures");
     let step = t.lines().find(|l| l.starts_with("step time")).unwrap();
-    assert!(step.contains("140.197 ms") && step.contains("122.294 ms") && step.contains("x0.872"), "{step}");
+    for e in &expected {
+        assert!(step.contains(e.as_str()), "{step} lacks {e}");
+    }
     let chart = std::fs::read_to_string(&svg).unwrap();
     assert!(chart.contains("A: device 3") && chart.contains("B: device 0"));
     assert!(chart.matches("<title>").count() >= 128, "both runs' bars have tooltips");

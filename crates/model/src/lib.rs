@@ -225,9 +225,24 @@ mod tests {
         assert_eq!(speed.time_ns(1e12), 5_000_000);
         let table = t.layer_table(2, speed);
         assert_eq!(table.len(), 4);
-        assert_eq!(table[1].backward_ns, speed.time_ns(2.0 * t.layer_forward_flops(2)));
+        // b = 2, s = 512, h = 1024 at 400e12 x 0.5 = 2e14 FLOP/s:
+        // forward 24 x 2 x 512 x 1024^2 + 4 x 2 x 512^2 x 1024
+        //   = 25,769,803,776 + 2,147,483,648 = 27,917,287,424 FLOPs
+        //   -> 139,586.437 ns, rounded 139,586; backward twice: 279,172.874 -> 279,173.
+        assert_eq!((table[1].forward_ns, table[1].backward_ns), (139_586, 279_173));
+        // Logit layer 2 b s h V = 2 x 2 x 512 x 1024 x 1000 = 2,097,152,000 FLOPs -> 10,485.76 ns.
+        assert_eq!((table[3].forward_ns, table[3].backward_ns), (10_486, 20_972));
         assert_eq!(table[1].activation_bytes, 2 * 512 * 2 * 1024);
-        assert_eq!(table.iter().map(|l| l.params).sum::<u64>(), t.total_params());
+        // Parameters: 12 h^2 + 13 h = 12,582,912 + 13,312 = 12,596,224 per layer;
+        // embeddings (V + s) h = 1,512 x 1024 = 1,548,288; in all
+        // 2 x 12,596,224 + 1,548,288 = 26,740,736. The logit layer's own
+        // parameters are 0; it shares V h = 1,024,000 with the embedding.
+        let params: Vec<u64> = table.iter().map(|l| l.params).collect();
+        assert_eq!(params, vec![1_548_288, 12_596_224, 12_596_224, 0]);
+        assert_eq!(params.iter().sum::<u64>(), 26_740_736);
+        assert_eq!(t.total_params(), 26_740_736);
+        assert_eq!(table[3].tied_params, 1_024_000);
+        assert!(table[..3].iter().all(|l| l.tied_params == 0));
         // Kaplan et al., "Scaling Laws for Neural Language Models", 2020, sec. 2.1:
         // training costs about 6 N FLOPs per token. Without the attention term
         // (4 b s^2 h), forward + backward of a layer per token is
