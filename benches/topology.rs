@@ -37,8 +37,8 @@ fn scenario(activation: &str) -> Scenario {
 fn contention(c: &mut Criterion) {
     let mut group = c.benchmark_group("contention");
     group.sample_size(10).measurement_time(Duration::from_secs(10)).warm_up_time(Duration::from_secs(1));
-    // 4 MiB keeps the cards about 70% busy with up to 12 transfers sharing one;
-    // 16 MiB oversubscribes them (busy 96% of the step, up to 20 at once).
+    // 4 MiB keeps the cards 67-72% busy with up to 13 transfers sharing one;
+    // 16 MiB oversubscribes them (busy 95-97% of the step, up to 50 at once).
     for activation in ["4MiB", "16MiB"] {
         let s = scenario(activation);
         let probe = baton::simulate(&s).expect("simulates");
