@@ -44,7 +44,7 @@ enum Command {
     /// within each device's memory, then refine it by simulation.
     #[command(after_help = concat!("Examples:\n  \
         baton split scenarios/heavy-head.yaml\n  \
-        baton split scenarios/heavy-head.yaml --stages 8 --json split.json\n  \
+        baton split scenarios/choose-m.yaml --stages 4 --json split.json\n  \
         baton split scenarios/heavy-head.yaml --apply heavy-head-split.yaml\n  \
         baton split scenarios/interleaved.yaml --chunks 2 --set pipeline.micro_batches=16\n\n\
         Exit status: 0 a split fits, 3 no split fits in memory, 2 invalid scenario or usage, 1 anything else.", outputs_note!()))]
