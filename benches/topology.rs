@@ -46,11 +46,8 @@ fn contention(c: &mut Criterion) {
         // The simulation itself: engine, executor and link network.
         let plan = baton::schedule::build(s.pipeline.schedule, s.shape()).expect("plan");
         let costs = baton::stage_costs(&s);
-        let placement: Vec<u32> = (0..s.pipeline.stages).collect();
         group.bench_with_input(BenchmarkId::new("simulate-p64-8-nodes-spread-m1024", activation), &s, |b, s| {
-            b.iter(|| {
-                baton::executor::simulate(plan.clone(), &costs, baton::topology(s), &placement).expect("simulates")
-            })
+            b.iter(|| baton::executor::simulate(plan.clone(), &costs, baton::topology(s)).expect("simulates"))
         });
         // The same plus building the plan and the report, as `baton run` does.
         group.bench_with_input(BenchmarkId::new("run-p64-8-nodes-spread-m1024", activation), &s, |b, s| {

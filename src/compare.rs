@@ -1,15 +1,108 @@
 //! `baton compare`: several simulated steps side by side.
 
 use std::fmt::Write as _;
+use std::path::PathBuf;
 
 use baton_engine::format_ns;
-use baton_report::{format_bytes, Report};
+use baton_report::svg::gantt::{self, GanttOptions, Run};
+use baton_report::{format_bytes, Report, ReportError};
+use baton_scenario::{Scenario, ScenarioError};
+use thiserror::Error;
+
+use crate::{simulate, Outcome, SimulateError};
 
 /// A compared run: a short label (`A`, `B`, ...), where it came from, its report.
 pub struct Entry<'a> {
+    /// `A`, `B`, ...
     pub label: String,
+    /// The scenario file (and the `--set` that made a variant).
     pub source: String,
+    /// Its report.
     pub report: &'a Report,
+}
+
+/// Why runs could not be compared.
+#[derive(Debug, Error)]
+pub enum CompareError {
+    /// A scenario was refused.
+    #[error(transparent)]
+    Scenario(#[from] ScenarioError),
+    /// Fewer than two runs.
+    #[error("give two or more scenarios, or one with --set to compare it with a variant")]
+    TooFew,
+}
+
+/// The runs `baton compare` compares: each scenario with `sets` applied, or
+/// with a single scenario, it and its variant made by `sets`.
+pub fn scenarios(paths: &[PathBuf], sets: &[String]) -> Result<Vec<(String, Scenario)>, CompareError> {
+    let mut runs = Vec::new();
+    let variant = paths.len() == 1 && !sets.is_empty();
+    for (i, path) in paths.iter().enumerate() {
+        let these: &[String] = if variant { &[] } else { sets };
+        runs.push((path.display().to_string(), baton_scenario::load(path, these)?));
+        if variant && i == 0 {
+            let desc = sets.iter().map(|x| format!("--set {x}")).collect::<Vec<_>>().join(" ");
+            runs.push((format!("{} {desc}", path.display()), baton_scenario::load(path, sets)?));
+        }
+    }
+    if runs.len() < 2 {
+        return Err(CompareError::TooFew);
+    }
+    Ok(runs)
+}
+
+/// Simulated runs, side by side.
+pub struct Comparison {
+    sources: Vec<String>,
+    outcomes: Vec<Outcome>,
+}
+
+/// The label of run `i`: `A` to `H`, then `R9`, `R10`, ...
+fn label(i: usize) -> String {
+    let letters = ["A", "B", "C", "D", "E", "F", "G", "H"];
+    letters.get(i).map_or_else(|| format!("R{}", i + 1), |l| l.to_string())
+}
+
+impl Comparison {
+    /// Simulates each `(source, scenario)`.
+    pub fn run(runs: &[(String, Scenario)]) -> Result<Self, SimulateError> {
+        let outcomes = runs.iter().map(|(_, s)| simulate(s)).collect::<Result<Vec<_>, _>>()?;
+        Ok(Comparison { sources: runs.iter().map(|(src, _)| src.clone()).collect(), outcomes })
+    }
+
+    fn entries(&self) -> Vec<Entry<'_>> {
+        self.outcomes
+            .iter()
+            .enumerate()
+            .map(|(i, o)| Entry { label: label(i), source: self.sources[i].clone(), report: &o.report })
+            .collect()
+    }
+
+    /// The side-by-side table.
+    pub fn table(&self) -> String {
+        table(&self.entries())
+    }
+
+    /// The runs' Gantt charts stacked on one time axis.
+    pub fn chart(&self, comm_lanes: bool) -> Result<String, ReportError> {
+        let runs: Vec<Run<'_>> = self
+            .outcomes
+            .iter()
+            .enumerate()
+            .map(|(i, o)| Run { trace: &o.trace, report: &o.report, label: label(i) })
+            .collect();
+        let title = format!(
+            "Comparison: {}",
+            self.entries().iter().map(|e| format!("{} {}", e.label, e.report.title)).collect::<Vec<_>>().join(" / ")
+        );
+        gantt::render(&runs, &GanttOptions { comm_lanes, title: Some(title) })
+    }
+
+    /// The reports as a JSON array.
+    pub fn json(&self) -> Result<String, serde_json::Error> {
+        let reports: Vec<&Report> = self.outcomes.iter().map(|o| &o.report).collect();
+        Ok(format!("{}\n", serde_json::to_string_pretty(&reports)?))
+    }
 }
 
 fn ratio(a: f64, b: f64) -> String {

@@ -5,7 +5,9 @@
 //! (`baton-schedule`), per-stage costs and a link topology (`baton-link`); the
 //! executor (`baton-executor`) plays the step on the event engine
 //! (`baton-engine`), and `baton-report` turns the trace into numbers and charts.
+#![warn(missing_docs)]
 
+pub mod commands;
 pub mod compare;
 pub mod planner;
 pub mod sweep;
@@ -27,27 +29,36 @@ use thiserror::Error;
 /// A simulated step and its report.
 #[derive(Clone, Debug)]
 pub struct Outcome {
+    /// Every op and transfer as it ran.
     pub trace: Trace,
+    /// What it means.
     pub report: Report,
 }
 
+/// Why a scenario could not be simulated.
 #[derive(Debug, Error)]
 pub enum SimulateError {
+    /// The schedule cannot be built for the scenario's shape.
     #[error("cannot build the schedule: {0}")]
     Schedule(#[from] baton_schedule::ScheduleError),
+    /// The executor refused the inputs or stopped with work left.
     #[error("cannot simulate: {0}")]
     Exec(#[from] ExecError),
+}
+
+impl SimulateError {
+    /// Whether this is the simulation's own fault rather than the input's: a
+    /// valid plan that stopped with work left.
+    pub fn is_internal(&self) -> bool {
+        matches!(self, SimulateError::Exec(ExecError::Stuck { .. }))
+    }
 }
 
 /// Per-virtual-stage costs of a scenario's split.
 pub fn stage_costs(s: &Scenario) -> Vec<StageCost> {
     s.pieces()
         .iter()
-        .map(|p| StageCost {
-            forward: SimDuration(p.forward_ns),
-            backward: SimDuration(p.backward_ns),
-            send_bytes: p.send_bytes,
-        })
+        .map(|p| StageCost::new(SimDuration(p.forward_ns), SimDuration(p.backward_ns), p.send_bytes))
         .collect()
 }
 
@@ -143,16 +154,14 @@ pub fn labels(s: &Scenario) -> Labels {
         micro_batch_size: s.pipeline.micro_batch_size,
         recompute: s.training.recompute.name().to_string(),
         memory: memory_inputs(s),
-        placement: s.placement.clone(),
     }
 }
 
 /// Simulates one training step of `s` and reports on it.
 pub fn simulate(s: &Scenario) -> Result<Outcome, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
-    let placement: Vec<u32> = (0..s.pipeline.stages).collect();
     let variation = RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends };
-    let trace = baton_executor::simulate_with(plan, &stage_costs(s), topology(s), &placement, variation)?;
+    let trace = baton_executor::simulate_with(plan, &stage_costs(s), topology(s), variation)?;
     let report = baton_report::build(&trace, &labels(s));
     Ok(Outcome { trace, report })
 }

@@ -9,70 +9,89 @@
 //!    shortens the simulated step the most, while the step time drops and
 //!    every device still fits its memory.
 
-use baton_scenario::{Recompute, Scenario};
-use baton_schedule::{OpKind, Plan};
-use baton_split::{Layer, Memory, Outcome, Problem, Solution};
+use std::fmt::Write as _;
+use std::path::Path;
 
-pub use baton_split::{evaluate, Problem as SplitProblem, Solution as SplitSolution};
+use baton_engine::format_ns;
+use baton_report::format_bytes;
+use baton_scenario::{PieceCosts, Scenario};
+use baton_split::{Memory, Outcome, Pieces, Problem, Solution};
+use serde::Serialize;
+
+pub use baton_split::{evaluate, Solution as SplitSolution};
 
 use crate::{simulate, Outcome as Sim, SimulateError};
 
 /// Upper bound on the simulations the local search runs.
 pub const MAX_SEARCH_SIMULATIONS: usize = 2_000;
 
-/// Micro-batches held at once on each virtual stage, read off the schedule's
-/// per-device orders (each device runs its ops one at a time, so counting
-/// forwards up and backwards down in order gives the peak).
-pub fn in_flight(plan: &Plan) -> Vec<u64> {
-    let n = plan.shape.virtual_stages() as usize;
-    let (mut held, mut peak) = (vec![0u64; n], vec![0u64; n]);
-    for ops in &plan.per_device {
-        for op in ops {
-            let s = op.stage as usize;
-            match op.kind {
-                OpKind::Forward => {
-                    held[s] += 1;
-                    peak[s] = peak[s].max(held[s]);
-                }
-                OpKind::Backward => held[s] = held[s].saturating_sub(1),
-            }
-        }
+/// A scenario's pieces as the split search prices them: time from the
+/// scenario's piece rule, memory = model state + stash x the micro-batches
+/// the schedule keeps in flight on the piece ([`baton_schedule::peak_stashes`]).
+#[derive(Clone, Debug)]
+pub struct ScenarioPieces {
+    costs: PieceCosts,
+    in_flight: Vec<u64>,
+    bytes_per_param: u64,
+}
+
+impl Pieces for ScenarioPieces {
+    fn layers(&self) -> usize {
+        self.costs.layers()
     }
-    peak
+    fn time_ns(&self, a: usize, b: usize) -> u128 {
+        self.costs.time_ns(a, b)
+    }
+    fn bytes(&self, k: usize, a: usize, b: usize) -> u128 {
+        let state = self.costs.params(k, a, b) * self.bytes_per_param as u128;
+        state + self.in_flight[k] as u128 * self.costs.stash_bytes(a, b)
+    }
+    fn position_independent(&self) -> bool {
+        self.costs.position_independent() && self.in_flight.windows(2).all(|w| w[0] == w[1])
+    }
+}
+
+/// Everything the split search needs of a scenario.
+#[derive(Clone, Debug)]
+pub struct SplitInputs {
+    pieces: ScenarioPieces,
+    devices: usize,
+    chunks: usize,
+    memory: Option<Memory>,
+}
+
+impl SplitInputs {
+    /// The split problem, borrowing these inputs.
+    pub fn problem(&self) -> Problem<'_> {
+        Problem { pieces: &self.pieces, devices: self.devices, chunks: self.chunks, memory: self.memory }
+    }
 }
 
 /// The split problem a scenario poses.
-pub fn problem(s: &Scenario) -> Result<Problem, SimulateError> {
+pub fn inputs(s: &Scenario) -> Result<SplitInputs, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
-    let recompute = s.training.recompute == Recompute::Full;
-    Ok(Problem {
-        layers: s
-            .layers
-            .iter()
-            .map(|l| Layer {
-                cost_ns: l.forward_ns + l.backward_ns + if recompute { l.forward_ns } else { 0 },
-                params: l.params,
-                tied_params: l.tied_params,
-                stash_bytes: l.stash_bytes,
-                activation_bytes: l.activation_bytes,
-            })
-            .collect(),
+    Ok(SplitInputs {
+        pieces: ScenarioPieces {
+            costs: s.piece_costs(),
+            in_flight: baton_schedule::peak_stashes(&plan),
+            bytes_per_param: s.training.state_bytes_per_param,
+        },
         devices: s.pipeline.stages as usize,
         chunks: s.pipeline.chunks as usize,
-        in_flight: in_flight(&plan),
-        memory: s.cluster.device.memory_bytes.map(|capacity_bytes| Memory {
-            capacity_bytes,
-            reserved_bytes: s.training.reserved_bytes,
-            state_bytes_per_param: s.training.state_bytes_per_param,
-            recompute,
-        }),
+        memory: s
+            .cluster
+            .device
+            .memory_bytes
+            .map(|capacity_bytes| Memory { capacity_bytes, reserved_bytes: s.training.reserved_bytes }),
     })
 }
 
 /// A split and its simulated step.
 #[derive(Clone, Debug)]
 pub struct Candidate {
+    /// Layers per piece.
     pub split: Vec<u32>,
+    /// Its simulated step.
     pub outcome: Sim,
 }
 
@@ -92,6 +111,7 @@ pub enum Start {
 }
 
 impl Start {
+    /// `proxy` or `scenario`, as the JSON says.
     pub fn name(self) -> &'static str {
         match self {
             Start::Proxy => "proxy",
@@ -107,6 +127,7 @@ pub struct SplitPlan {
     pub baseline: Candidate,
     /// The exact proxy's answer, and its simulation.
     pub proxy: Solution,
+    /// The proxy's split, simulated.
     pub proxy_run: Candidate,
     /// The best split found: never slower than the scenario's own when that
     /// fits, and the scenario's own when nothing found is faster.
@@ -178,9 +199,9 @@ fn local_search(s: &Scenario, from: Candidate, budget: &mut usize) -> Result<(Ca
 /// the scenario's split (no change for no gain). So the proposal is never
 /// slower than a scenario split that fits.
 pub fn plan(s: &Scenario) -> Result<SplitPlan, PlanError> {
-    let problem = problem(s)?;
+    let inputs = inputs(s)?;
     let baseline = run(s, &s.pipeline.split)?;
-    let (proxy, mut no_fit) = match baton_split::solve(&problem)? {
+    let (proxy, mut no_fit) = match baton_split::solve(&inputs.problem())? {
         Outcome::Fits(sol) => (sol, None),
         Outcome::NoFit { shortfall_bytes, device, closest } => (closest, Some((shortfall_bytes, device))),
     };
@@ -225,28 +246,322 @@ pub fn plan(s: &Scenario) -> Result<SplitPlan, PlanError> {
     Ok(SplitPlan { baseline, proxy, proxy_run, best, start, moves, simulations, baseline_is_best, no_fit })
 }
 
+/// Why a split could not be planned.
 #[derive(Debug, thiserror::Error)]
 pub enum PlanError {
+    /// A candidate could not be simulated.
     #[error(transparent)]
     Simulate(#[from] SimulateError),
+    /// The split search refused the problem.
     #[error("cannot split: {0}")]
     Split(#[from] baton_split::SplitError),
+    /// The scenario file could not be rewritten with the proposed split.
+    #[error("{0}")]
+    Apply(String),
 }
 
-#[cfg(test)]
-mod tests {
-    use super::*;
-    use baton_schedule::{build, ScheduleKind, Shape};
+/// One device of the proposed split, as the JSON lists it.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct SplitDevice {
+    /// Pipeline device.
+    pub device: u32,
+    /// Whether its simulated peak fits its capacity.
+    pub fits: bool,
+    /// Its capacity (`null` when unlimited).
+    pub memory_capacity_bytes: Option<u64>,
+    /// Its simulated peak memory.
+    pub peak_memory_bytes: u64,
+    /// Forward + backward time of its pieces per micro-batch, in ms.
+    pub time_per_micro_batch_ms: f64,
+}
 
-    #[test]
-    fn in_flight_follows_the_schedule() {
-        // Narayanan et al., ICML 2021, sec. 3: 1F1B keeps at most p - d micro-batches
-        // in flight on device d; fill-drain keeps all m.
-        let p = build(ScheduleKind::OneFOneB, Shape::new(4, 8, 1)).unwrap();
-        assert_eq!(in_flight(&p), vec![4, 3, 2, 1]);
-        let p = build(ScheduleKind::FillDrain, Shape::new(4, 8, 1)).unwrap();
-        assert_eq!(in_flight(&p), vec![8, 8, 8, 8]);
-        let p = build(ScheduleKind::OneFOneB, Shape::new(4, 2, 1)).unwrap();
-        assert_eq!(in_flight(&p), vec![2, 2, 2, 1]);
+/// What `baton split` reports: its JSON (fields in alphabetical order, as
+/// earlier versions wrote them) and, through [`SplitReport::text`], its
+/// summary.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct SplitReport {
+    /// The scenario's own split's bubble fraction.
+    pub baseline_bubble_fraction: f64,
+    /// Whether the scenario's own split fits.
+    pub baseline_fits: bool,
+    /// The scenario's split fits and nothing found is faster.
+    pub baseline_is_best: bool,
+    /// The scenario's own split.
+    pub baseline_split: Vec<u32>,
+    /// The scenario's own split's step time.
+    pub baseline_step_time_ms: f64,
+    /// The proposal's largest device time per micro-batch.
+    pub bottleneck_ms: f64,
+    /// The proposal's bubble fraction.
+    pub bubble_fraction: f64,
+    /// Chunks per device.
+    pub chunks: u32,
+    /// The proposal, per device.
+    pub devices: Vec<SplitDevice>,
+    /// Whether the proposal fits in memory.
+    pub fits: bool,
+    /// Largest over mean device time.
+    pub imbalance: f64,
+    /// How much faster the winning local search made its start.
+    pub local_search_gain_ms: f64,
+    /// Moves the winning local search kept.
+    pub local_search_moves: usize,
+    /// Simulations run in all.
+    pub local_search_simulations: usize,
+    /// `proxy` or `scenario`: where the winning search started.
+    pub local_search_start: &'static str,
+    /// Micro-batches per step.
+    pub micro_batches: u32,
+    /// The proxy's largest device time per micro-batch.
+    pub proxy_bottleneck_ms: f64,
+    /// Whether the proxy is proven optimal.
+    pub proxy_exact: bool,
+    /// The proxy's split.
+    pub proxy_split: Vec<u32>,
+    /// The proxy's simulated step time.
+    pub proxy_step_time_ms: f64,
+    /// The proposal's throughput.
+    pub samples_per_s: f64,
+    /// The schedule's name.
+    pub schedule: &'static str,
+    /// When nothing fits: the device short in the closest split.
+    pub short_device: Option<usize>,
+    /// When nothing fits: bytes more each device would need.
+    pub shortfall_bytes: Option<u64>,
+    /// The proposal (or the closest split when nothing fits).
+    pub split: Vec<u32>,
+    /// Pipeline stages.
+    pub stages: u32,
+    /// The proposal's step time.
+    pub step_time_ms: f64,
+    /// The scenario's title.
+    pub title: String,
+    #[serde(skip)]
+    text: String,
+}
+
+fn list(split: &[u32]) -> String {
+    format!("[{}]", split.iter().map(u32::to_string).collect::<Vec<_>>().join(", "))
+}
+
+fn ms(ns: u64) -> f64 {
+    ns as f64 / 1e6
+}
+
+impl SplitReport {
+    /// The summary `baton split` prints.
+    pub fn text(&self) -> &str {
+        &self.text
     }
+}
+
+/// The report of `plan` for scenario `s`.
+pub fn report(s: &Scenario, plan: &SplitPlan) -> Result<SplitReport, PlanError> {
+    let inputs = inputs(s)?;
+    let eval = evaluate(&inputs.problem(), &plan.best.split)?;
+    let costs = s.piece_costs();
+    let best = &plan.best.outcome.report;
+    let base = &plan.baseline.outcome.report;
+    let proxy = &plan.proxy_run.outcome.report;
+    let p = s.pipeline.stages as usize;
+    let mean = eval.device_ns.iter().sum::<u64>() as f64 / p as f64;
+    let bottleneck_ns = eval.device_ns.iter().copied().max().unwrap_or(0);
+    let imbalance = if mean > 0.0 { bottleneck_ns as f64 / mean } else { 1.0 };
+    let fits = plan.no_fit.is_none() && best.fits;
+
+    let mut out = String::new();
+    let _ = writeln!(
+        out,
+        "{}: {} layers into {} pieces ({} stages x {} chunk{}), schedule {}, {} micro-batches",
+        s.title,
+        s.layers.len(),
+        plan.best.split.len(),
+        s.pipeline.stages,
+        s.pipeline.chunks,
+        if s.pipeline.chunks == 1 { "" } else { "s" },
+        s.pipeline.schedule,
+        s.pipeline.micro_batches
+    );
+    let _ = writeln!(out);
+    if let Some((short, device)) = plan.no_fit {
+        let cap = s.cluster.device.memory_bytes.map_or_else(|| "unlimited".into(), format_bytes);
+        let _ = writeln!(
+            out,
+            "NO SPLIT FITS in {cap} per device: the closest split, {}, leaves device {device} short by {} ({short} bytes).",
+            list(&plan.proxy.split),
+            format_bytes(short)
+        );
+        let _ = writeln!(out, "Use more stages, fewer micro-batches in flight, recomputation or a larger device.");
+        let _ = writeln!(out);
+    }
+    let label = if plan.no_fit.is_some() { "closest split" } else { "proposed split" };
+    let _ = writeln!(out, "{label} {}", list(&plan.best.split));
+    let _ = writeln!(
+        out,
+        "{:>6}  {:>6}  {:>14}  {:>14}  {:>25}",
+        "piece", "device", "layers", "time / mb", "peak mem / capacity"
+    );
+    let mut first = 0usize;
+    for (k, &n) in plan.best.split.iter().enumerate() {
+        let d = k % p;
+        let dev = &best.devices[d];
+        let cap = dev.memory_capacity_bytes.map_or_else(|| "unlimited".into(), format_bytes);
+        let layers = format!("{}..{} ({n})", first, first + n as usize - 1);
+        let piece_ns = costs.time_ns(first, first + n as usize).min(u64::MAX as u128) as u64;
+        let _ = writeln!(
+            out,
+            "{:>6}  {:>6}  {:>14}  {:>14}  {:>25}{}",
+            k,
+            d,
+            layers,
+            format_ns(piece_ns),
+            format!("{} / {}", format_bytes(dev.peak_memory_bytes), cap),
+            if dev.fits { "" } else { "  OVER" }
+        );
+        first += n as usize;
+    }
+    let _ = writeln!(
+        out,
+        "bottleneck {} per micro-batch (device {}), imbalance {:.3} (max / mean device time)",
+        format_ns(bottleneck_ns),
+        eval.device_ns.iter().position(|&x| x == bottleneck_ns).unwrap_or(0),
+        imbalance
+    );
+    let _ = writeln!(out);
+    let start_report = match plan.start {
+        Start::Proxy => proxy,
+        Start::Scenario => base,
+    };
+    let gain_ns = start_report.step_time_ns.saturating_sub(best.step_time_ns);
+    let proxy_name = if plan.proxy.exact { "exact" } else { "best-found (search budget reached)" };
+    let _ = writeln!(
+        out,
+        "{proxy_name} split {} (bottleneck {}): simulated step {}",
+        list(&plan.proxy.split),
+        format_ns(plan.proxy.device_ns.iter().copied().max().unwrap_or(0)),
+        format_ns(proxy.step_time_ns),
+    );
+    if plan.no_fit.is_none() {
+        let searched_baseline = base.fits && plan.baseline.split != plan.proxy.split;
+        let _ = writeln!(
+            out,
+            "local search on the simulated step from the {}{}: {} move(s) from the {} split, {} ({:.2}%) faster than it; {} simulations",
+            if plan.proxy.exact { "exact split" } else { "proxy's split" },
+            if searched_baseline { " and from the scenario's split" } else { "" },
+            plan.moves,
+            if plan.start == Start::Scenario { "scenario's" } else { proxy_name.split(' ').next().unwrap_or("exact") },
+            format_ns(gain_ns),
+            if start_report.step_time_ns > 0 { gain_ns as f64 * 100.0 / start_report.step_time_ns as f64 } else { 0.0 },
+            plan.simulations,
+        );
+        if plan.baseline_is_best {
+            let _ = writeln!(
+                out,
+                "the scenario's split {} is already the best found: no change proposed",
+                list(&plan.baseline.split)
+            );
+        }
+    }
+    let _ = writeln!(out);
+    let fits_text = |r: &baton_report::Report| {
+        if r.fits {
+            "yes".to_string()
+        } else {
+            let over: Vec<String> = r.over_capacity().iter().map(u32::to_string).collect();
+            format!("no (device {})", over.join(", "))
+        }
+    };
+    let rows: [(&str, String, String); 5] = [
+        ("split", list(&plan.baseline.split), list(&plan.best.split)),
+        ("step time", format_ns(base.step_time_ns), format_ns(best.step_time_ns)),
+        ("bubble", format!("{:.2}%", base.bubble_fraction * 100.0), format!("{:.2}%", best.bubble_fraction * 100.0)),
+        ("samples/s", format!("{:.2}", base.samples_per_s), format!("{:.2}", best.samples_per_s)),
+        ("fits memory", fits_text(base), fits_text(best)),
+    ];
+    let width = rows.iter().map(|r| r.1.len() + 2).max().unwrap_or(0).max(28);
+    let _ = writeln!(out, "{:<14} {:<width$} {}", "", "scenario split", label);
+    for (name, a, b) in rows {
+        let _ = writeln!(out, "{name:<14} {a:<width$} {b}");
+    }
+
+    Ok(SplitReport {
+        baseline_bubble_fraction: base.bubble_fraction,
+        baseline_fits: base.fits,
+        baseline_is_best: plan.baseline_is_best,
+        baseline_split: plan.baseline.split.clone(),
+        baseline_step_time_ms: base.step_time_ms,
+        bottleneck_ms: ms(bottleneck_ns),
+        bubble_fraction: best.bubble_fraction,
+        chunks: s.pipeline.chunks,
+        devices: best
+            .devices
+            .iter()
+            .map(|d| SplitDevice {
+                device: d.device,
+                fits: d.fits,
+                memory_capacity_bytes: d.memory_capacity_bytes,
+                peak_memory_bytes: d.peak_memory_bytes,
+                time_per_micro_batch_ms: ms(eval.device_ns[d.device as usize]),
+            })
+            .collect(),
+        fits,
+        imbalance,
+        local_search_gain_ms: ms(gain_ns),
+        local_search_moves: plan.moves,
+        local_search_simulations: plan.simulations,
+        local_search_start: plan.start.name(),
+        micro_batches: s.pipeline.micro_batches,
+        proxy_bottleneck_ms: ms(plan.proxy.device_ns.iter().copied().max().unwrap_or(0)),
+        proxy_exact: plan.proxy.exact,
+        proxy_split: plan.proxy.split.clone(),
+        proxy_step_time_ms: proxy.step_time_ms,
+        samples_per_s: best.samples_per_s,
+        schedule: s.pipeline.schedule.name(),
+        short_device: plan.no_fit.map(|x| x.1),
+        shortfall_bytes: plan.no_fit.map(|x| x.0),
+        split: plan.best.split.clone(),
+        stages: s.pipeline.stages,
+        step_time_ms: best.step_time_ms,
+        title: s.title.clone(),
+        text: out,
+    })
+}
+
+/// The scenario file at `path` rewritten with `split` (and `stages`,
+/// `chunks` when given), comments and layout kept; checked to read back as
+/// the same scenario with that split. `dest` names the copy in messages;
+/// `sets` are the overrides the scenario was loaded with.
+pub fn applied_text(
+    path: &Path,
+    dest: &str,
+    scenario: &Scenario,
+    split: &[u32],
+    stages: Option<u32>,
+    chunks: Option<u32>,
+    sets: &[String],
+) -> Result<String, PlanError> {
+    let text =
+        std::fs::read_to_string(path).map_err(|e| PlanError::Apply(format!("cannot read {}: {e}", path.display())))?;
+    let mut edits = vec![("pipeline.split", list(split))];
+    if let Some(n) = stages {
+        edits.push(("pipeline.stages", n.to_string()));
+    }
+    if let Some(v) = chunks {
+        edits.push(("pipeline.chunks", v.to_string()));
+    }
+    let file = path.display().to_string();
+    let new_text =
+        baton_scenario::edit::set_values(&text, &file, &edits).map_err(|e| PlanError::Apply(e.to_string()))?;
+    // The copy must read back as the same scenario with the new split.
+    let check =
+        baton_scenario::parse_in(&new_text, dest, &scenario.title, path.parent().unwrap_or(Path::new("")), sets)
+            .map_err(|e| PlanError::Apply(format!("the rewritten scenario does not read back: {e}")))?;
+    if check.pipeline.split != split {
+        return Err(PlanError::Apply(format!(
+            "the rewritten scenario reads back with split {} instead of {}",
+            list(&check.pipeline.split),
+            list(split)
+        )));
+    }
+    Ok(new_text)
 }

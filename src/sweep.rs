@@ -18,26 +18,54 @@ pub const MAX_POINTS: usize = 1_000_000;
 /// Most values one range may expand to.
 const MAX_RANGE: usize = 100_000;
 
-#[derive(Debug, Error, PartialEq, Eq)]
+/// Why a sweep or merge was refused.
+#[derive(Debug, Error, PartialEq)]
 pub enum SweepError {
+    /// A malformed `--vary`.
     #[error("--vary {arg}: {message}")]
-    Vary { arg: String, message: String },
+    Vary {
+        /// The argument (or key).
+        arg: String,
+        /// What is wrong.
+        message: String,
+    },
+    /// No `--vary`.
     #[error("give at least one --vary KEY=V1,V2,...")]
     NoVary,
+    /// Too many points.
     #[error("the grid has {0} points, more than {MAX_POINTS}")]
     TooLarge(usize),
+    /// A malformed `--shard`.
     #[error("--shard {0}: expected I/N with 1 <= I <= N, e.g. --shard 2/8")]
     Shard(String),
+    /// An unknown `--rank-by`.
     #[error("--rank-by {0}: expected step_time, throughput, bubble or memory")]
     RankBy(String),
+    /// A part that cannot be merged.
     #[error("{file}: {message}")]
-    Merge { file: String, message: String },
+    Merge {
+        /// The part.
+        file: String,
+        /// What is wrong.
+        message: String,
+    },
+    /// `--jobs 0`.
+    #[error("--jobs must be at least 1")]
+    NoJobs,
+    /// The thread pool could not start.
+    #[error("cannot start the worker threads: {0}")]
+    Threads(String),
+    /// The base scenario is refused.
+    #[error(transparent)]
+    Scenario(#[from] baton_scenario::ScenarioError),
 }
 
 /// One `--vary` option: a key and its values, as written.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Vary {
+    /// The dotted key.
     pub key: String,
+    /// Its values, as written.
     pub values: Vec<String>,
 }
 
@@ -128,10 +156,12 @@ pub fn parse_vary(arg: &str) -> Result<Vary, SweepError> {
 /// The cartesian product of several `--vary` lists.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Grid {
+    /// The varied keys, the last varying fastest.
     pub axes: Vec<Vary>,
 }
 
 impl Grid {
+    /// The grid of `axes`; refuses none, a key twice, or too many points.
     pub fn new(axes: Vec<Vary>) -> Result<Self, SweepError> {
         if axes.is_empty() {
             return Err(SweepError::NoVary);
@@ -149,14 +179,17 @@ impl Grid {
         Ok(Grid { axes })
     }
 
+    /// Points in the grid.
     pub fn len(&self) -> usize {
         self.axes.iter().map(|a| a.values.len()).product()
     }
 
+    /// Whether it has no point.
     pub fn is_empty(&self) -> bool {
         self.len() == 0
     }
 
+    /// The varied keys, in order.
     pub fn keys(&self) -> Vec<String> {
         self.axes.iter().map(|a| a.key.clone()).collect()
     }
@@ -180,28 +213,39 @@ impl Grid {
 /// What a sweep records of a simulated point.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Summary {
+    /// Step time.
     pub step_time_ms: f64,
+    /// Overall bubble fraction.
     pub bubble_fraction: f64,
+    /// Throughput.
     pub samples_per_s: f64,
     /// The largest peak memory of any device.
     pub peak_memory_bytes: u64,
+    /// Whether every device fits its memory.
     pub fits: bool,
 }
 
 /// One grid point and its result (or why it was skipped).
 #[derive(Clone, Debug, PartialEq)]
 pub struct Point {
+    /// Its index in the grid.
     pub index: usize,
+    /// Its value of each varied key.
     pub values: Vec<String>,
+    /// What it gave, or why it was skipped.
     pub result: Result<Summary, String>,
 }
 
 /// What a sweep ranks by.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum RankBy {
+    /// Shortest step first.
     StepTime,
+    /// Most samples per second first.
     Throughput,
+    /// Smallest bubble first.
     Bubble,
+    /// Smallest largest peak memory first.
     Memory,
 }
 
@@ -239,6 +283,7 @@ impl RankBy {
         }
     }
 
+    /// The field's name with its unit, for tables and charts.
     pub fn label(self) -> &'static str {
         match self {
             RankBy::StepTime => "step time (ms)",
@@ -489,6 +534,74 @@ fn quote(arg: &str) -> String {
     }
 }
 
+/// What [`execute`] asks for.
+pub struct Request<'a> {
+    /// The scenario, parsed once.
+    pub doc: &'a Document,
+    /// `--set` overrides applied to every point.
+    pub sets: &'a [String],
+    /// The grid of varied values.
+    pub grid: &'a Grid,
+    /// Run only the I-th of N slices of the grid.
+    pub shard: Option<(usize, usize)>,
+    /// Worker threads (`None`: all cores).
+    pub jobs: Option<usize>,
+    /// How points are ranked.
+    pub by: RankBy,
+}
+
+/// The ranked points of a sweep and what it took.
+pub struct Finished {
+    /// The points simulated, ranked.
+    pub points: Vec<Point>,
+    /// Points of the grid this run (or shard) covered.
+    pub covered: usize,
+    /// Wall-clock time the points took.
+    pub elapsed: std::time::Duration,
+}
+
+/// Checks the request, simulates its points in parallel (a progress bar on
+/// standard error when it is a terminal and the sweep runs for more than a
+/// second) and ranks them. The results do not depend on the thread count.
+pub fn execute(r: &Request<'_>) -> Result<Finished, SweepError> {
+    use std::io::IsTerminal;
+    use std::time::{Duration, Instant};
+    if r.jobs == Some(0) {
+        return Err(SweepError::NoJobs);
+    }
+    // The base scenario and every varied key must make sense before the sweep starts.
+    r.doc.scenario(r.sets)?;
+    check_keys(r.doc, r.sets, r.grid)?;
+    let indices: Vec<usize> = match r.shard {
+        Some((i, n)) => shard_indices(r.grid.len(), i, n),
+        None => (0..r.grid.len()).collect(),
+    };
+    let bar =
+        indicatif::ProgressBar::with_draw_target(Some(indices.len() as u64), indicatif::ProgressDrawTarget::hidden());
+    bar.set_style(
+        indicatif::ProgressStyle::with_template("{bar:40} {pos}/{len} points, {eta} left")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    let started = Instant::now();
+    let shown = std::sync::atomic::AtomicBool::new(false);
+    let tty = std::io::stderr().is_terminal();
+    let tick = || {
+        bar.inc(1);
+        if tty && started.elapsed() > Duration::from_secs(1) && !shown.swap(true, std::sync::atomic::Ordering::Relaxed)
+        {
+            bar.set_draw_target(indicatif::ProgressDrawTarget::stderr());
+        }
+    };
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(r.jobs.unwrap_or(0))
+        .build()
+        .map_err(|e| SweepError::Threads(e.to_string()))?;
+    let mut points = pool.install(|| run(r.doc, r.sets, r.grid, &indices, &tick));
+    bar.finish_and_clear();
+    rank(&mut points, r.by);
+    Ok(Finished { points, covered: indices.len(), elapsed: started.elapsed() })
+}
+
 /// The ranked table (at most `limit` rows) with the best point marked, and,
 /// when the scenario path is known, the command that reproduces the best point.
 pub fn table(
@@ -575,24 +688,11 @@ pub fn table(
     s
 }
 
-/// Line colours of the sweep chart (an ordering of well-separated hues).
-const LINE_COLOURS: [(u8, u8, u8); 8] = [
-    (0x1f, 0x5f, 0xa8),
-    (0xd9, 0x6c, 0x06),
-    (0x2a, 0x9d, 0x5c),
-    (0xb8, 0x2e, 0x5a),
-    (0x6a, 0x4c, 0x9c),
-    (0x8a, 0x6d, 0x1f),
-    (0x17, 0x8f, 0x9e),
-    (0x55, 0x55, 0x55),
-];
-
 /// A line chart of the ranking field against the first varied key, one line
 /// per value of the second key. With more keys, each plotted point is the best
 /// over the other keys' values. Skipped points leave gaps.
 pub fn chart(title: &str, grid: &Grid, points: &[Point], by: RankBy) -> Result<String, String> {
-    use plotters::prelude::*;
-    let err = |e: &dyn std::fmt::Debug| format!("cannot draw the chart: {e:?}");
+    use baton_report::svg::line::{self, LineChart, Series};
     let xs = &grid.axes[0].values;
     let lines: Vec<String> = grid.axes.get(1).map_or_else(|| vec![String::new()], |a| a.values.clone());
     // best[line][x] = best point's value there.
@@ -613,85 +713,25 @@ pub fn chart(title: &str, grid: &Grid, points: &[Point], by: RankBy) -> Result<S
             *slot = Some((key, by.value(s)));
         }
     }
-    let values: Vec<f64> = best.iter().flatten().flatten().map(|&(_, v)| v).collect();
-    if values.is_empty() {
+    if best.iter().flatten().all(Option::is_none) {
         return Err("no point was simulated, so there is nothing to chart".into());
     }
-    let (lo, hi) = values.iter().fold((f64::MAX, f64::MIN), |(a, b), &v| (a.min(v), b.max(v)));
-    let pad = ((hi - lo) * 0.08).max(hi.abs() * 0.02).max(1e-9);
-    let (y0, y1) = ((lo - pad).max(if lo >= 0.0 { 0.0 } else { f64::MIN }), hi + pad);
-    let n = xs.len();
-    let mut svg = String::new();
-    {
-        let root = SVGBackend::with_string(&mut svg, (1000, 600)).into_drawing_area();
-        root.fill(&WHITE).map_err(|e| err(&e))?;
-        let caption = format!("{title}: {} by {}", by.label(), grid.axes[0].key);
-        let mut chart = ChartBuilder::on(&root)
-            .caption(caption, ("sans-serif", 18))
-            .margin(16)
-            .x_label_area_size(50)
-            .y_label_area_size(80)
-            .build_cartesian_2d(-0.5f64..(n as f64 - 0.5), y0..y1)
-            .map_err(|e| err(&e))?;
-        let xs_for_labels = xs.clone();
-        chart
-            .configure_mesh()
-            .x_desc(grid.axes[0].key.as_str())
-            .y_desc(by.label())
-            .x_labels(n.min(40))
-            .x_label_formatter(&move |x: &f64| {
-                let i = x.round();
-                if (x - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < xs_for_labels.len() {
-                    xs_for_labels[i as usize].clone()
-                } else {
-                    String::new()
-                }
-            })
-            .label_style(("sans-serif", 12))
-            .light_line_style(RGBColor(235, 235, 235))
-            .draw()
-            .map_err(|e| err(&e))?;
-        for (l, name) in lines.iter().enumerate() {
-            let (r, g, b) = LINE_COLOURS[l % LINE_COLOURS.len()];
-            let colour = RGBColor(r, g, b);
-            // Split the line where points are missing.
-            let mut runs: Vec<Vec<(f64, f64)>> = vec![vec![]];
-            for (x, v) in best[l].iter().enumerate() {
-                match v {
-                    Some((_, y)) => runs.last_mut().map(|run| run.push((x as f64, *y))).unwrap_or(()),
-                    None => runs.push(vec![]),
-                }
-            }
-            let label =
-                if grid.axes.len() > 1 { format!("{} = {name}", grid.axes[1].key) } else { by.label().to_string() };
-            let mut first = true;
-            for run in runs.into_iter().filter(|r| !r.is_empty()) {
-                let series =
-                    chart.draw_series(LineSeries::new(run.clone(), colour.stroke_width(2))).map_err(|e| err(&e))?;
-                if first {
-                    series
-                        .label(label.clone())
-                        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], colour.stroke_width(2)));
-                    first = false;
-                }
-                chart.draw_series(run.into_iter().map(|p| Circle::new(p, 3, colour.filled()))).map_err(|e| err(&e))?;
-            }
-        }
-        // Keep the legend clear of the lines' right ends.
-        let right_ends: Vec<f64> =
-            best.iter().filter_map(|l| l.iter().rev().flatten().next().map(|&(_, v)| v)).collect();
-        let high = right_ends.iter().sum::<f64>() / right_ends.len().max(1) as f64 > (y0 + y1) / 2.0;
-        chart
-            .configure_series_labels()
-            .position(if high { SeriesLabelPosition::LowerRight } else { SeriesLabelPosition::UpperRight })
-            .background_style(WHITE.mix(0.85))
-            .border_style(RGBColor(180, 180, 180))
-            .label_font(("sans-serif", 12))
-            .draw()
-            .map_err(|e| err(&e))?;
-        root.present().map_err(|e| err(&e))?;
-    }
-    Ok(svg)
+    let series = lines
+        .iter()
+        .zip(&best)
+        .map(|(name, values)| Series {
+            name: if grid.axes.len() > 1 { format!("{} = {name}", grid.axes[1].key) } else { by.label().to_string() },
+            values: values.iter().map(|v| v.map(|(_, y)| y)).collect(),
+        })
+        .collect();
+    let chart = LineChart {
+        title: format!("{title}: {} by {}", by.label(), grid.axes[0].key),
+        x_label: grid.axes[0].key.clone(),
+        y_label: by.label().to_string(),
+        categories: xs.clone(),
+        series,
+    };
+    line::render(&chart, &Default::default()).map_err(|e| e.to_string())
 }
 
 #[cfg(test)]

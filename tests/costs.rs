@@ -363,8 +363,8 @@ fn split_memory_accounting_equals_the_simulated_peak() {
             &[format!("pipeline.schedule={schedule}"), "cluster.device.memory=1TiB".into()],
         )
         .unwrap();
-        let problem = baton::planner::problem(&s).unwrap();
-        let eval = baton::planner::evaluate(&problem, &s.pipeline.split).unwrap();
+        let inputs = baton::planner::inputs(&s).unwrap();
+        let eval = baton::planner::evaluate(&inputs.problem(), &s.pipeline.split).unwrap();
         let report = baton::simulate(&s).unwrap().report;
         let simulated: Vec<u64> = report.devices.iter().map(|d| d.peak_memory_bytes).collect();
         assert_eq!(eval.device_bytes, simulated, "{schedule}");

@@ -1,7 +1,7 @@
 //! Invariants of every simulated step, over random scenarios (proptest).
 
 use baton::executor::Trace;
-use baton::report::{gantt, to_json, write_trace_csv, Report};
+use baton::report::{csv, json, svg::gantt, Report};
 use baton::scenario::{parse, Scenario};
 use baton::schedule::OpKind;
 use proptest::prelude::*;
@@ -45,9 +45,10 @@ fn scenario(c: &Case) -> Scenario {
 }
 
 fn outputs(trace: &Trace, report: &Report) -> (String, String, Vec<u8>) {
-    let mut csv = Vec::new();
-    write_trace_csv(trace, &mut csv).unwrap();
-    (to_json(report).unwrap(), gantt::render(trace, report).unwrap(), csv)
+    let mut out = Vec::new();
+    csv::write(trace, &mut out).unwrap();
+    let run = gantt::Run { trace, report, label: String::new() };
+    (json::render(report, &Default::default()).unwrap(), gantt::render(&[run], &Default::default()).unwrap(), out)
 }
 
 proptest! {
@@ -101,6 +102,7 @@ proptest! {
                 match r.op.kind {
                     OpKind::Forward => e.0 = e.0.min(r.start.as_ns()),
                     OpKind::Backward => e.1 = e.1.max(r.end.as_ns()),
+                    OpKind::Weight => prop_assert!(false, "these schedules fuse the backward pass"),
                 }
             }
             let spans: Vec<(u64, u64)> = held.into_values().collect();
@@ -132,10 +134,10 @@ proptest! {
             last_layer.push(end - 1);
         }
         for t in &trace.transfers {
-            let boundary = t.from_stage.min(t.to_stage) as usize;
-            prop_assert_eq!(t.from_stage.abs_diff(t.to_stage), 1);
+            let boundary = t.producer.stage.min(t.consumer.stage) as usize;
+            prop_assert_eq!(t.producer.stage.abs_diff(t.consumer.stage), 1);
             prop_assert_eq!(t.bytes, c.layers[last_layer[boundary]].2 as u64 * 1_000, "boundary {}", boundary);
-            prop_assert_eq!((t.src, t.dst), (t.from_stage % c.p, t.to_stage % c.p));
+            prop_assert_eq!((t.src, t.dst), (t.producer.stage % c.p, t.consumer.stage % c.p));
             prop_assert_eq!(t.end.as_ns() - t.sent.as_ns(), latency);
             // Alone on its link from start until its last byte leaves (no other
             // transfer between the same two devices in flight at once: one that

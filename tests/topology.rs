@@ -207,7 +207,7 @@ mod unlimited {
             placement.sort_by_key(|d| (*d as u64).wrapping_mul(seed | 1).rotate_left(7) ^ seed);
             let p = devices;
             let plan = build(ScheduleKind::OneFOneB, Shape::new(p, m, 1)).unwrap();
-            let costs = vec![StageCost { forward: baton::engine::SimDuration(1_000), backward: baton::engine::SimDuration(2_000), send_bytes: bytes }; p as usize];
+            let costs = vec![StageCost::new(baton::engine::SimDuration(1_000), baton::engine::SimDuration(2_000), bytes); p as usize];
             let dl = LinkSpec { latency_ns: dl_ns, bytes_per_s: LinkSpec::UNLIMITED };
             let nl = LinkSpec { latency_ns: nl_ns, bytes_per_s: LinkSpec::UNLIMITED };
             let topo = Topology::two_level(nodes, dpn, dl, nl, 1, &placement);
@@ -218,7 +218,7 @@ mod unlimited {
                 let (x, y) = (placement[a as usize], placement[b as usize]);
                 if x / dpn == y / dpn { 2 * dl_ns } else { 2 * dl_ns + 2 * nl_ns }
             };
-            let trace = simulate(plan, &costs, topo.clone(), &(0..p).collect::<Vec<_>>()).unwrap();
+            let trace = simulate(plan, &costs, topo).unwrap();
             for t in &trace.transfers {
                 prop_assert_eq!(t.end.as_ns() - t.start.as_ns(), latency(t.src, t.dst));
                 prop_assert_eq!(t.sent, t.start);

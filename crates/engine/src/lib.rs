@@ -19,6 +19,7 @@
 //! sequence number), so the same input always yields the same event order.
 //!
 //! It deliberately knows nothing about pipelines, devices, links or schedules.
+#![warn(missing_docs)]
 
 use std::cmp::Reverse;
 use std::collections::BinaryHeap;
@@ -46,6 +47,7 @@ pub struct SimTime(pub u64);
 pub struct SimDuration(pub u64);
 
 impl SimTime {
+    /// The start of the simulation.
     pub const ZERO: SimTime = SimTime(0);
 
     /// Nanoseconds since the start.
@@ -65,16 +67,20 @@ impl SimTime {
 }
 
 impl SimDuration {
+    /// No time at all.
     pub const ZERO: SimDuration = SimDuration(0);
 
+    /// A duration of `ns` nanoseconds.
     pub fn from_ns(ns: u64) -> Self {
         SimDuration(ns)
     }
 
+    /// Nanoseconds.
     pub fn as_ns(self) -> u64 {
         self.0
     }
 
+    /// Milliseconds, for reports.
     pub fn as_ms(self) -> f64 {
         self.0 as f64 / 1e6
     }
@@ -235,6 +241,7 @@ impl<E, K: Hash + Eq> Default for Scheduler<E, K> {
 }
 
 impl<E, K: Hash + Eq> Scheduler<E, K> {
+    /// An empty scheduler at time zero.
     pub fn new() -> Self {
         Scheduler {
             now: SimTime::ZERO,
@@ -340,7 +347,9 @@ impl<E, K: Hash + Eq> Scheduler<E, K> {
 
 /// A simulation model driven by [`run`].
 pub trait Model {
+    /// The model's fixed events.
     type Event;
+    /// The keys of the model's movable deadlines.
     type Key: Hash + Eq;
 
     /// Handles one event or deadline at `sched.now()`.

@@ -1,52 +1,64 @@
 //! # baton-executor: runs a schedule's per-device orders in simulated time
 //!
-//! Given a [`Plan`] (each device's order of forward and backward passes), the
-//! cost of every virtual stage and a link [`Topology`], the executor plays one
-//! training step on the discrete-event engine:
+//! Given a [`Plan`] (each device's order of operations), the cost of every
+//! virtual stage and a link [`Topology`] over the pipeline's devices, the
+//! executor plays one training step on the discrete-event engine:
 //!
 //! * each device runs its operations one at a time, strictly in its order,
 //!   starting each as soon as the device is free and the operation is ready;
-//! * forward(i, s) is ready when forward(i, s-1) has finished and its
-//!   activation has arrived; backward(i, s) when forward(i, s) has finished and,
-//!   unless `s` is the last virtual stage, backward(i, s+1) has finished and its
-//!   gradient has arrived;
+//! * an operation is ready when every op it waits for has finished and, for
+//!   data crossing to another device, that data has arrived: the schedule
+//!   crate says which ops those are and what flows ([`Op::inputs`],
+//!   [`Op::outputs`]); the executor restates none of it;
 //! * an activation or gradient crossing to another device is a transfer on the
 //!   link network (it never occupies the sender's compute); between virtual
-//!   stages on the same device nothing moves.
+//!   stages on the same device nothing moves. Both directions across the
+//!   boundary between virtual stages `k` and `k + 1` carry stage `k`'s
+//!   [`StageCost::send_bytes`].
+//!
+//! The link network keeps no event queue of its own: after each simulated
+//! instant the executor asks it when its next transfer finishes and keeps one
+//! [`Deadline::Network`] there. A new source of deadlines (a collective, an
+//! optimizer phase) adds a variant to [`Deadline`].
 //!
 //! The result is a [`Trace`]: when every operation and transfer started and
 //! ended. Statistics and charts are made from it elsewhere.
 //!
 //! It deliberately knows nothing about scenario files, units or reports.
+#![warn(missing_docs)]
 
 use baton_engine::{Fired, Model, Scheduler, SimDuration, SimTime};
-use baton_link::{LinkStats, Network, NextCompletion, Topology, TransferId};
-use baton_schedule::{validate, Op, OpKind, Plan, ScheduleError};
+use baton_link::{LinkStats, Network, Topology, TransferId};
+use baton_schedule::{validate, Flow, Op, OpKind, Plan, ScheduleError};
 use thiserror::Error;
 
 /// Time and data of one virtual stage, per micro-batch.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct StageCost {
+    /// Time of a forward pass.
     pub forward: SimDuration,
+    /// Time of a backward pass (with a split backward, its input-gradient part).
     pub backward: SimDuration,
+    /// Time of a weight-gradient pass (split backward only).
+    pub weight: SimDuration,
     /// Bytes of the activation this stage sends to the next one; the
     /// gradient the next stage sends back across the same boundary has the
     /// same size (so the last stage's value never crosses a link).
     pub send_bytes: u64,
 }
 
-/// What was simulated and how.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
-pub enum DataKind {
-    Activation,
-    Gradient,
-}
+impl StageCost {
+    /// A stage whose backward pass is one op.
+    pub fn new(forward: SimDuration, backward: SimDuration, send_bytes: u64) -> Self {
+        StageCost { forward, backward, weight: SimDuration::ZERO, send_bytes }
+    }
 
-impl DataKind {
-    pub fn as_str(self) -> &'static str {
-        match self {
-            DataKind::Activation => "activation",
-            DataKind::Gradient => "gradient",
+    /// How long an op of `kind` takes on this stage.
+    pub fn time(&self, kind: OpKind) -> SimDuration {
+        match kind {
+            OpKind::Forward => self.forward,
+            OpKind::Backward => self.backward,
+            OpKind::Weight => self.weight,
         }
     }
 }
@@ -54,23 +66,28 @@ impl DataKind {
 /// One operation as it ran.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct OpRecord {
+    /// The operation.
     pub op: Op,
+    /// When it started.
     pub start: SimTime,
+    /// When it ended.
     pub end: SimTime,
 }
 
 /// One activation or gradient crossing between devices.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct TransferRecord {
-    pub kind: DataKind,
-    pub micro_batch: u32,
-    /// The virtual stage that produced the data.
-    pub from_stage: u32,
-    /// The virtual stage that consumes it.
-    pub to_stage: u32,
-    /// Pipeline devices (not topology ids).
+    /// What it carries.
+    pub flow: Flow,
+    /// The op that produced the data.
+    pub producer: Op,
+    /// The op that waits for it.
+    pub consumer: Op,
+    /// Sending pipeline device.
     pub src: u32,
+    /// Receiving pipeline device.
     pub dst: u32,
+    /// Bytes carried.
     pub bytes: u64,
     /// Producer finished and the send began.
     pub start: SimTime,
@@ -83,12 +100,14 @@ pub struct TransferRecord {
     pub bottleneck: Option<u32>,
 }
 
-/// The data an operation waited for from another stage, if any.
+/// The data an operation waited for from another stage.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct Dependency {
-    pub kind: DataKind,
-    /// The producing operation (forward(i, s-1) or backward(i, s+1)).
+    /// What it carried.
+    pub flow: Flow,
+    /// The producing operation.
     pub producer: Op,
+    /// The device that ran the producer.
     pub producer_device: u32,
     /// When the producer finished.
     pub produced_at: SimTime,
@@ -102,6 +121,7 @@ pub struct Dependency {
 /// Everything that happened in one simulated step.
 #[derive(Clone, Debug)]
 pub struct Trace {
+    /// The plan that was run.
     pub plan: Plan,
     /// `ops[d]` is device `d`'s operations in the order they ran.
     pub ops: Vec<Vec<OpRecord>>,
@@ -114,13 +134,15 @@ pub struct Trace {
     /// Bandwidth of each link in bytes per second (`LinkSpec::UNLIMITED` for
     /// links that never limit).
     pub link_bytes_per_s: Vec<u64>,
+    /// The cluster device each pipeline device ran on (from the topology).
+    pub cluster_devices: Vec<u32>,
     /// Events the engine delivered.
     pub events: u64,
     /// Whether sends blocked the sender until delivered.
     pub blocking_sends: bool,
-    // Dense lookups: [kind][micro_batch * S + stage] -> (device, index in ops[device]).
+    // Per `Shape::op_index`: (device, index in ops[device]).
     op_index: Vec<(u32, u32)>,
-    // [kind][micro_batch * S + from_stage] -> index in transfers, or NONE.
+    // Per `Shape::op_index` of the producer: index in transfers, or NONE.
     transfer_index: Vec<u32>,
 }
 
@@ -142,79 +164,112 @@ impl Trace {
         self.end().saturating_since(self.start())
     }
 
-    fn dense(&self, kind: OpKind, micro_batch: u32, stage: u32) -> usize {
-        let s = self.plan.shape.virtual_stages() as usize;
-        let m = self.plan.shape.micro_batches as usize;
-        let k = (kind == OpKind::Backward) as usize;
-        k * m * s + micro_batch as usize * s + stage as usize
-    }
-
     /// The record of `op`, with the device it ran on.
     pub fn record(&self, op: Op) -> (u32, &OpRecord) {
-        let (d, i) = self.op_index[self.dense(op.kind, op.micro_batch, op.stage)];
+        let (d, i) = self.op_index[self.plan.shape.op_index(op)];
         (d, &self.ops[d as usize][i as usize])
     }
 
     /// The transfer that carried `op`'s output to another device, if any.
     pub fn outgoing(&self, op: Op) -> Option<&TransferRecord> {
-        let t = self.transfer_index[self.dense(op.kind, op.micro_batch, op.stage)];
+        let t = self.transfer_index[self.plan.shape.op_index(op)];
         (t != NONE).then(|| &self.transfers[t as usize])
     }
 
-    /// The cross-stage data `op` needed, and when it was produced and available.
+    /// The data from another stage that `op` waited for longest: of its
+    /// inputs that cross a stage boundary, the one available last (`None`
+    /// when it has none).
     pub fn dependency(&self, op: Op) -> Option<Dependency> {
-        let last = self.plan.shape.virtual_stages() - 1;
-        let (kind, producer) = match op.kind {
-            OpKind::Forward if op.stage > 0 => (DataKind::Activation, Op::forward(op.micro_batch, op.stage - 1)),
-            OpKind::Backward if op.stage < last => (DataKind::Gradient, Op::backward(op.micro_batch, op.stage + 1)),
-            _ => return None,
-        };
-        let (producer_device, rec) = self.record(producer);
-        let t = self.transfer_index[self.dense(producer.kind, producer.micro_batch, producer.stage)];
-        let transfer = (t != NONE).then_some(t as usize);
-        let available_at = transfer.map_or(rec.end, |t| self.transfers[t].end);
-        Some(Dependency { kind, producer, producer_device, produced_at: rec.end, available_at, transfer })
+        let shape = &self.plan.shape;
+        let mut latest: Option<Dependency> = None;
+        for input in op.inputs(shape).filter(|e| e.flow.crosses_stages()) {
+            let producer = input.op;
+            let (producer_device, rec) = self.record(producer);
+            let t = self.transfer_index[shape.op_index(producer)];
+            let transfer = (t != NONE).then_some(t as usize);
+            let available_at = transfer.map_or(rec.end, |t| self.transfers[t].end);
+            let dep = Dependency {
+                flow: input.flow,
+                producer,
+                producer_device,
+                produced_at: rec.end,
+                available_at,
+                transfer,
+            };
+            if latest.is_none_or(|l| dep.available_at > l.available_at) {
+                latest = Some(dep);
+            }
+        }
+        latest
     }
 }
 
 /// Why a step could not be simulated.
 #[derive(Debug, Error, PartialEq)]
 pub enum ExecError {
+    /// The plan is not well formed.
     #[error("invalid schedule: {0}")]
     Schedule(#[from] ScheduleError),
+    /// Not one cost per virtual stage.
     #[error("{found} stage costs given for {expected} virtual stages")]
-    CostCount { found: usize, expected: usize },
-    #[error("placement names {found} devices for {expected} pipeline devices")]
-    PlacementCount { found: usize, expected: usize },
-    #[error("placement names device {device}, but the topology has {devices}")]
-    PlacementRange { device: u32, devices: u32 },
+    CostCount {
+        /// Costs given.
+        found: usize,
+        /// Virtual stages.
+        expected: usize,
+    },
+    /// The topology joins fewer devices than the pipeline has.
+    #[error("the topology joins {devices} devices, but the pipeline has {stages} stages")]
+    TopologyDevices {
+        /// Devices in the topology.
+        devices: u32,
+        /// Pipeline stages.
+        stages: u32,
+    },
+    /// The compute-time jitter is out of range.
     #[error("jitter must be at least 0 and below 1, found {0}")]
     Jitter(f64),
+    /// The simulation ended with work left (an internal fault: a valid plan
+    /// always completes).
     #[error("the step stopped with operations left: device {device} waits at {op}")]
-    Stuck { device: u32, op: Op },
+    Stuck {
+        /// A device with work left.
+        device: u32,
+        /// The op it waits at.
+        op: Op,
+    },
 }
 
+/// The executor's fixed events.
 #[derive(Clone, Copy, Debug)]
-enum Ev {
+pub enum Event {
+    /// The op a device was running has ended.
     OpDone(u32),
+    /// The transfer at this index of the trace has arrived.
     Arrival(u32),
 }
 
-struct Exec<'a> {
+/// The executor's movable deadlines, one per source that needs one.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub enum Deadline {
+    /// The link network's next transfer completion.
+    Network,
+}
+
+struct Executor<'a> {
     plan: &'a Plan,
     costs: &'a [StageCost],
-    placement: &'a [u32],
     net: Network,
-    n_stages: usize,
+    /// When the network's deadline is set for (as last told by settle).
+    network_deadline: Option<SimTime>,
     next: Vec<usize>,
     busy: Vec<bool>,
-    // Per (micro_batch * S + stage).
-    fwd_done: Vec<bool>,
-    fwd_in: Vec<bool>,
-    grad_in: Vec<bool>,
+    /// Per `Shape::op_index`: inputs not yet satisfied.
+    waiting: Vec<u8>,
     ops: Vec<Vec<OpRecord>>,
     transfers: Vec<TransferRecord>,
     transfer_index: Vec<u32>,
+    /// Per network transfer id: index in `transfers`.
     in_flight: Vec<u32>,
     /// Per device and op: the factor its compute time is scaled by.
     jitter: Option<Vec<Vec<f64>>>,
@@ -225,66 +280,39 @@ struct Exec<'a> {
     due: Vec<TransferId>,
 }
 
-impl Exec<'_> {
-    fn idx(&self, micro_batch: u32, stage: u32) -> usize {
-        micro_batch as usize * self.n_stages + stage as usize
-    }
+type Sched = Scheduler<Event, Deadline>;
 
-    fn ready(&self, op: Op) -> bool {
-        let i = self.idx(op.micro_batch, op.stage);
-        match op.kind {
-            OpKind::Forward => self.fwd_in[i],
-            OpKind::Backward => self.fwd_done[i] && self.grad_in[i],
-        }
-    }
-
-    fn try_start(&mut self, d: usize, sched: &mut Scheduler<Ev, NextCompletion>) {
+impl Executor<'_> {
+    fn try_start(&mut self, d: usize, sched: &mut Sched) {
         if self.busy[d] || self.pending_sends[d] > 0 {
             return;
         }
         let Some(&op) = self.plan.per_device[d].get(self.next[d]) else { return };
-        if !self.ready(op) {
+        if self.waiting[self.plan.shape.op_index(op)] != 0 {
             return;
         }
-        let cost = &self.costs[op.stage as usize];
-        let mut dur = match op.kind {
-            OpKind::Forward => cost.forward,
-            OpKind::Backward => cost.backward,
-        };
+        let mut dur = self.costs[op.stage as usize].time(op.kind);
         if let Some(factors) = &self.jitter {
             dur = SimDuration((dur.as_ns() as f64 * factors[d][self.next[d]]).round() as u64);
         }
         self.busy[d] = true;
         let now = sched.now();
         self.ops[d].push(OpRecord { op, start: now, end: now + dur });
-        sched.schedule(now + dur, Ev::OpDone(d as u32));
+        sched.schedule(now + dur, Event::OpDone(d as u32));
     }
 
-    /// Hands data from `from_stage` to `to_stage` of `micro_batch`.
-    fn send(&mut self, sched: &mut Scheduler<Ev, NextCompletion>, kind: DataKind, op: Op, to_stage: u32) {
-        let p = self.plan.shape.stages;
-        let (src, dst) = (op.stage % p, to_stage % p);
-        let target = self.idx(op.micro_batch, to_stage);
-        if src == dst {
-            match kind {
-                DataKind::Activation => self.fwd_in[target] = true,
-                DataKind::Gradient => self.grad_in[target] = true,
-            }
-            self.try_start(dst as usize, sched);
-            return;
-        }
-        // Both directions across the boundary between virtual stages k and
-        // k+1 carry stage k's output activation: the gradient coming back is
-        // the gradient of that same tensor.
-        let boundary = op.stage.min(to_stage);
+    /// Hands `producer`'s output to `consumer` on another device: a transfer.
+    fn send(&mut self, sched: &mut Sched, producer: Op, consumer: Op, flow: Flow) {
+        let shape = &self.plan.shape;
+        let (src, dst) = (shape.device_of(producer.stage), shape.device_of(consumer.stage));
+        let boundary = producer.stage.min(consumer.stage);
         let bytes = self.costs[boundary as usize].send_bytes;
         let rec = self.transfers.len() as u32;
         let now = sched.now();
         self.transfers.push(TransferRecord {
-            kind,
-            micro_batch: op.micro_batch,
-            from_stage: op.stage,
-            to_stage,
+            flow,
+            producer,
+            consumer,
             src,
             dst,
             bytes,
@@ -293,13 +321,11 @@ impl Exec<'_> {
             end: now,
             bottleneck: None,
         });
-        let k = (op.kind == OpKind::Backward) as usize;
-        let slot = k * self.plan.shape.micro_batches as usize * self.n_stages + self.idx(op.micro_batch, op.stage);
-        self.transfer_index[slot] = rec;
+        self.transfer_index[shape.op_index(producer)] = rec;
         if self.blocking_sends {
             self.pending_sends[src as usize] += 1;
         }
-        let tid = self.net.start(sched, self.placement[src as usize], self.placement[dst as usize], bytes);
+        let tid = self.net.start(now, src, dst, bytes);
         let t = tid.0 as usize;
         if self.in_flight.len() <= t {
             self.in_flight.resize(t + 1, NONE);
@@ -308,58 +334,49 @@ impl Exec<'_> {
     }
 }
 
-impl Model for Exec<'_> {
-    type Event = Ev;
-    type Key = NextCompletion;
+impl Model for Executor<'_> {
+    type Event = Event;
+    type Key = Deadline;
 
-    fn handle(&mut self, fired: Fired<Ev, NextCompletion>, sched: &mut Scheduler<Ev, NextCompletion>) {
+    fn handle(&mut self, fired: Fired<Event, Deadline>, sched: &mut Sched) {
+        let shape = self.plan.shape;
         match fired {
-            Fired::Event(Ev::OpDone(d)) => {
+            Fired::Event(Event::OpDone(d)) => {
                 let d = d as usize;
                 let op = self.plan.per_device[d][self.next[d]];
                 self.next[d] += 1;
                 self.busy[d] = false;
-                let last = self.n_stages as u32 - 1;
-                match op.kind {
-                    OpKind::Forward => {
-                        let i = self.idx(op.micro_batch, op.stage);
-                        self.fwd_done[i] = true;
-                        if op.stage < last {
-                            self.send(sched, DataKind::Activation, op, op.stage + 1);
-                        }
-                    }
-                    OpKind::Backward => {
-                        if op.stage > 0 {
-                            self.send(sched, DataKind::Gradient, op, op.stage - 1);
-                        }
+                for out in op.outputs(&shape) {
+                    if shape.device_of(out.op.stage) as usize == d {
+                        self.waiting[shape.op_index(out.op)] -= 1;
+                    } else {
+                        self.send(sched, op, out.op, out.flow);
                     }
                 }
                 self.try_start(d, sched);
             }
-            Fired::Deadline(NextCompletion) => {
+            Fired::Deadline(Deadline::Network) => {
+                self.network_deadline = None;
+                let now = sched.now();
                 let mut due = std::mem::take(&mut self.due);
                 due.clear();
-                self.net.take_due(sched.now(), &mut due);
+                self.net.take_due(now, &mut due);
                 for &tid in &due {
-                    let fin = self.net.finish(sched, tid);
+                    let fin = self.net.finish(now, tid);
                     let rec = self.in_flight[tid.0 as usize];
                     let t = &mut self.transfers[rec as usize];
-                    t.sent = sched.now();
+                    t.sent = now;
                     t.bottleneck = fin.bottleneck.map(|l| l.0);
-                    sched.schedule(fin.delivered_at, Ev::Arrival(rec));
+                    sched.schedule(fin.delivered_at, Event::Arrival(rec));
                 }
                 self.due = due;
             }
-            Fired::Event(Ev::Arrival(rec)) => {
+            Fired::Event(Event::Arrival(rec)) => {
                 let now = sched.now();
                 let t = &mut self.transfers[rec as usize];
                 t.end = now;
-                let (kind, mb, to, src, dst) = (t.kind, t.micro_batch, t.to_stage, t.src, t.dst);
-                let target = self.idx(mb, to);
-                match kind {
-                    DataKind::Activation => self.fwd_in[target] = true,
-                    DataKind::Gradient => self.grad_in[target] = true,
-                }
+                let (consumer, src, dst) = (t.consumer, t.src, t.dst);
+                self.waiting[shape.op_index(consumer)] -= 1;
                 self.try_start(dst as usize, sched);
                 if self.blocking_sends {
                     self.pending_sends[src as usize] -= 1;
@@ -367,9 +384,19 @@ impl Model for Exec<'_> {
                 }
             }
         }
-        // Hand out bandwidth once this instant's starts and finishes are in.
+        // Hand out bandwidth once this instant's starts and finishes are in,
+        // and keep the network's deadline where it says.
         if self.net.needs_settle() && sched.peek_time() != Some(sched.now()) {
-            self.net.settle(sched);
+            let next = self.net.settle(sched.now());
+            if next != self.network_deadline {
+                match next {
+                    Some(t) => sched.set_deadline(Deadline::Network, t),
+                    None => {
+                        sched.cancel_deadline(&Deadline::Network);
+                    }
+                }
+                self.network_deadline = next;
+            }
         }
     }
 }
@@ -392,18 +419,17 @@ pub struct RunOptions {
 
 /// Simulates one step of `plan` with every op taking exactly its cost.
 ///
-/// `costs[s]` is virtual stage `s`'s cost; `placement[d]` is the topology
-/// device that pipeline device `d` runs on (identity for a flat cluster).
-pub fn simulate(plan: Plan, costs: &[StageCost], topology: Topology, placement: &[u32]) -> Result<Trace, ExecError> {
-    simulate_with(plan, costs, topology, placement, RunOptions::default())
+/// `costs[s]` is virtual stage `s`'s cost; topology device `d` is pipeline
+/// device `d` (the topology carries where each is placed on the cluster).
+pub fn simulate(plan: Plan, costs: &[StageCost], topology: Topology) -> Result<Trace, ExecError> {
+    simulate_with(plan, costs, topology, RunOptions::default())
 }
 
-/// [`simulate`] with compute times varied as `variation` says.
+/// [`simulate`] with compute times varied and sends blocking as `options` say.
 pub fn simulate_with(
     plan: Plan,
     costs: &[StageCost],
     topology: Topology,
-    placement: &[u32],
     options: RunOptions,
 ) -> Result<Trace, ExecError> {
     validate(&plan)?;
@@ -422,38 +448,32 @@ pub fn simulate_with(
     if costs.len() != n_stages {
         return Err(ExecError::CostCount { found: costs.len(), expected: n_stages });
     }
-    if placement.len() != p {
-        return Err(ExecError::PlacementCount { found: placement.len(), expected: p });
+    if topology.devices() < shape.stages {
+        return Err(ExecError::TopologyDevices { devices: topology.devices(), stages: shape.stages });
     }
-    if let Some(&device) = placement.iter().find(|&&d| d >= topology.devices()) {
-        return Err(ExecError::PlacementRange { device, devices: topology.devices() });
-    }
-    let m = shape.micro_batches as usize;
-    let cells = m * n_stages;
-    let mut fwd_in = vec![false; cells];
-    let mut grad_in = vec![false; cells];
-    for i in 0..m {
-        fwd_in[i * n_stages] = true;
-        grad_in[i * n_stages + n_stages - 1] = true;
+    let slots = shape.op_slots();
+    let mut waiting = vec![0u8; slots];
+    for ops in &plan.per_device {
+        for &op in ops {
+            waiting[shape.op_index(op)] = op.inputs(&shape).count() as u8;
+        }
     }
     let link_names =
         (0..topology.link_count()).map(|l| topology.link_name(baton_link::LinkId(l as u32)).to_string()).collect();
     let link_bytes_per_s =
         (0..topology.link_count()).map(|l| topology.link(baton_link::LinkId(l as u32)).bytes_per_s).collect();
-    let mut exec = Exec {
+    let cluster_devices = (0..shape.stages).map(|d| topology.cluster_device(d)).collect();
+    let mut exec = Executor {
         plan: &plan,
         costs,
-        placement,
         net: Network::new(topology),
-        n_stages,
+        network_deadline: None,
         next: vec![0; p],
         busy: vec![false; p],
-        fwd_done: vec![false; cells],
-        fwd_in,
-        grad_in,
+        waiting,
         ops: plan.per_device.iter().map(|o| Vec::with_capacity(o.len())).collect(),
-        transfers: Vec::with_capacity(2 * cells),
-        transfer_index: vec![NONE; 2 * cells],
+        transfers: Vec::with_capacity(slots),
+        transfer_index: vec![NONE; slots],
         in_flight: Vec::new(),
         jitter,
         blocking_sends: options.blocking_sends,
@@ -470,15 +490,14 @@ pub fn simulate_with(
             return Err(ExecError::Stuck { device: d as u32, op });
         }
     }
-    let mut op_index = vec![(0u32, 0u32); 2 * cells];
+    let mut op_index = vec![(0u32, 0u32); slots];
     for (d, recs) in exec.ops.iter().enumerate() {
         for (i, r) in recs.iter().enumerate() {
-            let k = (r.op.kind == OpKind::Backward) as usize;
-            op_index[k * cells + r.op.micro_batch as usize * n_stages + r.op.stage as usize] = (d as u32, i as u32);
+            op_index[shape.op_index(r.op)] = (d as u32, i as u32);
         }
     }
     let link_stats = exec.net.stats().to_vec();
-    let Exec { ops, transfers, transfer_index, .. } = exec;
+    let Executor { ops, transfers, transfer_index, .. } = exec;
     Ok(Trace {
         plan,
         ops,
@@ -486,6 +505,7 @@ pub fn simulate_with(
         link_stats,
         link_names,
         link_bytes_per_s,
+        cluster_devices,
         events: sched.delivered(),
         blocking_sends: options.blocking_sends,
         op_index,
@@ -504,17 +524,13 @@ mod tests {
     }
 
     fn uniform(n: usize, f: u64, b: u64, bytes: u64) -> Vec<StageCost> {
-        vec![StageCost { forward: SimDuration(f), backward: SimDuration(b), send_bytes: bytes }; n]
-    }
-
-    fn identity(p: u32) -> Vec<u32> {
-        (0..p).collect()
+        vec![StageCost::new(SimDuration(f), SimDuration(b), bytes); n]
     }
 
     #[test]
     fn single_device_runs_back_to_back() {
         let plan = build(ScheduleKind::OneFOneB, Shape::new(1, 3, 1)).unwrap();
-        let tr = simulate(plan.clone(), &uniform(1, 10, 20, 0), ideal(1), &[0]).unwrap();
+        let tr = simulate(plan.clone(), &uniform(1, 10, 20, 0), ideal(1)).unwrap();
         assert_eq!(tr.step_time(), SimDuration(90));
         assert!(tr.transfers.is_empty());
     }
@@ -525,7 +541,7 @@ mod tests {
         // Dev0: F0 0-10, F1 10-20; dev1: F0 10-20, F1 20-30, B0 30-50, B1 50-70;
         // dev0: B0 50-70, B1 70-90. Step 90.
         let plan = build(ScheduleKind::FillDrain, Shape::new(2, 2, 1)).unwrap();
-        let tr = simulate(plan.clone(), &uniform(2, 10, 20, 0), ideal(2), &identity(2)).unwrap();
+        let tr = simulate(plan.clone(), &uniform(2, 10, 20, 0), ideal(2)).unwrap();
         let starts: Vec<u64> = tr.ops[0].iter().map(|r| r.start.0).collect();
         assert_eq!(starts, vec![0, 10, 50, 70]);
         let starts: Vec<u64> = tr.ops[1].iter().map(|r| r.start.0).collect();
@@ -534,8 +550,8 @@ mod tests {
         assert_eq!(tr.transfers.len(), 4);
         let dep = tr.dependency(Op::backward(1, 0)).unwrap();
         assert_eq!(
-            (dep.kind, dep.producer_device, dep.produced_at, dep.available_at),
-            (DataKind::Gradient, 1, SimTime(70), SimTime(70))
+            (dep.flow, dep.producer_device, dep.produced_at, dep.available_at),
+            (Flow::Gradient, 1, SimTime(70), SimTime(70))
         );
     }
 
@@ -544,7 +560,7 @@ mod tests {
         // 1000 bytes at 1 GB/s = 1000 ns, plus 500 ns latency, per hop.
         let plan = build(ScheduleKind::OneFOneB, Shape::new(2, 1, 1)).unwrap();
         let topo = Topology::full_mesh(2, LinkSpec { latency_ns: 500, bytes_per_s: 1_000_000_000 });
-        let tr = simulate(plan.clone(), &uniform(2, 100, 200, 1000), topo, &identity(2)).unwrap();
+        let tr = simulate(plan.clone(), &uniform(2, 100, 200, 1000), topo).unwrap();
         // F0@0 0-100, send 100-1600, F0@1 1600-1700, B0@1 1700-1900, send 1900-3400, B0@0 3400-3600.
         assert_eq!(tr.step_time(), SimDuration(3600));
         assert_eq!(tr.transfers[0].sent, SimTime(1100));
@@ -555,13 +571,13 @@ mod tests {
     fn errors_on_mismatched_inputs() {
         let plan = build(ScheduleKind::OneFOneB, Shape::new(2, 2, 1)).unwrap();
         assert_eq!(
-            simulate(plan.clone(), &uniform(3, 1, 1, 0), ideal(2), &identity(2)).unwrap_err(),
+            simulate(plan.clone(), &uniform(3, 1, 1, 0), ideal(2)).unwrap_err(),
             ExecError::CostCount { found: 3, expected: 2 }
         );
-        assert!(matches!(
-            simulate(plan.clone(), &uniform(2, 1, 1, 0), ideal(2), &[0, 5]),
-            Err(ExecError::PlacementRange { .. })
-        ));
+        assert_eq!(
+            simulate(plan.clone(), &uniform(2, 1, 1, 0), ideal(1)).unwrap_err(),
+            ExecError::TopologyDevices { devices: 1, stages: 2 }
+        );
     }
 
     #[test]
@@ -572,12 +588,11 @@ mod tests {
                 plan.clone(),
                 &uniform(3, 1000, 2000, 0),
                 ideal(3),
-                &identity(3),
                 RunOptions { jitter, seed, ..RunOptions::default() },
             )
             .unwrap()
         };
-        let exact = simulate(plan.clone(), &uniform(3, 1000, 2000, 0), ideal(3), &identity(3)).unwrap();
+        let exact = simulate(plan.clone(), &uniform(3, 1000, 2000, 0), ideal(3)).unwrap();
         assert_eq!(run(0.0, 5).ops, exact.ops, "no jitter, no change");
         let a = run(0.2, 5);
         assert_eq!(a.ops, run(0.2, 5).ops, "same seed, same step");
@@ -589,21 +604,40 @@ mod tests {
         }
         assert_ne!(a.ops, exact.ops);
         assert!(matches!(
-            simulate_with(
-                plan,
-                &uniform(3, 1, 1, 0),
-                ideal(3),
-                &identity(3),
-                RunOptions { jitter: 1.5, ..RunOptions::default() }
-            ),
+            simulate_with(plan, &uniform(3, 1, 1, 0), ideal(3), RunOptions { jitter: 1.5, ..RunOptions::default() }),
             Err(ExecError::Jitter(_))
         ));
     }
 
     #[test]
+    fn a_split_backward_runs_weight_passes_where_the_plan_puts_them() {
+        // Worked by hand: two stages, one micro-batch, F 10, B 20, W 5, free
+        // links. Device 1: F0 10-20, B0 20-40, W0 40-45. Device 0: F0 0-10,
+        // B0 40-60 (the gradient is ready at 40), W0 60-65. Step 65.
+        let shape = Shape { split_backward: true, ..Shape::new(2, 1, 1) };
+        let plan = Plan {
+            kind: ScheduleKind::FillDrain,
+            shape,
+            per_device: vec![
+                vec![Op::forward(0, 0), Op::backward(0, 0), Op::weight(0, 0)],
+                vec![Op::forward(0, 1), Op::backward(0, 1), Op::weight(0, 1)],
+            ],
+        };
+        let cost = StageCost { weight: SimDuration(5), ..StageCost::new(SimDuration(10), SimDuration(20), 0) };
+        let tr = simulate(plan, &[cost, cost], ideal(2)).unwrap();
+        let times = |d: usize| tr.ops[d].iter().map(|r| (r.start.0, r.end.0)).collect::<Vec<_>>();
+        assert_eq!(times(1), vec![(10, 20), (20, 40), (40, 45)]);
+        assert_eq!(times(0), vec![(0, 10), (40, 60), (60, 65)]);
+        assert_eq!(tr.step_time(), SimDuration(65));
+        // The gradient B0@1 -> B0@0 is the one transfer back; W sends nothing.
+        assert_eq!(tr.transfers.iter().filter(|t| t.flow == Flow::Gradient).count(), 1);
+        assert!(tr.outgoing(Op::weight(0, 1)).is_none());
+    }
+
+    #[test]
     fn one_device_with_chunks_moves_nothing() {
         let plan = build(ScheduleKind::Interleaved, Shape::new(1, 2, 3)).unwrap();
-        let tr = simulate(plan.clone(), &uniform(3, 10, 20, 99), ideal(1), &[0]).unwrap();
+        let tr = simulate(plan.clone(), &uniform(3, 10, 20, 99), ideal(1)).unwrap();
         assert!(tr.transfers.is_empty());
         assert_eq!(tr.step_time(), SimDuration(2 * 3 * 30));
     }

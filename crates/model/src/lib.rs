@@ -23,12 +23,16 @@
 //!   Adam (Rajbhandari et al., "ZeRO", SC 2020, sec. 3.1).
 //!
 //! It deliberately knows nothing about files, schedules or simulated time.
+#![warn(missing_docs)]
 
 /// One layer's costs per micro-batch.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct LayerCost {
+    /// Its name in tables and charts.
     pub name: String,
+    /// Forward time of one micro-batch.
     pub forward_ns: u64,
+    /// Backward time of one micro-batch.
     pub backward_ns: u64,
     /// Bytes the layer sends on (and receives back as gradient).
     pub activation_bytes: u64,

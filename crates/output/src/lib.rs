@@ -21,6 +21,7 @@
 //!
 //! It deliberately knows nothing about what the bytes are: reports, charts
 //! and tables are made elsewhere.
+#![warn(missing_docs)]
 
 use std::fs;
 use std::io::{self, Write};
@@ -33,13 +34,30 @@ use thiserror::Error;
 pub enum OutputError {
     /// Two options send their output to standard output.
     #[error("{first} and {second} both write to standard output; at most one output may use it")]
-    TwoStdout { first: String, second: String },
+    TwoStdout {
+        /// The first option.
+        first: String,
+        /// The second option.
+        second: String,
+    },
     /// Two options name the same file.
     #[error("{first} and {second} both write {path}")]
-    SameFile { first: String, second: String, path: String },
+    SameFile {
+        /// The first option.
+        first: String,
+        /// The second option.
+        second: String,
+        /// The file both name.
+        path: String,
+    },
     /// The destination cannot be written (the system's reason).
     #[error("cannot write {path}: {message}")]
-    Write { path: String, message: String },
+    Write {
+        /// The destination as the user gave it.
+        path: String,
+        /// The system's reason.
+        message: String,
+    },
 }
 
 impl OutputError {
@@ -56,9 +74,15 @@ pub enum Destination {
     /// Standard output (`-`, or a path that is the same file).
     Stdout,
     /// A regular file or a new one: staged beside `target` and renamed onto it.
-    File { target: PathBuf },
+    File {
+        /// The file replaced (links followed).
+        target: PathBuf,
+    },
     /// A device, FIFO or other file that is not regular: written in place.
-    InPlace { path: PathBuf },
+    InPlace {
+        /// The destination (links followed).
+        path: PathBuf,
+    },
 }
 
 /// Most symbolic links followed for one path (as the system's own limit).
@@ -156,9 +180,11 @@ struct Entry {
 /// One output that was written, for the "written to" lines.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Written {
+    /// What it is, e.g. `chart`.
     pub label: String,
     /// The path as the user gave it.
     pub path: PathBuf,
+    /// Whether it went to standard output.
     pub to_stdout: bool,
 }
 
@@ -215,6 +241,11 @@ impl Outputs {
     /// Whether `option` was requested.
     pub fn wants(&self, option: &str) -> bool {
         self.entries.iter().any(|e| e.option == option)
+    }
+
+    /// The path `option` was given (as the user wrote it), if requested.
+    pub fn path(&self, option: &str) -> Option<&Path> {
+        self.entries.iter().find(|e| e.option == option).map(|e| e.shown.as_path())
     }
 
     /// Fills `option`'s output with what `fill` writes (nothing happens when

@@ -12,9 +12,11 @@
 //!
 //! This crate deliberately knows nothing about simulation, links or reports: it
 //! turns text into checked numbers.
+#![warn(missing_docs)]
 
 pub mod edit;
 pub mod node;
+pub mod pieces;
 pub mod profile;
 pub mod units;
 
@@ -26,6 +28,7 @@ use baton_schedule::{check_shape, ScheduleError, ScheduleKind, Shape};
 use thiserror::Error;
 
 pub use node::{Node, Origin, Value};
+pub use pieces::{Piece, PieceCosts};
 
 /// One layer of the model, after `repeat` is expanded.
 pub use baton_model::LayerCost as Layer;
@@ -45,7 +48,9 @@ pub enum ModelSource {
 /// One accelerator's properties (`cluster.device`).
 #[derive(Clone, Copy, Debug, Default, PartialEq)]
 pub struct DeviceSpec {
+    /// Peak arithmetic speed.
     pub peak_flop_per_s: Option<u64>,
+    /// Fraction of the peak reached.
     pub efficiency: Option<f64>,
     /// Memory capacity; `None` means unlimited.
     pub memory_bytes: Option<u64>,
@@ -63,6 +68,7 @@ pub enum Recompute {
 }
 
 impl Recompute {
+    /// The name used in scenario files and reports.
     pub fn name(self) -> &'static str {
         match self {
             Recompute::None => "none",
@@ -79,6 +85,7 @@ pub struct Training {
     pub state_bytes_per_param: u64,
     /// Bytes every device keeps aside (framework, buffers).
     pub reserved_bytes: u64,
+    /// Recomputation: `none` or `full`.
     pub recompute: Recompute,
 }
 
@@ -91,7 +98,9 @@ impl Default for Training {
 /// One direction of a link between two devices.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct LinkParams {
+    /// Time for the first byte to cross.
     pub latency_ns: u64,
+    /// Bytes per second in one direction.
     pub bytes_per_s: u64,
 }
 
@@ -100,17 +109,34 @@ pub struct LinkParams {
 pub enum Fabric {
     /// `devices` + `link`: every ordered pair of devices joined directly by
     /// its own one-hop link.
-    Flat { link: LinkParams },
+    Flat {
+        /// Each link's latency and bandwidth.
+        link: LinkParams,
+    },
     /// `nodes` x `devices_per_node`: devices reach their node's switch over
     /// `device_link`; nodes reach the fabric over `cards` copies of `node_link`.
-    TwoLevel { nodes: u32, devices_per_node: u32, device_link: LinkParams, node_link: LinkParams, cards: u32 },
+    TwoLevel {
+        /// Nodes (boxes).
+        nodes: u32,
+        /// Devices in each node.
+        devices_per_node: u32,
+        /// Each device's link to its node's switch.
+        device_link: LinkParams,
+        /// Each of a node's links to the fabric.
+        node_link: LinkParams,
+        /// Network cards per node.
+        cards: u32,
+    },
 }
 
+/// The `cluster` section: the devices and how they are connected.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Cluster {
     /// All devices (`nodes x devices_per_node` for a two-level fabric).
     pub devices: u32,
+    /// How they are connected.
     pub fabric: Fabric,
+    /// One accelerator's speed and memory.
     pub device: DeviceSpec,
     /// Each op's compute time is scaled by a factor drawn uniformly from
     /// `[1 - jitter, 1 + jitter]` with the scenario's seed; 0 (the default)
@@ -118,13 +144,18 @@ pub struct Cluster {
     pub jitter: f64,
 }
 
+/// The `pipeline` section: stages, split, micro-batches and schedule.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Pipeline {
+    /// Pipeline stages (devices).
     pub stages: u32,
     /// Layers per piece (virtual stage), `stages * chunks` entries, in model order.
     pub split: Vec<u32>,
+    /// Micro-batches per step.
     pub micro_batches: u32,
+    /// The schedule the devices follow.
     pub schedule: ScheduleKind,
+    /// Model chunks per device.
     pub chunks: u32,
     /// Samples per micro-batch.
     pub micro_batch_size: u32,
@@ -135,34 +166,22 @@ pub struct Pipeline {
 /// A validated scenario.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Scenario {
+    /// The scenario's title.
     pub title: String,
+    /// Seed of the random generator.
     pub seed: u64,
+    /// Where the layer table came from.
     pub source: ModelSource,
+    /// The layers, in model order, `repeat` expanded.
     pub layers: Vec<Layer>,
+    /// The devices and their connections.
     pub cluster: Cluster,
+    /// Stages, split, micro-batches and schedule.
     pub pipeline: Pipeline,
+    /// Model state, reserve and recomputation.
     pub training: Training,
     /// The device each pipeline stage runs on (`placement`), one per stage.
     pub placement: Vec<u32>,
-}
-
-/// The summed cost of one piece of the model (one virtual stage).
-#[derive(Clone, Debug, PartialEq, Eq)]
-pub struct Piece {
-    /// Index of its first layer.
-    pub first_layer: usize,
-    pub layers: usize,
-    pub forward_ns: u64,
-    pub backward_ns: u64,
-    /// Its last layer's activation: what it sends on per micro-batch.
-    pub send_bytes: u64,
-    /// Bytes held per micro-batch from the forward's start to the backward's
-    /// end: the layers' stashes, or with full recomputation the piece's input.
-    pub stash_bytes: u64,
-    /// Its layers' parameters, plus their tied parameters when the piece
-    /// runs on another device than the first layer (a copy of the shared
-    /// weights; see [`Layer::tied_params`]).
-    pub params: u64,
 }
 
 impl Scenario {
@@ -176,38 +195,15 @@ impl Scenario {
         self.pieces_of(&self.pipeline.split)
     }
 
+    /// The prices of any piece of this scenario's model ([`PieceCosts`]).
+    pub fn piece_costs(&self) -> PieceCosts {
+        PieceCosts::new(&self.layers, self.pipeline.stages, self.training.recompute)
+    }
+
     /// The pieces another `split` would cut the model into (it must cover the
-    /// layers exactly). With full recomputation a piece's backward also runs
-    /// its forward again, and it stashes only its input (the previous layer's
-    /// activation; nothing for the first piece, whose input is token ids).
+    /// layers exactly).
     pub fn pieces_of(&self, split: &[u32]) -> Vec<Piece> {
-        let full = self.training.recompute == Recompute::Full;
-        let p = self.pipeline.stages as usize;
-        let mut first = 0usize;
-        split
-            .iter()
-            .enumerate()
-            .map(|(k, &n)| {
-                let layers = &self.layers[first..first + n as usize];
-                let forward_ns: u64 = layers.iter().map(|l| l.forward_ns).sum();
-                let backward_ns: u64 = layers.iter().map(|l| l.backward_ns).sum();
-                let input = if first == 0 { 0 } else { self.layers[first - 1].activation_bytes };
-                let piece = Piece {
-                    first_layer: first,
-                    layers: n as usize,
-                    forward_ns,
-                    backward_ns: if full { backward_ns + forward_ns } else { backward_ns },
-                    send_bytes: layers.last().map_or(0, |l| l.activation_bytes),
-                    stash_bytes: if full { input } else { layers.iter().map(|l| l.stash_bytes).sum() },
-                    // The first layer is on device 0 (piece 0's); a piece on
-                    // another device copies the weights its layers share with it.
-                    params: layers.iter().map(|l| l.params).sum::<u64>()
-                        + if k % p != 0 { layers.iter().map(|l| l.tied_params).sum() } else { 0 },
-                };
-                first += n as usize;
-                piece
-            })
-            .collect()
+        self.piece_costs().pieces_of(split)
     }
 
     /// Samples per step: micro-batches x micro-batch size.
@@ -219,16 +215,58 @@ impl Scenario {
 /// Why a scenario was refused.
 #[derive(Debug, Error, PartialEq)]
 pub enum ScenarioError {
+    /// A file could not be read.
     #[error("cannot read {file}: {message}")]
-    Read { file: String, message: String },
+    Read {
+        /// The file.
+        file: String,
+        /// Why.
+        message: String,
+    },
+    /// The text is not YAML.
     #[error("{file}:{line}:{column}: YAML syntax error: {message}")]
-    Syntax { file: String, line: u32, column: u32, message: String },
+    Syntax {
+        /// The file.
+        file: String,
+        /// Line (1-based).
+        line: u32,
+        /// Column (1-based).
+        column: u32,
+        /// What the parser said.
+        message: String,
+    },
+    /// A key's value is refused.
     #[error("{}", invalid_text(.file, .key, .origin, .message))]
-    Invalid { file: String, key: String, origin: Origin, message: String },
+    Invalid {
+        /// The file.
+        file: String,
+        /// The dotted key path.
+        key: String,
+        /// Where the value was written.
+        origin: Origin,
+        /// What is wrong, in the user's terms.
+        message: String,
+    },
+    /// A `--set` argument is malformed.
     #[error("--set {arg}: {message}")]
-    Override { arg: String, message: String },
+    Override {
+        /// The argument.
+        arg: String,
+        /// What is wrong.
+        message: String,
+    },
+    /// A profile row is refused.
     #[error("{file}:{line}: column {column}: {message}")]
-    Profile { file: String, line: u64, column: String, message: String },
+    Profile {
+        /// The profile file.
+        file: String,
+        /// Line (1-based).
+        line: u64,
+        /// The column's name.
+        column: String,
+        /// What is wrong.
+        message: String,
+    },
 }
 
 fn invalid_text(file: &str, key: &str, origin: &Origin, message: &str) -> String {

@@ -14,7 +14,12 @@ use crate::ScenarioError;
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub enum Origin {
     /// Line and column (1-based) in the scenario file.
-    File { line: u32, column: u32 },
+    File {
+        /// Line, 1-based.
+        line: u32,
+        /// Column, 1-based.
+        column: u32,
+    },
     /// A `--set KEY=VALUE` argument.
     Set(String),
     /// Not written anywhere (a default).
@@ -34,19 +39,28 @@ impl fmt::Display for Origin {
 /// A value of the tree.
 #[derive(Clone, Debug, PartialEq)]
 pub enum Value {
+    /// Keys (with where each was written) and their values, in order.
     Map(Vec<(String, Origin, Node)>),
+    /// A list.
     Seq(Vec<Node>),
+    /// Text.
     Str(String),
+    /// A whole number.
     Int(i128),
+    /// A decimal number.
     Float(f64),
+    /// `true` or `false`.
     Bool(bool),
+    /// `null` or nothing.
     Null,
 }
 
 /// A value with its origin.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Node {
+    /// The value.
     pub value: Value,
+    /// Where it was written.
     pub origin: Origin,
 }
 

@@ -17,67 +17,246 @@
 //! operations exactly once, and the orders can all run to completion given the
 //! data dependencies between stages.
 //!
+//! ## The dataflow has one owner
+//!
+//! What an operation needs and what it produces is written once, here:
+//! [`Op::inputs`] and [`Op::outputs`] list, for any op, the ops it waits for
+//! and the ops that wait for it, with what flows between them ([`Flow`]: an
+//! activation or a gradient crossing a stage boundary, or nothing moving
+//! within a stage). [`OpKind::stash`] says when an op takes or frees the
+//! activations its stage keeps for the backward pass. The op kinds are data
+//! ([`OpKind::ALL`]); a plan runs the kinds its [`Shape`] lists
+//! ([`Shape::kinds`]: forward and backward, or forward, backward (input
+//! gradient) and weight (weight gradient) when the backward pass is split).
+//! [`Shape::op_index`] gives every op of a shape a dense index. The executor,
+//! the trace, the report and the split planner all ask these; none restates
+//! them.
+//!
 //! This crate deliberately knows nothing about time, durations, links or
-//! devices' speed: it only orders work.
+//! devices' speed: it only orders work and says what depends on what.
+#![warn(missing_docs)]
 
 use std::fmt;
 use std::str::FromStr;
 
 use thiserror::Error;
 
-/// Forward or backward pass.
+/// What an operation does: a forward pass, a backward pass (with a split
+/// backward, only its input-gradient part), or a weight-gradient pass.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, PartialOrd, Ord)]
 pub enum OpKind {
+    /// Forward pass of a micro-batch through a stage.
     Forward,
+    /// Backward pass: the whole backward, or with a split backward the part
+    /// that computes the gradient the previous stage needs.
     Backward,
+    /// The weight-gradient part of a split backward pass, which nothing
+    /// downstream waits for.
+    Weight,
+}
+
+/// What an op does to the activations its stage keeps from a micro-batch's
+/// forward pass for its backward pass.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Stash {
+    /// Takes them when it starts.
+    TakeAtStart,
+    /// Frees them when it ends.
+    FreeAtEnd,
+    /// Neither.
+    Keep,
 }
 
 impl OpKind {
+    /// Every kind, in index order.
+    pub const ALL: [OpKind; 3] = [OpKind::Forward, OpKind::Backward, OpKind::Weight];
+
+    /// The kinds of a plan whose backward pass is one op.
+    pub const FUSED: &'static [OpKind] = &[OpKind::Forward, OpKind::Backward];
+
+    /// The kinds of a plan whose backward pass is split in two.
+    pub const SPLIT: &'static [OpKind] = &[OpKind::Forward, OpKind::Backward, OpKind::Weight];
+
+    /// Position in [`OpKind::ALL`].
+    pub fn index(self) -> usize {
+        self as usize
+    }
+
+    /// The name used in traces and reports.
     pub fn as_str(self) -> &'static str {
         match self {
             OpKind::Forward => "forward",
             OpKind::Backward => "backward",
+            OpKind::Weight => "weight",
         }
+    }
+
+    /// The letter used in short op names (`F3@1`).
+    pub fn letter(self) -> char {
+        match self {
+            OpKind::Forward => 'F',
+            OpKind::Backward => 'B',
+            OpKind::Weight => 'W',
+        }
+    }
+
+    /// When the op takes or frees its stage's stashed activations: a forward
+    /// takes them as it starts, the backward frees them as it ends.
+    pub fn stash(self) -> Stash {
+        match self {
+            OpKind::Forward => Stash::TakeAtStart,
+            OpKind::Backward => Stash::FreeAtEnd,
+            OpKind::Weight => Stash::Keep,
+        }
+    }
+}
+
+/// What flows from an op to an op that waits for it.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub enum Flow {
+    /// A stage's output activation, to the next stage's forward.
+    Activation,
+    /// The gradient of that activation, back to the previous stage's backward.
+    Gradient,
+    /// Nothing moves: both ops run on the same stage (a backward needs its
+    /// forward's stash; a weight pass needs its backward's result).
+    Within,
+}
+
+impl Flow {
+    /// The name used in traces and reports.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Flow::Activation => "activation",
+            Flow::Gradient => "gradient",
+            Flow::Within => "within",
+        }
+    }
+
+    /// Whether data crosses a stage boundary (and so, between stages on
+    /// different devices, a link).
+    pub fn crosses_stages(self) -> bool {
+        self != Flow::Within
+    }
+}
+
+/// One dependency of an op: the op on the other end and what flows.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Edge {
+    /// The producer (for [`Op::inputs`]) or the consumer (for [`Op::outputs`]).
+    pub op: Op,
+    /// What flows along it.
+    pub flow: Flow,
+}
+
+/// Up to two edges, without allocating.
+#[derive(Clone, Copy, Debug)]
+pub struct Edges {
+    items: [Option<Edge>; 2],
+    at: usize,
+}
+
+impl Edges {
+    fn of(a: Option<Edge>, b: Option<Edge>) -> Self {
+        Edges { items: [a, b], at: 0 }
+    }
+}
+
+impl Iterator for Edges {
+    type Item = Edge;
+    fn next(&mut self) -> Option<Edge> {
+        while self.at < self.items.len() {
+            self.at += 1;
+            if let Some(e) = self.items[self.at - 1] {
+                return Some(e);
+            }
+        }
+        None
     }
 }
 
 /// One unit of work: a pass of one micro-batch through one virtual stage.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
 pub struct Op {
+    /// What pass it is.
     pub kind: OpKind,
+    /// The micro-batch, `0 .. m`.
     pub micro_batch: u32,
     /// Virtual stage, `0 .. p * v`.
     pub stage: u32,
 }
 
 impl Op {
+    /// The forward pass of `micro_batch` through `stage`.
     pub fn forward(micro_batch: u32, stage: u32) -> Self {
         Op { kind: OpKind::Forward, micro_batch, stage }
     }
+    /// The backward pass of `micro_batch` through `stage`.
     pub fn backward(micro_batch: u32, stage: u32) -> Self {
         Op { kind: OpKind::Backward, micro_batch, stage }
+    }
+    /// The weight-gradient pass of `micro_batch` on `stage`.
+    pub fn weight(micro_batch: u32, stage: u32) -> Self {
+        Op { kind: OpKind::Weight, micro_batch, stage }
+    }
+
+    /// The ops this one waits for, and what flows from each: forward(i, s)
+    /// needs forward(i, s-1)'s activation; backward(i, s) needs forward(i, s)
+    /// and backward(i, s+1)'s gradient; weight(i, s) needs backward(i, s).
+    pub fn inputs(self, shape: &Shape) -> Edges {
+        let (i, s) = (self.micro_batch, self.stage);
+        let last = shape.virtual_stages() - 1;
+        let edge = |op, flow| Some(Edge { op, flow });
+        match self.kind {
+            OpKind::Forward if s > 0 => Edges::of(edge(Op::forward(i, s - 1), Flow::Activation), None),
+            OpKind::Forward => Edges::of(None, None),
+            OpKind::Backward => Edges::of(
+                edge(Op::forward(i, s), Flow::Within),
+                if s < last { edge(Op::backward(i, s + 1), Flow::Gradient) } else { None },
+            ),
+            OpKind::Weight => Edges::of(edge(Op::backward(i, s), Flow::Within), None),
+        }
+    }
+
+    /// The ops that wait for this one, and what flows to each (the mirror of
+    /// [`Op::inputs`], over the kinds `shape` runs).
+    pub fn outputs(self, shape: &Shape) -> Edges {
+        let (i, s) = (self.micro_batch, self.stage);
+        let last = shape.virtual_stages() - 1;
+        let edge = |op, flow| Some(Edge { op, flow });
+        match self.kind {
+            OpKind::Forward => Edges::of(
+                if s < last { edge(Op::forward(i, s + 1), Flow::Activation) } else { None },
+                edge(Op::backward(i, s), Flow::Within),
+            ),
+            OpKind::Backward => Edges::of(
+                if s > 0 { edge(Op::backward(i, s - 1), Flow::Gradient) } else { None },
+                if shape.split_backward { edge(Op::weight(i, s), Flow::Within) } else { None },
+            ),
+            OpKind::Weight => Edges::of(None, None),
+        }
     }
 }
 
 impl fmt::Display for Op {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        let k = match self.kind {
-            OpKind::Forward => 'F',
-            OpKind::Backward => 'B',
-        };
-        write!(f, "{k}{}@{}", self.micro_batch, self.stage)
+        write!(f, "{}{}@{}", self.kind.letter(), self.micro_batch, self.stage)
     }
 }
 
 /// The schedules baton knows.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
 pub enum ScheduleKind {
+    /// Every forward, then every backward.
     FillDrain,
+    /// One forward, one backward after a warm-up.
     OneFOneB,
+    /// 1F1B over several model chunks per device.
     Interleaved,
 }
 
 impl ScheduleKind {
+    /// Every schedule, in the order help texts list them.
     pub const ALL: [ScheduleKind; 3] = [ScheduleKind::FillDrain, ScheduleKind::OneFOneB, ScheduleKind::Interleaved];
 
     /// The name used in scenario files and on the command line.
@@ -106,7 +285,8 @@ impl FromStr for ScheduleKind {
     }
 }
 
-/// The size of a pipeline: devices (= stages), micro-batches, chunks per device.
+/// The size of a pipeline: devices (= stages), micro-batches, chunks per
+/// device, and whether the backward pass is split into two ops.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
 pub struct Shape {
     /// `p`: pipeline stages, one device each.
@@ -115,11 +295,38 @@ pub struct Shape {
     pub micro_batches: u32,
     /// `v`: model chunks per device.
     pub chunks: u32,
+    /// Whether each backward pass is split into a backward (input gradient)
+    /// and a weight (weight gradient) op.
+    pub split_backward: bool,
 }
 
 impl Shape {
+    /// A shape whose backward pass is one op.
     pub fn new(stages: u32, micro_batches: u32, chunks: u32) -> Self {
-        Shape { stages, micro_batches, chunks }
+        Shape { stages, micro_batches, chunks, split_backward: false }
+    }
+
+    /// The op kinds every (micro-batch, virtual stage) runs.
+    pub fn kinds(&self) -> &'static [OpKind] {
+        if self.split_backward {
+            OpKind::SPLIT
+        } else {
+            OpKind::FUSED
+        }
+    }
+
+    /// Size of the dense op index: one slot per kind the shape runs,
+    /// micro-batch and virtual stage.
+    pub fn op_slots(&self) -> usize {
+        self.kinds().len() * self.micro_batches as usize * self.virtual_stages() as usize
+    }
+
+    /// Dense index of `op`: `(kind * m + micro_batch) * S + stage`, below
+    /// [`Shape::op_slots`] for the kinds the shape runs (its kinds are always
+    /// the first ones of [`OpKind::ALL`], so a kind's index is its place).
+    pub fn op_index(&self, op: Op) -> usize {
+        let s = self.virtual_stages() as usize;
+        (op.kind.index() * self.micro_batches as usize + op.micro_batch as usize) * s + op.stage as usize
     }
 
     /// `p * v`.
@@ -132,45 +339,108 @@ impl Shape {
         stage % self.stages
     }
 
-    /// Operations each device runs: `2 * m * v`.
+    /// Operations each device runs: one per kind, micro-batch and chunk.
     pub fn ops_per_device(&self) -> usize {
-        2 * self.micro_batches as usize * self.chunks as usize
+        self.kinds().len() * self.micro_batches as usize * self.chunks as usize
+    }
+
+    /// Operations in the whole plan.
+    pub fn ops(&self) -> u64 {
+        self.kinds().len() as u64 * self.micro_batches as u64 * self.virtual_stages() as u64
     }
 }
 
 /// Why a schedule could not be built or is not valid.
 #[derive(Debug, Error, PartialEq, Eq)]
 pub enum ScheduleError {
+    /// A name that is no schedule.
     #[error("unknown schedule `{0}`; expected one of: fill-drain, 1f1b, interleaved")]
     UnknownSchedule(String),
+    /// A size of zero.
     #[error("{what} must be at least 1")]
-    Zero { what: &'static str },
+    Zero {
+        /// Which size.
+        what: &'static str,
+    },
+    /// Chunks with a schedule that runs one per device.
     #[error("schedule {schedule} runs one chunk per device, but chunks = {chunks}; use `interleaved` for more")]
-    ChunksNotSupported { schedule: ScheduleKind, chunks: u32 },
+    ChunksNotSupported {
+        /// The schedule.
+        schedule: ScheduleKind,
+        /// The chunks asked for.
+        chunks: u32,
+    },
+    /// Interleaved with micro-batches not a multiple of stages.
     #[error(
         "interleaved needs micro_batches to be a multiple of stages: {micro_batches} is not a multiple of {stages}"
     )]
-    NotMultiple { micro_batches: u32, stages: u32 },
+    NotMultiple {
+        /// Micro-batches.
+        micro_batches: u32,
+        /// Stages.
+        stages: u32,
+    },
+    /// More operations than a plan may hold.
     #[error("the plan is too large: {0} operations (at most {MAX_OPS})")]
     TooLarge(u64),
+    /// Not one order per device.
     #[error("plan has {found} device orders, expected {expected}")]
-    DeviceCount { found: usize, expected: usize },
+    DeviceCount {
+        /// Orders given.
+        found: usize,
+        /// Devices.
+        expected: usize,
+    },
+    /// An op on a device its stage is not on.
     #[error("device {device} holds {op}, which belongs to device {owner}")]
-    WrongDevice { device: u32, op: Op, owner: u32 },
+    WrongDevice {
+        /// The device holding it.
+        device: u32,
+        /// The op.
+        op: Op,
+        /// The device it belongs to.
+        owner: u32,
+    },
+    /// An op outside the shape.
     #[error("device {device} holds {op}, which is out of range")]
-    OutOfRange { device: u32, op: Op },
+    OutOfRange {
+        /// The device holding it.
+        device: u32,
+        /// The op.
+        op: Op,
+    },
+    /// An op held twice.
     #[error("device {device} holds {op} more than once")]
-    Duplicate { device: u32, op: Op },
+    Duplicate {
+        /// The device holding it.
+        device: u32,
+        /// The op.
+        op: Op,
+    },
+    /// An op held by no device.
     #[error("device {device} is missing {op}")]
-    Missing { device: u32, op: Op },
+    Missing {
+        /// The device it belongs to.
+        device: u32,
+        /// The op.
+        op: Op,
+    },
+    /// The orders wait on each other forever.
     #[error("the orders cannot complete: device {device} waits forever at {op}")]
-    Deadlock { device: u32, op: Op },
+    Deadlock {
+        /// A device that waits.
+        device: u32,
+        /// The op it waits at.
+        op: Op,
+    },
 }
 
 /// Each device's ordered operations for one training step.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Plan {
+    /// The schedule that made it.
     pub kind: ScheduleKind,
+    /// Its size.
     pub shape: Shape,
     /// `per_device[d]` is device `d`'s order.
     pub per_device: Vec<Vec<Op>>,
@@ -206,7 +476,7 @@ pub fn check_shape(kind: ScheduleKind, shape: Shape) -> Result<(), ScheduleError
     if shape.chunks == 0 {
         return Err(ScheduleError::Zero { what: "chunks" });
     }
-    let total = shape.stages as u64 * shape.chunks as u64 * shape.micro_batches as u64 * 2;
+    let total = shape.ops();
     if total > MAX_OPS {
         return Err(ScheduleError::TooLarge(total));
     }
@@ -271,25 +541,13 @@ fn interleaved(shape: Shape, d: u32) -> Vec<Op> {
     ops
 }
 
-/// Dense index of an op: `((kind * m) + micro_batch) * S + stage`.
-fn dense(shape: &Shape, op: Op) -> usize {
-    let s = shape.virtual_stages() as usize;
-    let m = shape.micro_batches as usize;
-    let k = match op.kind {
-        OpKind::Forward => 0,
-        OpKind::Backward => 1,
-    };
-    (k * m + op.micro_batch as usize) * s + op.stage as usize
-}
-
 /// Proves that `plan` is complete and can run to the end.
 ///
-/// Every device must hold each of its operations (forward and backward of each
-/// micro-batch on each of its virtual stages) exactly once and nothing else;
-/// and executing the orders, each device strictly in its own order, with
-/// forward(i, s) waiting for forward(i, s-1) and backward(i, s) waiting for
-/// forward(i, s) and backward(i, s+1), must finish every operation. Runs in time
-/// linear in the number of operations.
+/// Every device must hold each of its operations (one of each kind the shape
+/// runs, for each micro-batch on each of its virtual stages) exactly once and
+/// nothing else; and executing the orders, each device strictly in its own
+/// order, each op waiting for its [`Op::inputs`], must finish every
+/// operation. Runs in time linear in the number of operations.
 pub fn validate(plan: &Plan) -> Result<(), ScheduleError> {
     let shape = plan.shape;
     let p = shape.stages as usize;
@@ -297,29 +555,27 @@ pub fn validate(plan: &Plan) -> Result<(), ScheduleError> {
         return Err(ScheduleError::DeviceCount { found: plan.per_device.len(), expected: p });
     }
     let n_stages = shape.virtual_stages();
-    let total = 2 * shape.micro_batches as usize * n_stages as usize;
-    let mut seen = vec![false; total];
+    let mut seen = vec![false; shape.op_slots()];
     for (d, ops) in plan.per_device.iter().enumerate() {
         let device = d as u32;
         for &op in ops {
-            if op.stage >= n_stages || op.micro_batch >= shape.micro_batches {
+            if op.stage >= n_stages || op.micro_batch >= shape.micro_batches || !shape.kinds().contains(&op.kind) {
                 return Err(ScheduleError::OutOfRange { device, op });
             }
             let owner = shape.device_of(op.stage);
             if owner != device {
                 return Err(ScheduleError::WrongDevice { device, op, owner });
             }
-            let idx = dense(&shape, op);
-            if std::mem::replace(&mut seen[idx], true) {
+            if std::mem::replace(&mut seen[shape.op_index(op)], true) {
                 return Err(ScheduleError::Duplicate { device, op });
             }
         }
     }
-    for kind in [OpKind::Forward, OpKind::Backward] {
+    for &kind in shape.kinds() {
         for micro_batch in 0..shape.micro_batches {
             for stage in 0..n_stages {
                 let op = Op { kind, micro_batch, stage };
-                if !seen[dense(&shape, op)] {
+                if !seen[shape.op_index(op)] {
                     return Err(ScheduleError::Missing { device: shape.device_of(stage), op });
                 }
             }
@@ -327,29 +583,22 @@ pub fn validate(plan: &Plan) -> Result<(), ScheduleError> {
     }
 
     // Completion: advance devices from a worklist; an op completing wakes the
-    // devices of the ops that depend on it.
-    let mut done = vec![false; total];
+    // devices of the ops that wait for it.
+    let mut done = vec![false; shape.op_slots()];
     let mut next = vec![0usize; p];
     let mut work: Vec<usize> = (0..p).collect();
-    let ready = |op: Op, done: &[bool]| -> bool {
-        match op.kind {
-            OpKind::Forward => op.stage == 0 || done[dense(&shape, Op::forward(op.micro_batch, op.stage - 1))],
-            OpKind::Backward => {
-                done[dense(&shape, Op::forward(op.micro_batch, op.stage))]
-                    && (op.stage + 1 == n_stages || done[dense(&shape, Op::backward(op.micro_batch, op.stage + 1))])
-            }
-        }
-    };
+    let ready = |op: Op, done: &[bool]| op.inputs(&shape).all(|e| done[shape.op_index(e.op)]);
     while let Some(d) = work.pop() {
         let ops = &plan.per_device[d];
         while next[d] < ops.len() && ready(ops[next[d]], &done) {
             let op = ops[next[d]];
-            done[dense(&shape, op)] = true;
+            done[shape.op_index(op)] = true;
             next[d] += 1;
-            match op.kind {
-                OpKind::Forward if op.stage + 1 < n_stages => work.push(shape.device_of(op.stage + 1) as usize),
-                OpKind::Backward if op.stage > 0 => work.push(shape.device_of(op.stage - 1) as usize),
-                _ => {}
+            for e in op.outputs(&shape) {
+                let to = shape.device_of(e.op.stage) as usize;
+                if to != d {
+                    work.push(to);
+                }
             }
         }
     }
@@ -359,6 +608,29 @@ pub fn validate(plan: &Plan) -> Result<(), ScheduleError> {
         }
     }
     Ok(())
+}
+
+/// Micro-batches whose stash each virtual stage holds at once at most, read
+/// off the device orders: each device runs its ops one at a time, so counting
+/// the ops that take a stash up and those that free one down, in order, gives
+/// the peak.
+pub fn peak_stashes(plan: &Plan) -> Vec<u64> {
+    let n = plan.shape.virtual_stages() as usize;
+    let (mut held, mut peak) = (vec![0u64; n], vec![0u64; n]);
+    for ops in &plan.per_device {
+        for op in ops {
+            let s = op.stage as usize;
+            match op.kind.stash() {
+                Stash::TakeAtStart => {
+                    held[s] += 1;
+                    peak[s] = peak[s].max(held[s]);
+                }
+                Stash::FreeAtEnd => held[s] = held[s].saturating_sub(1),
+                Stash::Keep => {}
+            }
+        }
+    }
+    peak
 }
 
 #[cfg(test)]
@@ -441,6 +713,99 @@ mod tests {
         let mut dead = good.clone();
         dead.per_device[1].sort_by_key(|o| std::cmp::Reverse(o.kind));
         assert!(matches!(validate(&dead), Err(ScheduleError::Deadlock { .. })));
+    }
+
+    #[test]
+    fn dataflow_of_each_kind() {
+        let shape = Shape::new(3, 2, 1);
+        let edges = |e: Edges| e.map(|e| (e.op.to_string(), e.flow)).collect::<Vec<_>>();
+        assert_eq!(edges(Op::forward(1, 0).inputs(&shape)), vec![]);
+        assert_eq!(edges(Op::forward(1, 2).inputs(&shape)), vec![("F1@1".into(), Flow::Activation)]);
+        assert_eq!(
+            edges(Op::backward(1, 1).inputs(&shape)),
+            vec![("F1@1".into(), Flow::Within), ("B1@2".into(), Flow::Gradient)]
+        );
+        assert_eq!(edges(Op::backward(1, 2).inputs(&shape)), vec![("F1@2".into(), Flow::Within)]);
+        assert_eq!(edges(Op::backward(0, 0).outputs(&shape)), vec![], "a fused backward of stage 0 feeds nothing");
+        let split = Shape { split_backward: true, ..shape };
+        assert_eq!(edges(Op::backward(0, 0).outputs(&split)), vec![("W0@0".into(), Flow::Within)]);
+        assert_eq!(edges(Op::weight(0, 1).inputs(&split)), vec![("B0@1".into(), Flow::Within)]);
+        assert_eq!(split.ops_per_device(), 6);
+        assert_eq!(shape.kinds(), &[OpKind::Forward, OpKind::Backward]);
+    }
+
+    #[test]
+    fn op_index_is_dense_and_distinct() {
+        let shape = Shape { split_backward: true, ..Shape::new(2, 3, 2) };
+        let mut seen = vec![false; shape.op_slots()];
+        for kind in OpKind::ALL {
+            for i in 0..3 {
+                for s in 0..4 {
+                    let k = shape.op_index(Op { kind, micro_batch: i, stage: s });
+                    assert!(!std::mem::replace(&mut seen[k], true));
+                }
+            }
+        }
+        assert!(seen.iter().all(|&x| x));
+    }
+
+    #[test]
+    fn a_split_backward_plan_validates_and_its_order_matters() {
+        // Two stages, one micro-batch, backward split: W may run any time
+        // after its B on the same device.
+        let shape = Shape { split_backward: true, ..Shape::new(2, 1, 1) };
+        let ok = Plan {
+            kind: ScheduleKind::FillDrain,
+            shape,
+            per_device: vec![
+                vec![Op::forward(0, 0), Op::backward(0, 0), Op::weight(0, 0)],
+                vec![Op::forward(0, 1), Op::backward(0, 1), Op::weight(0, 1)],
+            ],
+        };
+        assert_eq!(validate(&ok), Ok(()));
+        let mut early = ok.clone();
+        early.per_device[1].swap(1, 2);
+        assert!(matches!(validate(&early), Err(ScheduleError::Deadlock { .. })));
+        let mut fused = ok.clone();
+        fused.shape.split_backward = false;
+        assert!(matches!(validate(&fused), Err(ScheduleError::OutOfRange { .. })), "W in a fused plan");
+        // The weight pass neither takes nor frees the stash.
+        assert_eq!(peak_stashes(&ok), vec![1, 1]);
+    }
+
+    #[test]
+    fn peak_stashes_follow_the_schedule() {
+        // Narayanan et al., ICML 2021, sec. 3: 1F1B keeps at most p - d
+        // micro-batches in flight on device d; fill-drain keeps all m.
+        let p = build(ScheduleKind::OneFOneB, Shape::new(4, 8, 1)).unwrap();
+        assert_eq!(peak_stashes(&p), vec![4, 3, 2, 1]);
+        let p = build(ScheduleKind::FillDrain, Shape::new(4, 8, 1)).unwrap();
+        assert_eq!(peak_stashes(&p), vec![8, 8, 8, 8]);
+        let p = build(ScheduleKind::OneFOneB, Shape::new(4, 2, 1)).unwrap();
+        assert_eq!(peak_stashes(&p), vec![2, 2, 2, 1]);
+    }
+
+    proptest! {
+        /// Inputs and outputs are mirror images: every input edge of an op is
+        /// an output edge of its producer with the same flow, and back.
+        #[test]
+        fn inputs_and_outputs_mirror(p in 1u32..5, m in 1u32..4, v in 1u32..3, split in any::<bool>()) {
+            let shape = Shape { split_backward: split, ..Shape::new(p, m, v) };
+            for &kind in shape.kinds() {
+                for i in 0..m {
+                    for s in 0..shape.virtual_stages() {
+                        let op = Op { kind, micro_batch: i, stage: s };
+                        for e in op.inputs(&shape) {
+                            prop_assert!(e.op.outputs(&shape).any(|o| o.op == op && o.flow == e.flow), "{op} <- {}", e.op);
+                        }
+                        for e in op.outputs(&shape) {
+                            prop_assert!(e.op.inputs(&shape).any(|o| o.op == op && o.flow == e.flow), "{op} -> {}", e.op);
+                            prop_assert_eq!(e.flow.crosses_stages(), e.op.stage != s);
+                        }
+                    }
+                }
+            }
+        }
     }
 
     proptest! {

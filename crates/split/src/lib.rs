@@ -49,46 +49,49 @@
 //! that needs it.
 //!
 //! It deliberately knows nothing about time order, links or simulation.
+#![warn(missing_docs)]
 
 use thiserror::Error;
 
-/// One layer as the split sees it.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub struct Layer {
-    /// Forward + backward time per micro-batch (with recomputation, the
-    /// forward counts twice).
-    pub cost_ns: u64,
-    pub params: u64,
-    /// Parameters shared with the first layer (tied weights): held again,
-    /// as a copy, by a piece on any device but device 0 (the first layer's).
-    pub tied_params: u64,
-    /// Bytes stashed per micro-batch (used without recomputation).
-    pub stash_bytes: u64,
-    /// The activation this layer sends on (the next piece's input, stashed
-    /// with full recomputation).
-    pub activation_bytes: u64,
+/// What the search asks of a model: the price of any run of layers as one
+/// piece. The caller owns the rules (what a piece stashes, which parameters
+/// it holds); the search only needs the numbers, and these guarantees: both
+/// prices grow (never shrink) as a run grows at its end, and a run inside
+/// another is never dearer.
+pub trait Pieces {
+    /// Layers in the model.
+    fn layers(&self) -> usize;
+    /// Time per micro-batch of layers `a..b` as one piece (forward and
+    /// backward, with whatever the caller adds).
+    fn time_ns(&self, a: usize, b: usize) -> u128;
+    /// Bytes piece `k` (on device `k mod p`) over layers `a..b` needs on its
+    /// device, the reserve excluded: its model state and its stash times the
+    /// micro-batches the schedule keeps in flight on it.
+    fn bytes(&self, k: usize, a: usize, b: usize) -> u128;
+    /// Whether [`Pieces::bytes`] depends only on the run's layers, not on
+    /// the piece's index or where the run starts (a greedy test is then
+    /// exact).
+    fn position_independent(&self) -> bool;
 }
 
 /// The memory each device has.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct Memory {
+    /// Capacity of one device.
     pub capacity_bytes: u64,
+    /// Bytes every device keeps aside.
     pub reserved_bytes: u64,
-    pub state_bytes_per_param: u64,
-    /// Full recomputation: a piece stashes only its input activation.
-    pub recompute: bool,
 }
 
 /// A split problem.
-#[derive(Clone, Debug, PartialEq, Eq)]
-pub struct Problem {
-    pub layers: Vec<Layer>,
+#[derive(Clone, Copy)]
+pub struct Problem<'a> {
+    /// The prices of the model's pieces.
+    pub pieces: &'a dyn Pieces,
     /// `p`: devices (pipeline stages).
     pub devices: usize,
     /// `v`: chunks per device; there are `p x v` pieces, piece `k` on device `k mod p`.
     pub chunks: usize,
-    /// Micro-batches held at once on each piece (from the schedule), `p x v` entries.
-    pub in_flight: Vec<u64>,
     /// `None`: memory is not limited.
     pub memory: Option<Memory>,
 }
@@ -114,84 +117,77 @@ pub struct Solution {
 /// The answer to a split problem.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub enum Outcome {
+    /// The best split that fits.
     Fits(Solution),
     /// No split fits: the smallest capacity shortfall over all splits, the
     /// device short of it in the split that comes closest, and that split.
     NoFit {
+        /// Bytes more each device would need for some split to fit.
         shortfall_bytes: u64,
+        /// The device that falls short in the closest split.
         device: usize,
+        /// The split that comes closest.
         closest: Solution,
     },
 }
 
+/// Why a split problem could not be solved.
 #[derive(Debug, Error, PartialEq, Eq)]
 pub enum SplitError {
+    /// More pieces than layers.
     #[error("{pieces} pieces need at least as many layers, but the model has {layers}")]
-    TooFewLayers { pieces: usize, layers: usize },
+    TooFewLayers {
+        /// Pieces asked for.
+        pieces: usize,
+        /// Layers in the model.
+        layers: usize,
+    },
+    /// No device or no chunk.
     #[error("the split needs at least one device and one chunk")]
     NoPieces,
-    #[error("in_flight has {found} entries for {expected} pieces")]
-    InFlight { found: usize, expected: usize },
+    /// A given split has the wrong number of pieces.
+    #[error("the split has {found} pieces; the problem has {expected}")]
+    PieceCount {
+        /// Pieces in the split.
+        found: usize,
+        /// Pieces in the problem.
+        expected: usize,
+    },
+    /// The position-dependent search would be too large.
     #[error("an exact memory-limited split of {layers} layers into {pieces} pieces is too large to search (at most {limit} layers x pieces)")]
-    TooLarge { layers: usize, pieces: usize, limit: usize },
+    TooLarge {
+        /// Layers in the model.
+        layers: usize,
+        /// Pieces asked for.
+        pieces: usize,
+        /// The most layers x pieces searched.
+        limit: usize,
+    },
 }
 
 /// Largest `layers x pieces` the reachability sweep handles.
 pub const MAX_SWEEP: usize = 4_000_000;
 
-struct Prefix {
-    cost: Vec<u128>,
-    params: Vec<u128>,
-    tied: Vec<u128>,
-    stash: Vec<u128>,
+/// The problem being solved, with shorthands for its prices.
+struct Search<'a> {
+    p: Problem<'a>,
 }
 
-impl Prefix {
-    fn new(layers: &[Layer]) -> Self {
-        let sums = |f: &dyn Fn(&Layer) -> u64| {
-            let mut v = Vec::with_capacity(layers.len() + 1);
-            v.push(0u128);
-            for l in layers {
-                let last = *v.last().unwrap_or(&0);
-                v.push(last + f(l) as u128);
-            }
-            v
-        };
-        Prefix {
-            cost: sums(&|l| l.cost_ns),
-            params: sums(&|l| l.params),
-            tied: sums(&|l| l.tied_params),
-            stash: sums(&|l| l.stash_bytes),
-        }
-    }
-}
-
-struct Ctx<'a> {
-    p: &'a Problem,
-    pre: Prefix,
-}
-
-impl Ctx<'_> {
+impl Search<'_> {
     fn cost(&self, a: usize, b: usize) -> u128 {
-        self.pre.cost[b] - self.pre.cost[a]
+        self.p.pieces.time_ns(a, b)
+    }
+
+    fn layers(&self) -> usize {
+        self.p.pieces.layers()
     }
 
     /// Bytes piece `k` over layers `a..b` needs, reserve excluded.
     fn piece_bytes(&self, k: usize, a: usize, b: usize) -> u128 {
-        let Some(m) = self.p.memory else { return 0 };
-        // The first layer is on device 0; any other device copies tied weights.
-        let copies = if k % self.p.devices != 0 { self.pre.tied[b] - self.pre.tied[a] } else { 0 };
-        let state = (self.pre.params[b] - self.pre.params[a] + copies) * m.state_bytes_per_param as u128;
-        let stash = if m.recompute {
-            if a == 0 {
-                0
-            } else {
-                self.p.layers[a - 1].activation_bytes as u128
-            }
-        } else {
-            self.pre.stash[b] - self.pre.stash[a]
-        };
-        state + self.p.in_flight[k] as u128 * stash
+        if self.p.memory.is_none() {
+            return 0;
+        }
+        self.p.pieces.bytes(k, a, b)
     }
 
     /// What one piece may use, reserve excluded, for a device capacity `cap`.
@@ -235,22 +231,13 @@ impl Ctx<'_> {
     }
 
     /// Greedy is exact when a piece's limits do not depend on its position
-    /// or its start: no memory limit, or the same in-flight count on every
-    /// piece, no recomputation and no tied weights (whose copies depend on
-    /// the piece's device).
+    /// or its start: no memory limit, or prices that depend only on the run.
     fn greedy_is_exact(&self) -> bool {
-        match self.p.memory {
-            None => true,
-            Some(m) => {
-                !m.recompute
-                    && self.p.in_flight.windows(2).all(|w| w[0] == w[1])
-                    && self.p.layers.iter().all(|l| l.tied_params == 0)
-            }
-        }
+        self.p.memory.is_none() || self.p.pieces.position_independent()
     }
 
     fn greedy(&self, limit_ns: u128, cap: u128) -> Option<Vec<u32>> {
-        let (n, kk) = (self.p.layers.len(), self.pieces());
+        let (n, kk) = (self.layers(), self.pieces());
         let budget = self.piece_budget(cap);
         let mut split = Vec::with_capacity(kk);
         let mut at = 0;
@@ -267,7 +254,7 @@ impl Ctx<'_> {
     }
 
     fn sweep(&self, limit_ns: u128, cap: u128) -> Option<Vec<u32>> {
-        let (n, kk) = (self.p.layers.len(), self.pieces());
+        let (n, kk) = (self.layers(), self.pieces());
         let budget = self.piece_budget(cap);
         // reach[k][j]: the first k pieces can end exactly at boundary j.
         let mut reach = vec![vec![false; n + 1]; kk + 1];
@@ -328,19 +315,16 @@ impl Ctx<'_> {
 }
 
 /// Solves a split problem exactly (see the crate documentation).
-pub fn solve(problem: &Problem) -> Result<Outcome, SplitError> {
+pub fn solve(problem: &Problem<'_>) -> Result<Outcome, SplitError> {
     let pieces = problem.devices * problem.chunks;
     if pieces == 0 {
         return Err(SplitError::NoPieces);
     }
-    let n = problem.layers.len();
+    let n = problem.pieces.layers();
     if pieces > n {
         return Err(SplitError::TooFewLayers { pieces, layers: n });
     }
-    if problem.in_flight.len() != pieces {
-        return Err(SplitError::InFlight { found: problem.in_flight.len(), expected: pieces });
-    }
-    let cx = Ctx { p: problem, pre: Prefix::new(&problem.layers) };
+    let cx = Search { p: *problem };
     if !cx.greedy_is_exact() && n.saturating_mul(pieces) > MAX_SWEEP {
         return Err(SplitError::TooLarge { layers: n, pieces, limit: MAX_SWEEP });
     }
@@ -382,7 +366,7 @@ pub fn solve(problem: &Problem) -> Result<Outcome, SplitError> {
     }
 
     // Smallest bottleneck that still fits.
-    let largest_layer = problem.layers.iter().map(|l| l.cost_ns as u128).max().unwrap_or(0);
+    let largest_layer = (0..n).map(|i| cx.cost(i, i + 1)).max().unwrap_or(0);
     let (mut lo, mut hi) = (largest_layer, total);
     while lo < hi {
         let mid = lo + (hi - lo) / 2;
@@ -404,7 +388,7 @@ pub fn solve(problem: &Problem) -> Result<Outcome, SplitError> {
 /// best split found so far.
 pub const DEVICE_SEARCH_BUDGET: u64 = 2_000_000;
 
-impl Ctx<'_> {
+impl Search<'_> {
     /// With several chunks per device: the split minimising the largest
     /// device time (the sum of its pieces) with each device's memory (reserve
     /// plus its pieces' state and in-flight stash) within `cap`, by
@@ -413,7 +397,7 @@ impl Ctx<'_> {
     /// best found or its memory exceeds `cap` (both only grow with the end).
     /// Exact when it finishes within [`DEVICE_SEARCH_BUDGET`] nodes.
     fn best_by_device(&self, incumbent: Option<Solution>, cap: u128) -> Solution {
-        let (n, kk, p) = (self.p.layers.len(), self.pieces(), self.p.devices);
+        let (n, kk, p) = (self.layers(), self.pieces(), self.p.devices);
         let reserved = self.p.memory.map_or(0, |m| m.reserved_bytes as u128);
         let mut best_split = incumbent.as_ref().map(|s| s.split.clone());
         let mut best = incumbent.as_ref().map_or(u128::MAX, |s| s.device_ns.iter().copied().max().unwrap_or(0) as u128);
@@ -423,7 +407,7 @@ impl Ctx<'_> {
         let mut mem = vec![reserved; p];
         #[allow(clippy::too_many_arguments)]
         fn dfs(
-            cx: &Ctx<'_>,
+            cx: &Search<'_>,
             k: usize,
             start: usize,
             split: &mut Vec<u32>,
@@ -434,7 +418,7 @@ impl Ctx<'_> {
             best_split: &mut Option<Vec<u32>>,
             nodes: &mut u64,
         ) -> bool {
-            let (n, kk, p) = (cx.p.layers.len(), cx.pieces(), cx.p.devices);
+            let (n, kk, p) = (cx.layers(), cx.pieces(), cx.p.devices);
             *nodes += 1;
             if *nodes > DEVICE_SEARCH_BUDGET {
                 return false;
@@ -482,18 +466,19 @@ impl Ctx<'_> {
 
 /// Times and memory of a given `split` of `problem` (it must cover the
 /// layers with `p x v` positive entries).
-pub fn evaluate(problem: &Problem, split: &[u32]) -> Result<Solution, SplitError> {
+pub fn evaluate(problem: &Problem<'_>, split: &[u32]) -> Result<Solution, SplitError> {
     let pieces = problem.devices * problem.chunks;
     if pieces == 0 {
         return Err(SplitError::NoPieces);
     }
-    if split.len() != pieces || problem.in_flight.len() != pieces {
-        return Err(SplitError::InFlight { found: split.len(), expected: pieces });
+    if split.len() != pieces {
+        return Err(SplitError::PieceCount { found: split.len(), expected: pieces });
     }
-    if split.iter().map(|&x| x as usize).sum::<usize>() != problem.layers.len() {
-        return Err(SplitError::TooFewLayers { pieces, layers: problem.layers.len() });
+    let layers = problem.pieces.layers();
+    if split.iter().map(|&x| x as usize).sum::<usize>() != layers {
+        return Err(SplitError::TooFewLayers { pieces, layers });
     }
-    let cx = Ctx { p: problem, pre: Prefix::new(&problem.layers) };
+    let cx = Search { p: *problem };
     Ok(cx.solution(split))
 }
 
@@ -502,19 +487,28 @@ fn even(n: usize, k: usize) -> Vec<u32> {
     (0..k).map(|i| (n / k + usize::from(i < n % k)) as u32).collect()
 }
 
+/// Layer times alone, with no memory.
+struct Weights<'a>(&'a [u64]);
+
+impl Pieces for Weights<'_> {
+    fn layers(&self) -> usize {
+        self.0.len()
+    }
+    fn time_ns(&self, a: usize, b: usize) -> u128 {
+        self.0[a..b].iter().map(|&w| w as u128).sum()
+    }
+    fn bytes(&self, _: usize, _: usize, _: usize) -> u128 {
+        0
+    }
+    fn position_independent(&self) -> bool {
+        true
+    }
+}
+
 /// The classic linear partition: `weights` into `k` contiguous runs
 /// minimising the largest run sum. Returns that sum and one optimal split.
 pub fn linear_partition(weights: &[u64], k: usize) -> Result<(u64, Vec<u32>), SplitError> {
-    let problem = Problem {
-        layers: weights
-            .iter()
-            .map(|&w| Layer { cost_ns: w, params: 0, tied_params: 0, stash_bytes: 0, activation_bytes: 0 })
-            .collect(),
-        devices: k,
-        chunks: 1,
-        in_flight: vec![0; k],
-        memory: None,
-    };
+    let problem = Problem { pieces: &Weights(weights), devices: k, chunks: 1, memory: None };
     match solve(&problem)? {
         Outcome::Fits(s) => Ok((s.bottleneck_ns, s.split)),
         Outcome::NoFit { closest, .. } => Ok((closest.bottleneck_ns, closest.split)),
@@ -546,8 +540,77 @@ mod tests {
         assert_eq!(linear_partition(&[1, 2], 0).unwrap_err(), SplitError::NoPieces);
     }
 
+    /// A layer as these tests describe it.
+    #[derive(Clone, Copy, Debug)]
+    struct Layer {
+        cost_ns: u64,
+        params: u64,
+        tied_params: u64,
+        stash_bytes: u64,
+        activation_bytes: u64,
+    }
+
     fn layer(cost: u64, params: u64, stash: u64) -> Layer {
         Layer { cost_ns: cost, params, tied_params: 0, stash_bytes: stash, activation_bytes: stash }
+    }
+
+    /// A model priced by the rule the crate documents for its callers (a
+    /// piece's state is its parameters, and on any device but 0 their tied
+    /// parameters too, x bytes per parameter; its stash is its layers' stashes,
+    /// or with recomputation the layer before it; times in flight).
+    #[derive(Clone, Debug)]
+    struct Model {
+        layers: Vec<Layer>,
+        devices: usize,
+        chunks: usize,
+        in_flight: Vec<u64>,
+        bytes_per_param: u64,
+        recompute: bool,
+        memory: Option<Memory>,
+    }
+
+    impl Pieces for Model {
+        fn layers(&self) -> usize {
+            self.layers.len()
+        }
+        fn time_ns(&self, a: usize, b: usize) -> u128 {
+            self.layers[a..b].iter().map(|l| l.cost_ns as u128).sum()
+        }
+        fn bytes(&self, k: usize, a: usize, b: usize) -> u128 {
+            let run = &self.layers[a..b];
+            let tied: u64 = if k % self.devices != 0 { run.iter().map(|l| l.tied_params).sum() } else { 0 };
+            let params = run.iter().map(|l| l.params).sum::<u64>() + tied;
+            let stash = if !self.recompute {
+                run.iter().map(|l| l.stash_bytes).sum::<u64>()
+            } else if a == 0 {
+                0
+            } else {
+                self.layers[a - 1].activation_bytes
+            };
+            (params * self.bytes_per_param + self.in_flight[k] * stash) as u128
+        }
+        fn position_independent(&self) -> bool {
+            !self.recompute
+                && self.in_flight.windows(2).all(|w| w[0] == w[1])
+                && self.layers.iter().all(|l| l.tied_params == 0)
+        }
+    }
+
+    impl Model {
+        fn new(layers: Vec<Layer>, devices: usize, in_flight: Vec<u64>, capacity_bytes: u64) -> Self {
+            Model {
+                layers,
+                devices,
+                chunks: 1,
+                in_flight,
+                bytes_per_param: 0,
+                recompute: false,
+                memory: Some(Memory { capacity_bytes, reserved_bytes: 0 }),
+            }
+        }
+        fn problem(&self) -> Problem<'_> {
+            Problem { pieces: self, devices: self.devices, chunks: self.chunks, memory: self.memory }
+        }
     }
 
     #[test]
@@ -555,14 +618,8 @@ mod tests {
         // Two devices, 1F1B-like: device 0 holds 2 micro-batches, device 1 one.
         // Times alone would split [2 | 2]; device 0 can hold only 150 bytes, so
         // it takes one layer: 2 x 50 = 100 <= 150, while 2 x 100 = 200 > 150.
-        let p = Problem {
-            layers: vec![layer(10, 0, 50); 4],
-            devices: 2,
-            chunks: 1,
-            in_flight: vec![2, 1],
-            memory: Some(Memory { capacity_bytes: 150, reserved_bytes: 0, state_bytes_per_param: 0, recompute: false }),
-        };
-        match solve(&p).unwrap() {
+        let m = Model::new(vec![layer(10, 0, 50); 4], 2, vec![2, 1], 150);
+        match solve(&m.problem()).unwrap() {
             Outcome::Fits(s) => {
                 assert_eq!(s.split, vec![1, 3]);
                 assert_eq!(s.bottleneck_ns, 30);
@@ -576,14 +633,8 @@ mod tests {
     fn reports_the_smallest_shortfall() {
         // Each piece must hold at least one layer of 100 bytes x 2 in flight on
         // device 0; with capacity 120 the best any split can do is 200: 80 short.
-        let p = Problem {
-            layers: vec![layer(10, 0, 100); 3],
-            devices: 2,
-            chunks: 1,
-            in_flight: vec![2, 1],
-            memory: Some(Memory { capacity_bytes: 120, reserved_bytes: 0, state_bytes_per_param: 0, recompute: false }),
-        };
-        match solve(&p).unwrap() {
+        let m = Model::new(vec![layer(10, 0, 100); 3], 2, vec![2, 1], 120);
+        match solve(&m.problem()).unwrap() {
             Outcome::NoFit { shortfall_bytes, device, closest } => {
                 // Device 0 with one layer needs 200 (80 short), device 1 then
                 // holds two layers, 200 (80 short): either way 80.
@@ -617,26 +668,26 @@ mod tests {
     /// parameters unless the piece is on device 0) x bytes per parameter +
     /// micro-batches in flight x the piece's stash (its layers' stashes, or
     /// with recomputation the activation of the layer before it).
-    fn score(p: &Problem, split: &[u32]) -> (Vec<u64>, Vec<u64>) {
+    fn score(p: &Model, split: &[u32]) -> (Vec<u64>, Vec<u64>) {
         let mut time = vec![0u64; p.devices];
         let mut bytes = vec![p.memory.map_or(0, |m| m.reserved_bytes); p.devices];
         let mut start = 0usize;
         for (k, &len) in split.iter().enumerate() {
             let layers = &p.layers[start..start + len as usize];
             time[k % p.devices] += layers.iter().map(|l| l.cost_ns).sum::<u64>();
-            if let Some(m) = p.memory {
+            if p.memory.is_some() {
                 let mut params = layers.iter().map(|l| l.params).sum::<u64>();
                 if k % p.devices != 0 {
                     params += layers.iter().map(|l| l.tied_params).sum::<u64>();
                 }
-                let stash = if !m.recompute {
+                let stash = if !p.recompute {
                     layers.iter().map(|l| l.stash_bytes).sum::<u64>()
                 } else if start == 0 {
                     0
                 } else {
                     p.layers[start - 1].activation_bytes
                 };
-                bytes[k % p.devices] += params * m.state_bytes_per_param + p.in_flight[k] * stash;
+                bytes[k % p.devices] += params * p.bytes_per_param + p.in_flight[k] * stash;
             }
             start += len as usize;
         }
@@ -644,7 +695,7 @@ mod tests {
     }
 
     /// The best largest device time over every split whose devices fit.
-    fn brute(p: &Problem) -> Option<u64> {
+    fn brute(p: &Model) -> Option<u64> {
         let cap = p.memory.map_or(u64::MAX, |m| m.capacity_bytes);
         compositions(p.layers.len(), p.devices * p.chunks)
             .into_iter()
@@ -655,7 +706,7 @@ mod tests {
             .min()
     }
 
-    fn problem() -> impl Strategy<Value = Problem> {
+    fn model() -> impl Strategy<Value = Model> {
         (1usize..4, 1usize..3, any::<bool>(), any::<bool>()).prop_flat_map(|(p, v, limited, recompute)| {
             let k = p * v;
             (
@@ -665,7 +716,7 @@ mod tests {
                 0u64..40,
                 0u64..8,
             )
-                .prop_map(move |(ls, in_flight, cap, reserved, tied)| Problem {
+                .prop_map(move |(ls, in_flight, cap, reserved, tied)| Model {
                     // Tied weights on the last layer, as a transformer's output layer.
                     layers: ls
                         .iter()
@@ -681,12 +732,9 @@ mod tests {
                     devices: p,
                     chunks: v,
                     in_flight,
-                    memory: limited.then_some(Memory {
-                        capacity_bytes: cap,
-                        reserved_bytes: reserved,
-                        state_bytes_per_param: 2,
-                        recompute,
-                    }),
+                    bytes_per_param: 2,
+                    recompute,
+                    memory: limited.then_some(Memory { capacity_bytes: cap, reserved_bytes: reserved }),
                 })
         })
     }
@@ -699,9 +747,9 @@ mod tests {
         /// position-dependent stash, and with several chunks per device; when
         /// none fits, brute force finds none either.
         #[test]
-        fn matches_brute_force(p in problem()) {
+        fn matches_brute_force(p in model()) {
             let best = brute(&p);
-            match solve(&p).unwrap() {
+            match solve(&p.problem()).unwrap() {
                 Outcome::Fits(s) => {
                     prop_assert!(s.exact, "small instances are searched exhaustively");
                     prop_assert_eq!(Some(s.device_ns.iter().copied().max().unwrap_or(0)), best);

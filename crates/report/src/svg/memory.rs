@@ -8,6 +8,7 @@
 use baton_executor::Trace;
 use plotters::prelude::*;
 
+use super::{draw_err, MAX_CHART_OPS};
 use crate::{activation_timeline, format_bytes, MemoryInputs, Report, ReportError};
 
 const STATE: RGBColor = RGBColor(0x7a, 0x86, 0x99);
@@ -15,18 +16,38 @@ const ACTIVATIONS: RGBColor = RGBColor(0x3a, 0x9e, 0x8c);
 const CAPACITY: RGBColor = RGBColor(0xc0, 0x39, 0x2b);
 const GIB: f64 = (1u64 << 30) as f64;
 
-fn draw_err<E: std::fmt::Debug>(e: E) -> ReportError {
-    ReportError::Draw(format!("{e:?}"))
+/// A step and the memory model it was reported with.
+pub struct MemoryRun<'a> {
+    /// Its trace.
+    pub trace: &'a Trace,
+    /// Its report.
+    pub report: &'a Report,
+    /// The stash per virtual stage, state per device, reserve and capacity.
+    pub memory: &'a MemoryInputs,
+}
+
+/// How the memory chart is drawn.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct MemoryOptions {
+    /// Height of each device's panel in pixels.
+    pub panel_px: u32,
+}
+
+impl Default for MemoryOptions {
+    fn default() -> Self {
+        MemoryOptions { panel_px: 150 }
+    }
 }
 
 /// Draws the memory chart; returns the SVG document.
-pub fn render(trace: &Trace, report: &Report, memory: &MemoryInputs) -> Result<String, ReportError> {
+pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, ReportError> {
+    let MemoryRun { trace, report, memory } = *run;
     let total_ops: usize = trace.ops.iter().map(Vec::len).sum();
-    if total_ops > crate::gantt::MAX_CHART_OPS {
-        return Err(ReportError::TooLarge { ops: total_ops, limit: crate::gantt::MAX_CHART_OPS });
+    if total_ops > MAX_CHART_OPS {
+        return Err(ReportError::TooLarge { ops: total_ops, limit: MAX_CHART_OPS });
     }
     let lanes = trace.ops.len().max(1);
-    let panel_h = 150u32;
+    let panel_h = options.panel_px;
     let (width, height) = (1100u32, 60 + panel_h * lanes as u32 + 60);
     let t0 = trace.start().as_ns();
     let step_ms = (report.step_time_ns.max(1)) as f64 / 1e6;

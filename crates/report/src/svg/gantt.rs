@@ -1,14 +1,16 @@
-//! SVG Gantt chart of one simulated step.
+//! SVG Gantt chart of one simulated step, or of several stacked on one time
+//! axis.
 //!
-//! `plotters` (SVG backend only, so no font files are needed to draw) lays out
-//! the frame: title, time axis with units, lane labels, legend and caption.
+//! `plotters` lays out the frame: title, time axis with units, lane labels,
+//! legend and caption.
 //! The bars and idle marks are then written as plain SVG elements in the
 //! chart's pixel coordinates, because each carries a `<title>` tooltip (op,
 //! micro-batch, stage, start, end), which plotters has no element for.
 //!
 //! One lane per device; one bar per operation, coloured by kind (forward blue,
 //! backward orange: a pair that stays distinct under the common forms of colour
-//! blindness), later model chunks drawn lighter; the micro-batch number inside
+//! blindness; a weight-gradient pass bluish green), later model chunks drawn
+//! lighter; the micro-batch number inside
 //! a bar when it fits, dropped when it does not; idle gaps hatched, with their
 //! cause as tooltip.
 
@@ -20,13 +22,21 @@ use baton_schedule::OpKind;
 use plotters::prelude::*;
 use plotters::style::text_anchor::{HPos, Pos, VPos};
 
+use super::{draw_err, hex, ink_on, xml_escape, Rgb, MAX_CHART_OPS};
 use crate::{Report, ReportError};
-
-/// A colour as red, green, blue.
-type Rgb = (u8, u8, u8);
 
 const FORWARD: Rgb = (0x2b, 0x6c, 0xb0);
 const BACKWARD: Rgb = (0xe3, 0x8b, 0x2c);
+const WEIGHT: Rgb = (0x00, 0x9e, 0x73);
+
+/// The colour of each op kind: one place for every kind the schedule knows.
+fn kind_rgb(kind: OpKind) -> Rgb {
+    match kind {
+        OpKind::Forward => FORWARD,
+        OpKind::Backward => BACKWARD,
+        OpKind::Weight => WEIGHT,
+    }
+}
 const IDLE_INK: &str = "#b8474a";
 const LANE_H: f64 = 28.0;
 const LANE_GAP: f64 = 10.0;
@@ -36,10 +46,7 @@ const LABEL_FONT_PX: f64 = 10.0;
 
 /// The colour of an op of `kind` on chunk `chunk` of `chunks`: later chunks lighter.
 fn bar_rgb(kind: OpKind, chunk: u32, chunks: u32) -> (u8, u8, u8) {
-    let base = match kind {
-        OpKind::Forward => FORWARD,
-        OpKind::Backward => BACKWARD,
-    };
+    let base = kind_rgb(kind);
     if chunks <= 1 {
         return base;
     }
@@ -48,88 +55,42 @@ fn bar_rgb(kind: OpKind, chunk: u32, chunks: u32) -> (u8, u8, u8) {
     (mix(base.0), mix(base.1), mix(base.2))
 }
 
-fn hex((r, g, b): (u8, u8, u8)) -> String {
-    format!("#{r:02x}{g:02x}{b:02x}")
-}
-
-/// Text on a bar: white on dark colours, near-black on light ones.
-fn ink_on((r, g, b): (u8, u8, u8)) -> &'static str {
-    let luma = 0.299 * r as f64 + 0.587 * g as f64 + 0.114 * b as f64;
-    if luma < 140.0 {
-        "#ffffff"
-    } else {
-        "#1a1a1a"
-    }
-}
-
-/// Escapes text for XML content and attributes.
-pub fn xml_escape(s: &str) -> String {
-    let mut out = String::with_capacity(s.len());
-    for c in s.chars() {
-        match c {
-            '&' => out.push_str("&amp;"),
-            '<' => out.push_str("&lt;"),
-            '>' => out.push_str("&gt;"),
-            '"' => out.push_str("&quot;"),
-            '\'' => out.push_str("&apos;"),
-            c if (c as u32) < 0x20 && c != '\n' && c != '\t' => out.push(' '),
-            c => out.push(c),
-        }
-    }
-    out
-}
-
-fn draw_err<E: std::fmt::Debug>(e: E) -> ReportError {
-    ReportError::Draw(format!("{e:?}"))
-}
-
-/// Most operations a chart draws: beyond this, bars are narrower than a pixel
-/// and the file grows past what a browser opens comfortably.
-pub const MAX_CHART_OPS: usize = 250_000;
-
-/// Draws the chart of one run, with communication lanes; returns the SVG document.
-pub fn render(trace: &Trace, report: &Report) -> Result<String, ReportError> {
-    render_with(trace, report, ChartOptions::default())
-}
-
-/// What a chart shows beyond the compute bars.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub struct ChartOptions {
+/// What a chart shows beyond the compute bars, and its title.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct GanttOptions {
     /// A thin lane under each device's bars with its sends (bytes leaving)
     /// and receives (data in flight towards it).
     pub comm_lanes: bool,
+    /// The chart's title; `None`: the first run's report title.
+    pub title: Option<String>,
 }
 
-impl Default for ChartOptions {
+impl Default for GanttOptions {
     fn default() -> Self {
-        ChartOptions { comm_lanes: true }
+        GanttOptions { comm_lanes: true, title: None }
     }
-}
-
-/// Draws the chart of one run with `options`.
-pub fn render_with(trace: &Trace, report: &Report, options: ChartOptions) -> Result<String, ReportError> {
-    render_runs_with(&[Run { trace, report, label: String::new() }], &report.title, options)
 }
 
 /// One run in a chart.
 pub struct Run<'a> {
+    /// Its trace.
     pub trace: &'a Trace,
+    /// Its report.
     pub report: &'a Report,
     /// Prefix of the run's lane labels (empty for a single run).
     pub label: String,
 }
 
-/// Draws several runs stacked on one shared time axis (each run's lanes
-/// below the previous run's), so their timelines compare at a glance.
-pub fn render_runs(runs: &[Run<'_>], title: &str) -> Result<String, ReportError> {
-    render_runs_with(runs, title, ChartOptions::default())
-}
-
 const SEND: Rgb = (0x3d, 0x48, 0x5a);
 const RECEIVE: Rgb = (0xa9, 0xb6, 0xc8);
 
-/// [`render_runs`] with `options`.
-pub fn render_runs_with(runs: &[Run<'_>], title: &str, options: ChartOptions) -> Result<String, ReportError> {
+/// Draws `runs` stacked on one shared time axis (each run's lanes below the
+/// previous run's), so their timelines compare at a glance; one run is the
+/// chart of that step. Returns the SVG document.
+pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, ReportError> {
+    let title =
+        options.title.clone().unwrap_or_else(|| runs.first().map(|r| r.report.title.clone()).unwrap_or_default());
+    let title = title.as_str();
     let comm = options.comm_lanes && runs.iter().any(|r| !r.trace.transfers.is_empty());
     let total_ops: usize = runs.iter().flat_map(|r| r.trace.ops.iter()).map(Vec::len).sum::<usize>()
         + if comm { runs.iter().map(|r| 2 * r.trace.transfers.len()).sum::<usize>() } else { 0 };
@@ -197,8 +158,13 @@ pub fn render_runs_with(runs: &[Run<'_>], title: &str, options: ChartOptions) ->
         // Legend and captions.
         let ly = 14;
         let mut lx = xr.start;
-        let mut legend: Vec<(&str, Option<Rgb>)> =
-            vec![("forward", Some(FORWARD)), ("backward", Some(BACKWARD)), ("idle (hover for cause)", None)];
+        // The kinds the runs' plans run, in kind order.
+        let mut legend: Vec<(&str, Option<Rgb>)> = OpKind::ALL
+            .iter()
+            .filter(|k| runs.iter().any(|r| r.trace.plan.shape.kinds().contains(k)))
+            .map(|&k| (k.as_str(), Some(kind_rgb(k))))
+            .collect();
+        legend.push(("idle (hover for cause)", None));
         if comm {
             legend.push(("send (bytes leaving)", Some(SEND)));
             legend.push(("receive (in flight)", Some(RECEIVE)));
@@ -336,8 +302,8 @@ pub fn render_runs_with(runs: &[Run<'_>], title: &str, options: ChartOptions) ->
                     .unwrap_or_default();
                 let what = format!(
                     "{} of micro-batch {} from device {} to device {}, {} bytes: sending {} to {}, arrived {}{}",
-                    t.kind.as_str(),
-                    t.micro_batch,
+                    t.flow.as_str(),
+                    t.producer.micro_batch,
                     t.src,
                     t.dst,
                     t.bytes,
@@ -377,11 +343,6 @@ pub fn render_runs_with(runs: &[Run<'_>], title: &str, options: ChartOptions) ->
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn escapes_markup() {
-        assert_eq!(xml_escape("a<b & \"c\""), "a&lt;b &amp; &quot;c&quot;");
-    }
 
     #[test]
     fn later_chunks_are_lighter_and_ink_contrasts() {

@@ -1,0 +1,505 @@
+//! What a step means to a person: step time, busy and idle time, bubbles,
+//! peaks of activations and memory, and every idle gap with its cause, read
+//! off an executor trace. The output formats (text, JSON, CSV, SVG) are made
+//! from this analysis elsewhere in the crate.
+
+use std::fmt;
+
+use baton_engine::SimTime;
+use baton_executor::Trace;
+use baton_schedule::{Flow, Op, Stash};
+use serde::Serialize;
+
+/// Why a device sat idle.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Cause {
+    /// Before the device's first operation: the pipeline filling up.
+    Fill,
+    /// After the device's last operation: the pipeline draining.
+    Drain,
+    /// Waiting for another device to finish a forward pass.
+    Activation,
+    /// Waiting for another device to finish a backward pass.
+    Gradient,
+    /// The data was computed but still in transit.
+    Link,
+    /// The device's own blocking send had not yet arrived.
+    Send,
+}
+
+impl Cause {
+    /// The name used in reports.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Cause::Fill => "fill",
+            Cause::Drain => "drain",
+            Cause::Activation => "activation",
+            Cause::Gradient => "gradient",
+            Cause::Link => "link",
+            Cause::Send => "send",
+        }
+    }
+}
+
+/// The facts behind a gap, turned into a sentence only when shown.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct GapDetail {
+    /// Why the device waited.
+    pub cause: Cause,
+    /// What the awaited data was (activation, gradient, link waits).
+    pub flow: Option<Flow>,
+    /// The op the device was about to run (fill, activation, gradient, link)
+    /// or had just run (drain).
+    pub op: Op,
+    /// The op that produced the awaited data, and its device.
+    pub producer: Option<(Op, u32)>,
+    /// Sender and receiver of the transfer that carried it.
+    pub route: Option<(u32, u32)>,
+    /// The link that held that transfer back the longest (link gaps), or the
+    /// receiver of the device's own blocking send (send gaps).
+    pub link: Option<String>,
+}
+
+impl fmt::Display for GapDetail {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let what = self.flow.map_or("activation", Flow::as_str);
+        let mb = self.op.micro_batch;
+        match (self.cause, self.producer) {
+            (Cause::Fill, _) => write!(f, "pipeline fill before {}", self.op),
+            (Cause::Drain, _) => write!(f, "pipeline drain after {}", self.op),
+            (Cause::Send, _) => write!(
+                f,
+                "blocked sending the output of {} to device {}",
+                self.op,
+                self.route.map_or(0, |(_, dst)| dst)
+            ),
+            (Cause::Link, Some((_, from))) => match (&self.link, self.route) {
+                (Some(link), Some((src, dst))) => write!(
+                    f,
+                    "the {what} of micro-batch {mb} was in transit from device {src} to device {dst}, held back most on link {link}"
+                ),
+                (None, Some((src, dst))) => {
+                    write!(f, "the {what} of micro-batch {mb} was in transit from device {src} to device {dst}")
+                }
+                _ => write!(f, "the {what} of micro-batch {mb} from device {from} was in transit"),
+            },
+            (_, Some((p, from))) => write!(f, "waiting for the {what} of micro-batch {mb} from device {from} ({p})"),
+            (_, None) => write!(f, "waiting to start {}", self.op),
+        }
+    }
+}
+
+impl Serialize for GapDetail {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.collect_str(self)
+    }
+}
+
+/// One idle interval of one device, with its cause.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Gap {
+    /// The device.
+    pub device: u32,
+    /// Start, in milliseconds from the step's start.
+    pub start_ms: f64,
+    /// End, in milliseconds from the step's start.
+    pub end_ms: f64,
+    /// Length in milliseconds.
+    pub duration_ms: f64,
+    /// Why the device waited.
+    pub cause: Cause,
+    /// What the device waited for; serialized as a sentence.
+    pub detail: GapDetail,
+    /// The device that produced the awaited data (activation, gradient, link).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub from_device: Option<u32>,
+    /// The awaited micro-batch (activation, gradient, link).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub micro_batch: Option<u32>,
+    /// The virtual stage the device was about to run (activation, gradient, link).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub stage: Option<u32>,
+    #[serde(skip)]
+    /// Start in nanoseconds.
+    pub start_ns: u64,
+    #[serde(skip)]
+    /// End in nanoseconds.
+    pub end_ns: u64,
+}
+
+/// One device's totals.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct DeviceReport {
+    /// Pipeline device: the one that runs stage `device` (and its chunks).
+    pub device: u32,
+    /// The cluster device it is placed on.
+    pub cluster_device: u32,
+    /// Time spent computing, in milliseconds.
+    pub busy_ms: f64,
+    /// Time not computing within the step, in milliseconds.
+    pub idle_ms: f64,
+    /// Idle time / step time.
+    pub bubble_fraction: f64,
+    /// Most micro-batches whose activations it held at once.
+    pub peak_activations: u32,
+    /// Operations run.
+    pub ops: usize,
+    /// Model state + reserved + the largest activation stash held at once.
+    pub peak_memory_bytes: u64,
+    /// The device's capacity; `null` when unlimited.
+    pub memory_capacity_bytes: Option<u64>,
+    /// Whether the peak fits the capacity.
+    pub fits: bool,
+    /// Parameters' state (weights, gradients, optimizer) on this device.
+    pub state_bytes: u64,
+    /// The largest activation stash held at once.
+    pub peak_activation_bytes: u64,
+    #[serde(skip)]
+    /// Time spent computing, in nanoseconds.
+    pub busy_ns: u64,
+    #[serde(skip)]
+    /// Idle time in nanoseconds.
+    pub idle_ns: u64,
+}
+
+/// One directed link that carried data.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct LinkReport {
+    /// Its name, e.g. `dev0->dev1` or `node0-card0 up`.
+    pub name: String,
+    /// Its bandwidth in bytes per second (`null` when unlimited).
+    pub bytes_per_s: Option<u64>,
+    /// Bytes that crossed it.
+    pub bytes: u64,
+    /// Time during which at least one transfer was pushing bytes over it.
+    pub busy_ms: f64,
+    /// Busy time / step time.
+    pub utilization: f64,
+    /// Most transfers sharing it at once.
+    pub peak_concurrent: u32,
+}
+
+/// Everything a run reports.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Report {
+    /// The scenario's title.
+    pub title: String,
+    /// The schedule's name.
+    pub schedule: String,
+    /// Pipeline stages (devices).
+    pub stages: u32,
+    /// Micro-batches per step.
+    pub micro_batches: u32,
+    /// Model chunks per device.
+    pub chunks: u32,
+    /// Seed of the random generator.
+    pub seed: u64,
+    /// Compute-time jitter (0: none).
+    pub jitter: f64,
+    /// Step time in milliseconds.
+    pub step_time_ms: f64,
+    /// Step time in nanoseconds.
+    pub step_time_ns: u64,
+    /// Idle time / step time.
+    pub bubble_fraction: f64,
+    /// Samples per second: micro-batches x micro-batch size / step time.
+    pub samples_per_s: f64,
+    /// Samples per micro-batch.
+    pub micro_batch_size: u32,
+    /// Recomputation: `none` or `full`.
+    pub recompute: String,
+    /// Whether every device's peak memory fits its capacity.
+    pub fits: bool,
+    /// Operations run.
+    pub ops: usize,
+    /// Transfers between devices.
+    pub transfers: usize,
+    /// One entry per pipeline device.
+    pub devices: Vec<DeviceReport>,
+    /// Every directed link that carried data, in topology order.
+    pub links: Vec<LinkReport>,
+    /// Every idle interval, by device then start time.
+    pub gaps: Vec<Gap>,
+}
+
+impl Report {
+    /// The devices whose peak memory exceeds their capacity, in order.
+    pub fn over_capacity(&self) -> Vec<u32> {
+        self.devices.iter().filter(|d| !d.fits).map(|d| d.device).collect()
+    }
+}
+
+fn ms(ns: u64) -> f64 {
+    ns as f64 / 1e6
+}
+
+/// Labels shown with a report that come from outside the trace.
+#[derive(Clone, Debug, Default)]
+pub struct Labels {
+    /// The scenario's title.
+    pub title: String,
+    /// Seed of the random generator.
+    pub seed: u64,
+    /// The compute-time jitter the step was simulated with (0: none).
+    pub jitter: f64,
+    /// Samples per micro-batch (for `samples_per_s`).
+    pub micro_batch_size: u32,
+    /// `none` or `full`, shown in reports.
+    pub recompute: String,
+    /// What the memory model needs.
+    pub memory: MemoryInputs,
+}
+
+/// What the memory model needs beyond the trace.
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct MemoryInputs {
+    /// Bytes each micro-batch holds on each virtual stage, from its forward's
+    /// start to its backward's end. Empty: no activation memory.
+    pub stash_bytes: Vec<u64>,
+    /// Model-state bytes per device.
+    pub state_bytes: Vec<u64>,
+    /// Bytes every device keeps aside.
+    pub reserved_bytes: u64,
+    /// Capacity of each device; `None` means unlimited.
+    pub capacity_bytes: Option<u64>,
+}
+
+/// Activation bytes held on device `d` over time: `(time, bytes held from
+/// then on)` at every change, in time order (several changes at one time are
+/// all listed; the last is what holds after it).
+pub fn activation_timeline(trace: &Trace, stash_bytes: &[u64], d: usize) -> Vec<(SimTime, u64)> {
+    // Forward starts and backward ends each come in time order (one op at a
+    // time per device): merge them, releases first at equal times.
+    let stash = |stage: u32| stash_bytes.get(stage as usize).copied().unwrap_or(0);
+    let recs = &trace.ops[d];
+    let mut acquire = recs
+        .iter()
+        .filter(|r| r.op.kind.stash() == Stash::TakeAtStart)
+        .map(|r| (r.start, stash(r.op.stage)))
+        .peekable();
+    let mut release =
+        recs.iter().filter(|r| r.op.kind.stash() == Stash::FreeAtEnd).map(|r| (r.end, stash(r.op.stage))).peekable();
+    let mut held = 0u64;
+    let mut out = Vec::with_capacity(recs.len() + 1);
+    out.push((trace.start(), 0));
+    loop {
+        let take_release = match (acquire.peek(), release.peek()) {
+            (None, None) => break,
+            (Some(_), None) => false,
+            (None, Some(_)) => true,
+            (Some(a), Some(r)) => r.0 <= a.0,
+        };
+        if take_release {
+            let Some((t, b)) = release.next() else { break };
+            held = held.saturating_sub(b);
+            out.push((t, held));
+        } else {
+            let Some((t, b)) = acquire.next() else { break };
+            held += b;
+            out.push((t, held));
+        }
+    }
+    out
+}
+
+/// Builds the report of `trace`.
+pub fn build(trace: &Trace, labels: &Labels) -> Report {
+    let shape = trace.plan.shape;
+    let t0 = trace.start();
+    let t1 = trace.end();
+    let step_ns = t1.saturating_since(t0).as_ns();
+    let mut devices = Vec::with_capacity(trace.ops.len());
+    let mut gaps = Vec::new();
+    for (d, recs) in trace.ops.iter().enumerate() {
+        let device = d as u32;
+        let busy_ns: u64 = recs.iter().map(|r| r.end.saturating_since(r.start).as_ns()).sum();
+        let idle_ns = step_ns - busy_ns.min(step_ns);
+        let mem = &labels.memory;
+        let peak_activation_bytes = if mem.stash_bytes.is_empty() {
+            0
+        } else {
+            activation_timeline(trace, &mem.stash_bytes, d).iter().map(|&(_, b)| b).max().unwrap_or(0)
+        };
+        let state_bytes = mem.state_bytes.get(d).copied().unwrap_or(0);
+        let peak_memory_bytes = state_bytes.saturating_add(mem.reserved_bytes).saturating_add(peak_activation_bytes);
+        devices.push(DeviceReport {
+            device,
+            cluster_device: trace.cluster_devices.get(d).copied().unwrap_or(device),
+            busy_ms: ms(busy_ns),
+            idle_ms: ms(idle_ns),
+            bubble_fraction: if step_ns == 0 { 0.0 } else { idle_ns as f64 / step_ns as f64 },
+            peak_activations: peak_held(trace, d),
+            ops: recs.len(),
+            peak_memory_bytes,
+            memory_capacity_bytes: mem.capacity_bytes,
+            fits: mem.capacity_bytes.is_none_or(|c| peak_memory_bytes <= c),
+            state_bytes,
+            peak_activation_bytes,
+            busy_ns,
+            idle_ns,
+        });
+        device_gaps(trace, d, t0, t1, &mut gaps);
+    }
+    let total_idle: u64 = devices.iter().map(|d| d.idle_ns).sum();
+    let denom = step_ns as f64 * devices.len() as f64;
+    Report {
+        title: labels.title.clone(),
+        schedule: trace.plan.kind.name().to_string(),
+        stages: shape.stages,
+        micro_batches: shape.micro_batches,
+        chunks: shape.chunks,
+        seed: labels.seed,
+        jitter: labels.jitter,
+        step_time_ms: ms(step_ns),
+        step_time_ns: step_ns,
+        bubble_fraction: if denom == 0.0 { 0.0 } else { total_idle as f64 / denom },
+        samples_per_s: if step_ns == 0 {
+            0.0
+        } else {
+            shape.micro_batches as f64 * labels.micro_batch_size.max(1) as f64 / (step_ns as f64 / 1e9)
+        },
+        micro_batch_size: labels.micro_batch_size.max(1),
+        recompute: if labels.recompute.is_empty() { "none".into() } else { labels.recompute.clone() },
+        fits: devices.iter().all(|d| d.fits),
+        ops: trace.ops.iter().map(Vec::len).sum(),
+        transfers: trace.transfers.len(),
+        devices,
+        links: trace
+            .link_stats
+            .iter()
+            .zip(&trace.link_names)
+            .zip(&trace.link_bytes_per_s)
+            .filter(|((st, _), _)| st.bytes > 0 || st.peak_concurrent > 0)
+            .map(|((st, name), &bw)| LinkReport {
+                name: name.clone(),
+                bytes_per_s: (bw != baton_link::LinkSpec::UNLIMITED).then_some(bw),
+                bytes: st.bytes,
+                busy_ms: ms(st.busy_ns),
+                utilization: if step_ns == 0 { 0.0 } else { st.busy_ns as f64 / step_ns as f64 },
+                peak_concurrent: st.peak_concurrent,
+            })
+            .collect(),
+        gaps,
+    }
+}
+
+/// The link busy the largest share of the step (ties: the slower link, then
+/// the first).
+pub fn busiest_link(report: &Report) -> Option<&LinkReport> {
+    let speed = |l: &LinkReport| l.bytes_per_s.unwrap_or(u64::MAX);
+    report.links.iter().fold(None, |best: Option<&LinkReport>, l| match best {
+        Some(b) if b.utilization > l.utilization || (b.utilization == l.utilization && speed(b) <= speed(l)) => Some(b),
+        _ => Some(l),
+    })
+}
+
+/// Largest number of micro-batches whose activations device `d` holds at once.
+fn peak_held(trace: &Trace, d: usize) -> u32 {
+    // A micro-batch is held from its forward's start to its backward's end. With
+    // several chunks on the device, its first chunk's forward comes before the
+    // later chunks' (the data flows through them in order) and that chunk's
+    // backward after theirs, so the first chunk's interval covers the others.
+    // A device runs one op at a time, so those forward starts and backward ends
+    // each come in time order: merge the two lists. At equal times the release
+    // goes first, since memory freed at t can be reused at t.
+    let first_chunk = |r: &&baton_executor::OpRecord| r.op.stage < trace.plan.shape.stages;
+    let recs = &trace.ops[d];
+    let mut acquire =
+        recs.iter().filter(first_chunk).filter(|r| r.op.kind.stash() == Stash::TakeAtStart).map(|r| r.start).peekable();
+    let mut release =
+        recs.iter().filter(first_chunk).filter(|r| r.op.kind.stash() == Stash::FreeAtEnd).map(|r| r.end).peekable();
+    let (mut held, mut peak) = (0u32, 0u32);
+    while let Some(&t) = acquire.peek() {
+        if release.peek().is_some_and(|&r| r <= t) {
+            release.next();
+            held = held.saturating_sub(1);
+        } else {
+            acquire.next();
+            held += 1;
+            peak = peak.max(held);
+        }
+    }
+    peak
+}
+
+fn push_gap(gaps: &mut Vec<Gap>, device: u32, start: SimTime, end: SimTime, detail: GapDetail) {
+    if end <= start {
+        return;
+    }
+    let who = detail.producer.map(|(_, from)| (from, detail.op.micro_batch, detail.op.stage));
+    let cause = detail.cause;
+    gaps.push(Gap {
+        device,
+        start_ms: ms(start.as_ns()),
+        end_ms: ms(end.as_ns()),
+        duration_ms: ms(end.as_ns() - start.as_ns()),
+        cause,
+        detail,
+        from_device: who.map(|w| w.0),
+        micro_batch: who.map(|w| w.1),
+        stage: who.map(|w| w.2),
+        start_ns: start.as_ns(),
+        end_ns: end.as_ns(),
+    });
+}
+
+fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec<Gap>) {
+    let device = d as u32;
+    let recs = &trace.ops[d];
+    let (Some(first), Some(last)) = (recs.first(), recs.last()) else {
+        return;
+    };
+    let plain = |cause, op| GapDetail { cause, flow: None, op, producer: None, route: None, link: None };
+    push_gap(gaps, device, t0, first.start, plain(Cause::Fill, first.op));
+    for w in recs.windows(2) {
+        let (a, b) = (&w[0], &w[1]);
+        if b.start <= a.end {
+            continue;
+        }
+        let mut from = a.end;
+        // A blocking send keeps the device until its data has arrived.
+        if trace.blocking_sends {
+            if let Some(t) = trace.outgoing(a.op).filter(|t| t.end > a.end) {
+                let until = t.end.min(b.start);
+                let detail = GapDetail { route: Some((t.src, t.dst)), ..plain(Cause::Send, a.op) };
+                push_gap(gaps, device, from, until, detail);
+                from = until;
+            }
+        }
+        // Only an op that needs data from another stage can find its device
+        // free but itself not ready, so a dependency always exists here.
+        let Some(dep) = trace.dependency(b.op) else { continue };
+        let cause = match dep.flow {
+            Flow::Activation => Cause::Activation,
+            Flow::Gradient => Cause::Gradient,
+            Flow::Within => continue,
+        };
+        let flow = Some(dep.flow);
+        let transfer = dep.transfer.map(|t| &trace.transfers[t]);
+        let route = transfer.map(|t| (t.src, t.dst));
+        let link = transfer.and_then(|t| t.bottleneck).and_then(|l| trace.link_names.get(l as usize).cloned());
+        let producer = Some((dep.producer, dep.producer_device));
+        let waiting_until = dep.produced_at.min(b.start);
+        push_gap(gaps, device, from, waiting_until, GapDetail { cause, flow, op: b.op, producer, route, link: None });
+        let link_from = dep.produced_at.max(from);
+        let detail = GapDetail { cause: Cause::Link, flow, op: b.op, producer, route, link };
+        push_gap(gaps, device, link_from, b.start, detail);
+    }
+    push_gap(gaps, device, last.end, t1, plain(Cause::Drain, last.op));
+}
+
+/// The `n` longest gaps, longest first (ties: by device, then start).
+pub fn longest_gaps(report: &Report, n: usize) -> Vec<&Gap> {
+    let key = |g: &Gap| (std::cmp::Reverse(g.end_ns - g.start_ns), g.device, g.start_ns);
+    let mut v: Vec<&Gap> = report.gaps.iter().collect();
+    if n < v.len() {
+        if n == 0 {
+            return Vec::new();
+        }
+        v.select_nth_unstable_by_key(n - 1, |g| key(g));
+        v.truncate(n);
+    }
+    v.sort_unstable_by_key(|g| key(g));
+    v
+}

@@ -1,0 +1,44 @@
+//! The CSV trace: every operation and transfer of a step, one row each.
+
+use std::io;
+
+use baton_executor::Trace;
+use baton_schedule::OpKind;
+
+use crate::ReportError;
+
+/// The kind number of a transfer row: after every op kind.
+const SEND: u8 = OpKind::ALL.len() as u8;
+
+/// Writes the CSV trace: header `device,kind,micro_batch,stage,start_ns,end_ns`,
+/// one row per operation and per transfer (`kind` is the op kind's name,
+/// `forward`, `backward` or `weight`, or `send`; for a send `device` is the sender, `stage` the sending virtual stage
+/// and `end_ns` the arrival). Rows are ordered by start, then end, device, kind.
+pub fn write<W: io::Write>(trace: &Trace, out: W) -> Result<(), ReportError> {
+    let mut rows: Vec<(u64, u64, u32, u8, u32, u32)> =
+        Vec::with_capacity(trace.ops.iter().map(Vec::len).sum::<usize>() + trace.transfers.len());
+    for (d, recs) in trace.ops.iter().enumerate() {
+        for r in recs {
+            rows.push((
+                r.start.as_ns(),
+                r.end.as_ns(),
+                d as u32,
+                r.op.kind.index() as u8,
+                r.op.micro_batch,
+                r.op.stage,
+            ));
+        }
+    }
+    for t in &trace.transfers {
+        rows.push((t.start.as_ns(), t.end.as_ns(), t.src, SEND, t.producer.micro_batch, t.producer.stage));
+    }
+    rows.sort_unstable();
+    let mut w = ::csv::Writer::from_writer(out);
+    w.write_record(["device", "kind", "micro_batch", "stage", "start_ns", "end_ns"])?;
+    for (start, end, device, kind, mb, stage) in rows {
+        let kind = OpKind::ALL.get(kind as usize).map_or("send", |k| k.as_str());
+        w.serialize((device, kind, mb, stage, start, end))?;
+    }
+    w.flush()?;
+    Ok(())
+}

@@ -1,0 +1,130 @@
+//! The readable text summary of a report.
+
+use std::fmt::Write as _;
+
+use baton_engine::format_ns;
+
+use crate::{busiest_link, longest_gaps, Report};
+
+/// Bytes with a binary unit: `512 B`, `1.50 KiB`, `80.00 GiB`.
+pub fn format_bytes(b: u64) -> String {
+    const UNITS: [&str; 5] = ["KiB", "MiB", "GiB", "TiB", "PiB"];
+    if b < 1024 {
+        return format!("{b} B");
+    }
+    let mut v = b as f64 / 1024.0;
+    let mut i = 0;
+    while v >= 1024.0 && i + 1 < UNITS.len() {
+        v /= 1024.0;
+        i += 1;
+    }
+    format!("{v:.2} {}", UNITS[i])
+}
+
+/// What the summary shows beyond the report.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct TextOptions {
+    /// How many of the longest idle gaps to list.
+    pub longest_gaps: usize,
+}
+
+impl Default for TextOptions {
+    fn default() -> Self {
+        TextOptions { longest_gaps: 5 }
+    }
+}
+
+/// The readable summary printed by `baton run`.
+pub fn render(report: &Report, options: &TextOptions) -> String {
+    let mut s = String::new();
+    let _ = writeln!(s, "{}", report.title);
+    let _ = writeln!(
+        s,
+        "schedule {}, {} stages, {} micro-batches{}, seed {}{}",
+        report.schedule,
+        report.stages,
+        report.micro_batches,
+        if report.chunks > 1 { format!(", {} chunks per device", report.chunks) } else { String::new() },
+        report.seed,
+        if report.jitter > 0.0 { format!(", compute jitter +-{}%", report.jitter * 100.0) } else { String::new() }
+    );
+    let _ = writeln!(s);
+    let _ = writeln!(s, "step time        {}", format_ns(report.step_time_ns));
+    let _ = writeln!(s, "bubble fraction  {:.2}% (idle / (devices x step time))", report.bubble_fraction * 100.0);
+    let _ = writeln!(
+        s,
+        "throughput       {:.2} samples/s ({} micro-batches x {} samples / step time)",
+        report.samples_per_s, report.micro_batches, report.micro_batch_size
+    );
+    let _ = writeln!(s, "simulated        {} ops, {} transfers", report.ops, report.transfers);
+    let _ = writeln!(s);
+    let placed = report.devices.iter().any(|d| d.cluster_device != d.device);
+    let _ = writeln!(
+        s,
+        "{:>6}  {:>12}  {:>12}  {:>8}  {:>16}  {:>25}{}",
+        "device",
+        "busy",
+        "idle",
+        "bubble",
+        "peak activations",
+        "peak mem / capacity",
+        if placed { "  placed on" } else { "" }
+    );
+    for d in &report.devices {
+        let capacity = d.memory_capacity_bytes.map_or_else(|| "unlimited".to_string(), format_bytes);
+        let _ = writeln!(
+            s,
+            "{:>6}  {:>12}  {:>12}  {:>7.2}%  {:>16}  {:>25}{}",
+            d.device,
+            format_ns(d.busy_ns),
+            format_ns(d.idle_ns),
+            d.bubble_fraction * 100.0,
+            d.peak_activations,
+            format!("{} / {}", format_bytes(d.peak_memory_bytes), capacity),
+            if placed { format!("  cluster device {}", d.cluster_device) } else { String::new() }
+        );
+        if !d.fits {
+            s.pop();
+            let _ = writeln!(s, "  OVER CAPACITY");
+        }
+    }
+    if let Some(l) = busiest_link(report) {
+        let _ = writeln!(s);
+        let _ = writeln!(
+            s,
+            "most utilised link: {} ({:.1}% of the step busy, {} carried, up to {} transfer{} at once)",
+            l.name,
+            l.utilization * 100.0,
+            format_bytes(l.bytes),
+            l.peak_concurrent,
+            if l.peak_concurrent == 1 { "" } else { "s" }
+        );
+    }
+    let over: Vec<String> = report.over_capacity().iter().map(u32::to_string).collect();
+    if !over.is_empty() {
+        let _ = writeln!(s);
+        let _ = writeln!(
+            s,
+            "memory: device(s) {} exceed their capacity (baton run --strict fails on this)",
+            over.join(", ")
+        );
+    }
+    let top = longest_gaps(report, options.longest_gaps);
+    if !top.is_empty() {
+        let _ = writeln!(s);
+        let _ = writeln!(s, "longest idle gaps");
+        for g in top {
+            let _ = writeln!(
+                s,
+                "  device {:<3} {:>12} .. {:<12} {:>12}  {:<10} {}",
+                g.device,
+                format_ns(g.start_ns),
+                format_ns(g.end_ns),
+                format_ns(g.end_ns - g.start_ns),
+                g.cause.as_str(),
+                g.detail
+            );
+        }
+    }
+    s
+}

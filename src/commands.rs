@@ -1,0 +1,289 @@
+//! What each `baton` subcommand does, as library functions: each takes what
+//! the command line asked for and the outputs it opened
+//! ([`baton_output::Outputs`]), does the work, fills the outputs and returns
+//! the text to print. The binary only parses flags, opens the outputs, calls
+//! one of these, commits and prints, and maps a [`CommandError`] to its exit
+//! status.
+
+use std::path::{Path, PathBuf};
+
+use baton_output::{OutputError, Outputs};
+use baton_report::svg::{gantt, memory};
+use baton_report::ReportError;
+use baton_scenario::ScenarioError;
+use thiserror::Error;
+
+use crate::compare::{CompareError, Comparison};
+use crate::planner::PlanError;
+use crate::sweep::{self as sw, Grid, RankBy, Request, SweepError};
+use crate::SimulateError;
+
+/// Why a command failed, and so its exit status.
+#[derive(Debug, Error)]
+pub enum CommandError {
+    /// The scenario was refused (exit 2).
+    #[error(transparent)]
+    Scenario(#[from] ScenarioError),
+    /// The step could not be simulated.
+    #[error(transparent)]
+    Simulate(#[from] SimulateError),
+    /// The split could not be planned.
+    #[error(transparent)]
+    Plan(#[from] PlanError),
+    /// The sweep was refused or failed.
+    #[error(transparent)]
+    Sweep(#[from] SweepError),
+    /// The runs could not be compared (exit 2).
+    #[error(transparent)]
+    Compare(#[from] CompareError),
+    /// An output could not be written.
+    #[error(transparent)]
+    Output(#[from] OutputError),
+    /// An output could not be made (exit 1).
+    #[error("cannot {what}: {source}")]
+    Render {
+        /// What was being made, e.g. `draw the chart`.
+        what: &'static str,
+        /// Why it failed.
+        source: ReportError,
+    },
+    /// JSON could not be encoded (exit 1).
+    #[error("cannot encode the {what}: {source}")]
+    Encode {
+        /// What was being encoded.
+        what: &'static str,
+        /// Why it failed.
+        source: serde_json::Error,
+    },
+    /// An input file could not be read (exit 2).
+    #[error("cannot read {path}: {message}")]
+    Read {
+        /// The file.
+        path: String,
+        /// The system's reason.
+        message: String,
+    },
+    /// Memory over capacity where the command was asked to fail on it (exit 3).
+    #[error("{0}")]
+    OverCapacity(String),
+    /// Every point of a sweep was skipped (exit 2).
+    #[error("every point was skipped; see the reasons above")]
+    AllSkipped,
+}
+
+impl CommandError {
+    /// The exit status: 2 for invalid input or usage, 3 for memory over
+    /// capacity, 1 for anything else.
+    pub fn exit_status(&self) -> u8 {
+        match self {
+            CommandError::Scenario(_) | CommandError::Compare(_) | CommandError::Read { .. } => 2,
+            CommandError::AllSkipped => 2,
+            CommandError::Simulate(e) | CommandError::Plan(PlanError::Simulate(e)) => {
+                if e.is_internal() {
+                    1
+                } else {
+                    2
+                }
+            }
+            CommandError::Plan(PlanError::Split(_)) => 2,
+            CommandError::Plan(PlanError::Apply(_)) => 1,
+            CommandError::Sweep(SweepError::Threads(_)) => 1,
+            CommandError::Sweep(_) => 2,
+            CommandError::Output(e) => {
+                if e.is_usage() {
+                    2
+                } else {
+                    1
+                }
+            }
+            CommandError::Render { .. } | CommandError::Encode { .. } => 1,
+            CommandError::OverCapacity(_) => 3,
+        }
+    }
+}
+
+/// A command's result: the text to print and, when the command must still
+/// fail after its outputs are written (`--strict`, no split fits, every
+/// sweep point skipped), the error to end with.
+#[derive(Debug)]
+pub struct Done {
+    /// The summary to print.
+    pub text: String,
+    /// The error to report after the outputs are committed.
+    pub then: Option<CommandError>,
+}
+
+fn render(what: &'static str) -> impl FnOnce(ReportError) -> CommandError {
+    move |source| CommandError::Render { what, source }
+}
+
+/// What `baton run` was asked.
+pub struct RunRequest<'a> {
+    /// The scenario file.
+    pub scenario: &'a Path,
+    /// `--set` overrides.
+    pub sets: &'a [String],
+    /// Print the layer table first.
+    pub show_layers: bool,
+    /// Draw communication lanes in the chart.
+    pub comm_lanes: bool,
+    /// Fail (exit 3) when a device is over its memory capacity.
+    pub strict: bool,
+}
+
+/// `baton run`: outputs `--svg`, `--memory-svg`, `--layers-csv`, `--trace`, `--json`.
+pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandError> {
+    let scenario = baton_scenario::load(r.scenario, r.sets)?;
+    let outcome = crate::simulate(&scenario)?;
+    let (trace, report) = (&outcome.trace, &outcome.report);
+    if outputs.wants("--svg") {
+        let options = gantt::GanttOptions { comm_lanes: r.comm_lanes, title: None };
+        let run = gantt::Run { trace, report, label: String::new() };
+        outputs.write("--svg", gantt::render(&[run], &options).map_err(render("draw the chart"))?.as_bytes())?;
+    }
+    if outputs.wants("--memory-svg") {
+        let memory_inputs = crate::memory_inputs(&scenario);
+        let run = memory::MemoryRun { trace, report, memory: &memory_inputs };
+        let svg = memory::render(&run, &Default::default()).map_err(render("draw the memory chart"))?;
+        outputs.write("--memory-svg", svg.as_bytes())?;
+    }
+    outputs.write_with("--layers-csv", |w| {
+        baton_scenario::profile::write(&scenario.layers, w).map_err(std::io::Error::other)
+    })?;
+    outputs.write_with("--trace", |w| baton_report::csv::write(trace, w).map_err(std::io::Error::other))?;
+    if outputs.wants("--json") {
+        let json = baton_report::json::render(report, &Default::default()).map_err(render("encode the report"))?;
+        outputs.write("--json", json.as_bytes())?;
+    }
+    let mut text = String::new();
+    if r.show_layers {
+        text.push_str(&crate::layer_table(&scenario));
+        text.push('\n');
+    }
+    text.push_str(&baton_report::text::render(report, &Default::default()));
+    let over = report.over_capacity();
+    let then = (r.strict && !over.is_empty()).then(|| {
+        let list: Vec<String> = over.iter().map(u32::to_string).collect();
+        CommandError::OverCapacity(format!("--strict: device(s) {} exceed their memory capacity", list.join(", ")))
+    });
+    Ok(Done { text, then })
+}
+
+/// What `baton split` was asked.
+pub struct SplitRequest<'a> {
+    /// The scenario file.
+    pub scenario: &'a Path,
+    /// `--set` overrides.
+    pub sets: &'a [String],
+    /// Split for this many stages instead.
+    pub stages: Option<u32>,
+    /// Split for this many chunks per device instead.
+    pub chunks: Option<u32>,
+}
+
+/// `baton split`: outputs `--apply` (the rewritten scenario) and `--json`.
+pub fn split(r: &SplitRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandError> {
+    let mut sets = r.sets.to_vec();
+    sets.extend(r.stages.map(|n| format!("pipeline.stages={n}")));
+    sets.extend(r.chunks.map(|v| format!("pipeline.chunks={v}")));
+    if r.stages.is_some() || r.chunks.is_some() {
+        sets.push("pipeline.split=even".into());
+    }
+    let scenario = baton_scenario::load(r.scenario, &sets)?;
+    let plan = crate::planner::plan(&scenario)?;
+    let report = crate::planner::report(&scenario, &plan)?;
+    if let Some(dest) = outputs.path("--apply") {
+        if !report.fits {
+            return Err(CommandError::OverCapacity(format!("no split fits in memory; {} not written", dest.display())));
+        }
+        let dest = dest.display().to_string();
+        let text =
+            crate::planner::applied_text(r.scenario, &dest, &scenario, &report.split, r.stages, r.chunks, r.sets)?;
+        outputs.write("--apply", text.as_bytes())?;
+    }
+    let json =
+        serde_json::to_string_pretty(&report).map_err(|source| CommandError::Encode { what: "result", source })?;
+    outputs.write("--json", format!("{json}\n").as_bytes())?;
+    let then = (!report.fits).then(|| CommandError::OverCapacity("no split fits in memory".into()));
+    Ok(Done { text: report.text().to_string(), then })
+}
+
+/// What `baton sweep` was asked.
+pub struct SweepRequest<'a> {
+    /// The scenario file.
+    pub scenario: &'a Path,
+    /// `--set` overrides for every point.
+    pub sets: &'a [String],
+    /// `--vary` arguments.
+    pub vary: &'a [String],
+    /// `--rank-by`.
+    pub rank_by: &'a str,
+    /// `--shard I/N`.
+    pub shard: Option<&'a str>,
+    /// `--jobs`.
+    pub jobs: Option<usize>,
+    /// Rows of the table to print.
+    pub top: usize,
+}
+
+/// `baton sweep`: outputs `--csv`, `--svg`, `--json`.
+pub fn sweep(r: &SweepRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandError> {
+    let by: RankBy = r.rank_by.parse()?;
+    let axes = r.vary.iter().map(|v| sw::parse_vary(v)).collect::<Result<Vec<_>, _>>()?;
+    let grid = Grid::new(axes)?;
+    let shard = r.shard.map(sw::parse_shard).transpose()?;
+    let doc = baton_scenario::Document::load(r.scenario)?;
+    let done = sw::execute(&Request { doc: &doc, sets: r.sets, grid: &grid, shard, jobs: r.jobs, by })?;
+    let (keys, points) = (grid.keys(), &done.points);
+    outputs.write_with("--csv", |w| sw::write_csv(&keys, points, w).map_err(std::io::Error::other))?;
+    if outputs.wants("--svg") {
+        let title = doc.scenario(r.sets).map(|s| s.title).unwrap_or_default();
+        let svg = sw::chart(&title, &grid, points, by)
+            .map_err(|e| CommandError::Render { what: "draw the chart", source: ReportError::Draw(e) })?;
+        outputs.write("--svg", svg.as_bytes())?;
+    }
+    outputs.write("--json", sw::to_json(&keys, points).as_bytes())?;
+    let mut text = String::new();
+    if let Some((i, n)) = shard {
+        text.push_str(&format!("shard {i}/{n}: {} of the grid's {} points\n", done.covered, grid.len()));
+    }
+    let scenario_path = r.scenario.display().to_string();
+    text.push_str(&sw::table(&keys, points, by, r.top, Some(&scenario_path), r.sets));
+    text.push_str(&format!("simulated {} points in {:.2} s\n", points.len(), done.elapsed.as_secs_f64()));
+    let all_skipped = shard.is_none() && !points.is_empty() && points.iter().all(|p| p.result.is_err());
+    Ok(Done { text, then: all_skipped.then_some(CommandError::AllSkipped) })
+}
+
+/// `baton merge`: outputs `--csv`, `--json`.
+pub fn merge(parts: &[PathBuf], rank_by: &str, top: usize, outputs: &mut Outputs) -> Result<Done, CommandError> {
+    let by: RankBy = rank_by.parse()?;
+    let mut texts = Vec::new();
+    for p in parts {
+        let text = std::fs::read_to_string(p)
+            .map_err(|e| CommandError::Read { path: p.display().to_string(), message: e.to_string() })?;
+        texts.push((p.display().to_string(), text));
+    }
+    let (keys, points) = sw::merge(&texts, by)?;
+    outputs.write_with("--csv", |w| sw::write_csv(&keys, &points, w).map_err(std::io::Error::other))?;
+    outputs.write("--json", sw::to_json(&keys, &points).as_bytes())?;
+    Ok(Done { text: sw::table(&keys, &points, by, top, None, &[]), then: None })
+}
+
+/// `baton compare`: outputs `--svg`, `--json`.
+pub fn compare(
+    scenarios: &[PathBuf],
+    sets: &[String],
+    comm_lanes: bool,
+    outputs: &mut Outputs,
+) -> Result<Done, CommandError> {
+    let runs = crate::compare::scenarios(scenarios, sets)?;
+    let comparison = Comparison::run(&runs)?;
+    if outputs.wants("--svg") {
+        outputs.write("--svg", comparison.chart(comm_lanes).map_err(render("draw the chart"))?.as_bytes())?;
+    }
+    if outputs.wants("--json") {
+        let json = comparison.json().map_err(|source| CommandError::Encode { what: "reports", source })?;
+        outputs.write("--json", json.as_bytes())?;
+    }
+    Ok(Done { text: comparison.table(), then: None })
+}
