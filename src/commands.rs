@@ -287,3 +287,25 @@ pub fn compare(
     }
     Ok(Done { text: comparison.table(), then: None })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use baton_executor::ExecError;
+    use baton_schedule::Op;
+
+    #[test]
+    fn exit_statuses() {
+        // A step that stops with work left is the simulation's own fault.
+        let stuck = SimulateError::Exec(ExecError::Stuck { device: 0, op: Op::forward(0, 0) });
+        assert_eq!(CommandError::Simulate(stuck).exit_status(), 1);
+        let bad = SimulateError::Exec(ExecError::Jitter(2.0));
+        assert_eq!(CommandError::Simulate(bad).exit_status(), 2);
+        assert_eq!(CommandError::OverCapacity("x".into()).exit_status(), 3);
+        assert_eq!(CommandError::AllSkipped.exit_status(), 2);
+        let usage = OutputError::TwoStdout { first: "--json".into(), second: "--svg".into() };
+        assert_eq!(CommandError::Output(usage).exit_status(), 2);
+        let io = OutputError::Write { path: "/dev/full".into(), message: "No space left on device".into() };
+        assert_eq!(CommandError::Output(io).exit_status(), 1);
+    }
+}

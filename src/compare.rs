@@ -9,7 +9,7 @@ use baton_report::{format_bytes, Report, ReportError};
 use baton_scenario::{Scenario, ScenarioError};
 use thiserror::Error;
 
-use crate::{simulate, Outcome, SimulateError};
+use crate::{simulate, SimulateError, SimulatedStep};
 
 /// A compared run: a short label (`A`, `B`, ...), where it came from, its report.
 pub struct Entry<'a> {
@@ -54,7 +54,7 @@ pub fn scenarios(paths: &[PathBuf], sets: &[String]) -> Result<Vec<(String, Scen
 /// Simulated runs, side by side.
 pub struct Comparison {
     sources: Vec<String>,
-    outcomes: Vec<Outcome>,
+    outcomes: Vec<SimulatedStep>,
 }
 
 /// The label of run `i`: `A` to `H`, then `R9`, `R10`, ...

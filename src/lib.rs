@@ -28,7 +28,7 @@ use thiserror::Error;
 
 /// A simulated step and its report.
 #[derive(Clone, Debug)]
-pub struct Outcome {
+pub struct SimulatedStep {
     /// Every op and transfer as it ran.
     pub trace: Trace,
     /// What it means.
@@ -158,10 +158,10 @@ pub fn labels(s: &Scenario) -> Labels {
 }
 
 /// Simulates one training step of `s` and reports on it.
-pub fn simulate(s: &Scenario) -> Result<Outcome, SimulateError> {
+pub fn simulate(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
     let variation = RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends };
     let trace = baton_executor::simulate_with(plan, &stage_costs(s), topology(s), variation)?;
     let report = baton_report::build(&trace, &labels(s));
-    Ok(Outcome { trace, report })
+    Ok(SimulatedStep { trace, report })
 }

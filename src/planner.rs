@@ -15,12 +15,12 @@ use std::path::Path;
 use baton_engine::format_ns;
 use baton_report::format_bytes;
 use baton_scenario::{PieceCosts, Scenario};
-use baton_split::{Memory, Outcome, Pieces, Problem, Solution};
+use baton_split::{Found, Memory, Pieces, Problem, Solution};
 use serde::Serialize;
 
 pub use baton_split::{evaluate, Solution as SplitSolution};
 
-use crate::{simulate, Outcome as Sim, SimulateError};
+use crate::{simulate, SimulateError, SimulatedStep};
 
 /// Upper bound on the simulations the local search runs.
 pub const MAX_SEARCH_SIMULATIONS: usize = 2_000;
@@ -92,7 +92,7 @@ pub struct Candidate {
     /// Layers per piece.
     pub split: Vec<u32>,
     /// Its simulated step.
-    pub outcome: Sim,
+    pub outcome: SimulatedStep,
 }
 
 impl Candidate {
@@ -202,8 +202,8 @@ pub fn plan(s: &Scenario) -> Result<SplitPlan, PlanError> {
     let inputs = inputs(s)?;
     let baseline = run(s, &s.pipeline.split)?;
     let (proxy, mut no_fit) = match baton_split::solve(&inputs.problem())? {
-        Outcome::Fits(sol) => (sol, None),
-        Outcome::NoFit { shortfall_bytes, device, closest } => (closest, Some((shortfall_bytes, device))),
+        Found::Fits(sol) => (sol, None),
+        Found::NoFit { shortfall_bytes, device, closest } => (closest, Some((shortfall_bytes, device))),
     };
     // The proxy's memory bound is conservative with several chunks per
     // device; a scenario split that fits in the simulation is a split that fits.

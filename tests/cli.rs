@@ -2,19 +2,12 @@
 
 mod common;
 
+use common::{baton, text};
+
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
 
 use quick_xml::events::Event;
 use quick_xml::Reader;
-
-fn baton(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_baton")).args(args).current_dir(env!("CARGO_MANIFEST_DIR")).output().unwrap()
-}
-
-fn text(b: &[u8]) -> String {
-    String::from_utf8_lossy(b).into_owned()
-}
 
 fn tmp() -> tempfile::TempDir {
     tempfile::tempdir().unwrap()

@@ -1,11 +1,12 @@
 //! Cost sources, the memory model and `baton split`, end to end.
 
 use std::path::Path;
-use std::process::{Command, Output};
 
 use baton::scenario::{parse, parse_in, Scenario};
 
 mod common;
+
+use common::{baton, json, text};
 
 /// heavy-head.yaml's layers from the README's formulas, computed here:
 /// l = 22, h = 2048, a = 16, s = 2048, V = 256,000, b = 2, 300 TFLOP/s x 0.4.
@@ -55,19 +56,6 @@ fn four_way_splits(n: usize) -> Vec<[usize; 4]> {
         }
     }
     v
-}
-
-fn baton(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_baton")).args(args).current_dir(env!("CARGO_MANIFEST_DIR")).output().unwrap()
-}
-
-fn text(b: &[u8]) -> String {
-    String::from_utf8_lossy(b).into_owned()
-}
-
-fn json(out: &Output) -> serde_json::Value {
-    assert!(out.status.code().is_some(), "killed");
-    serde_json::from_slice(&out.stdout).unwrap_or_else(|e| panic!("{e}: {}", text(&out.stderr)))
 }
 
 /// Four equal layers with a 1 MiB stash each, on a flat cluster.

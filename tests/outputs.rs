@@ -3,18 +3,14 @@
 //! output option and at most one may use it, and a failure leaves every
 //! regular file as it was. Every case runs in a temporary directory.
 
+mod common;
+
+use common::{baton, text};
+
 use std::io::Read;
 use std::os::unix::fs::FileTypeExt;
 use std::path::Path;
-use std::process::{Command, Output, Stdio};
-
-fn baton(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_baton")).args(args).current_dir(env!("CARGO_MANIFEST_DIR")).output().unwrap()
-}
-
-fn text(b: &[u8]) -> String {
-    String::from_utf8_lossy(b).into_owned()
-}
+use std::process::{Command, Stdio};
 
 const DEMO: &str = "scenarios/unbalanced-split.yaml";
 

@@ -2,19 +2,13 @@
 
 mod common;
 
+use common::{baton, text};
+
 use std::path::Path;
-use std::process::{Command, Output};
+use std::process::Output;
 
 use baton::scenario::Document;
 use baton::sweep::{self, Grid};
-
-fn baton(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_baton")).args(args).current_dir(env!("CARGO_MANIFEST_DIR")).output().unwrap()
-}
-
-fn text(b: &[u8]) -> String {
-    String::from_utf8_lossy(b).into_owned()
-}
 
 fn ok(out: &Output) {
     assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));

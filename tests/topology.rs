@@ -1,16 +1,10 @@
 //! Two-level clusters: routes, placement, shared cards and blocking sends.
 
-use std::process::{Command, Output};
+mod common;
+
+use common::{baton, text};
 
 use baton::scenario::parse;
-
-fn baton(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_baton")).args(args).current_dir(env!("CARGO_MANIFEST_DIR")).output().unwrap()
-}
-
-fn text(b: &[u8]) -> String {
-    String::from_utf8_lossy(b).into_owned()
-}
 
 const BOXES: &str = "model:\n  layers:\n    - { repeat: 4, forward: 100us, backward: 200us, activation: 1MB }\n\
     cluster:\n  nodes: 2\n  devices_per_node: 2\n  device_link: { latency: 1us, bandwidth: 100GB/s }\n  node_link: { latency: 4us, bandwidth: 10GB/s }\n\

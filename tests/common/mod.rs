@@ -4,6 +4,24 @@
 //! here, so a test can hold baton's numbers against it.
 #![allow(dead_code)]
 
+use std::process::{Command, Output};
+
+/// Runs the `baton` command with `args` from the project's root.
+pub fn baton(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_baton")).args(args).current_dir(env!("CARGO_MANIFEST_DIR")).output().unwrap()
+}
+
+/// Bytes as text (lossy).
+pub fn text(b: &[u8]) -> String {
+    String::from_utf8_lossy(b).into_owned()
+}
+
+/// A command's standard output as JSON (it must have exited, with JSON).
+pub fn json(out: &Output) -> serde_json::Value {
+    assert!(out.status.code().is_some(), "killed");
+    serde_json::from_slice(&out.stdout).unwrap_or_else(|e| panic!("{e}: {}", text(&out.stderr)))
+}
+
 /// One pipeline stage on its own device: forward and backward time, and the
 /// bytes of its output activation (which also sizes the gradient that comes
 /// back across the same boundary).

@@ -18,6 +18,41 @@
 //! Events at equal times are delivered in the order they were scheduled (their
 //! sequence number), so the same input always yields the same event order.
 //!
+//! ```
+//! use baton_engine::{run, Fired, Model, Scheduler, SimDuration, SimTime};
+//!
+//! /// A ping-pong: each ping schedules a pong 5 ns later, three times; a
+//! /// movable deadline, set at 12 ns and moved to 3 ns, fires once.
+//! struct PingPong {
+//!     log: Vec<(u64, &'static str)>,
+//! }
+//!
+//! impl Model for PingPong {
+//!     type Event = u32;
+//!     type Key = &'static str;
+//!     fn handle(&mut self, fired: Fired<u32, &'static str>, sched: &mut Scheduler<u32, &'static str>) {
+//!         let now = sched.now().as_ns();
+//!         match fired {
+//!             Fired::Event(n) => {
+//!                 self.log.push((now, if n % 2 == 0 { "ping" } else { "pong" }));
+//!                 if n < 2 {
+//!                     sched.schedule_in(SimDuration(5), n + 1);
+//!                 }
+//!             }
+//!             Fired::Deadline(key) => self.log.push((now, key)),
+//!         }
+//!     }
+//! }
+//!
+//! let mut sched = Scheduler::new();
+//! sched.schedule(SimTime(0), 0);
+//! sched.set_deadline("deadline", SimTime(12));
+//! sched.set_deadline("deadline", SimTime(3));
+//! let mut model = PingPong { log: Vec::new() };
+//! assert_eq!(run(&mut model, &mut sched), SimTime(10));
+//! assert_eq!(model.log, vec![(0, "ping"), (3, "deadline"), (5, "pong"), (10, "ping")]);
+//! ```
+//!
 //! It deliberately knows nothing about pipelines, devices, links or schedules.
 #![warn(missing_docs)]
 

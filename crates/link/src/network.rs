@@ -52,7 +52,7 @@ const NO_LINK: u32 = u32::MAX;
 
 /// What the component walk and water-filling read of a flow.
 #[derive(Clone, Copy, Debug, Default)]
-struct Walk {
+struct FlowSharing {
     /// Component-walk marks (epoch: in the component; epoch + 1: fixed).
     mark: u32,
     /// The settle in which its rate was last recomputed.
@@ -147,7 +147,7 @@ pub struct Network {
     flows: Vec<Flow>,
     /// The fields of each flow slot the component walk reads, kept apart
     /// from the rest so the walk touches little memory.
-    walk: Vec<Walk>,
+    walk: Vec<FlowSharing>,
     free: Vec<u32>,
     stats: Vec<LinkStats>,
     /// Links whose transfer count rose this instant (peak taken at settle).
@@ -338,12 +338,12 @@ impl Network {
         let id = match self.free.pop() {
             Some(i) => {
                 self.flows[i as usize] = flow;
-                self.walk[i as usize] = Walk { mark: 0, settled: 0, narrowest: NO_LINK, route };
+                self.walk[i as usize] = FlowSharing { mark: 0, settled: 0, narrowest: NO_LINK, route };
                 i
             }
             None => {
                 self.flows.push(flow);
-                self.walk.push(Walk { mark: 0, settled: 0, narrowest: NO_LINK, route });
+                self.walk.push(FlowSharing { mark: 0, settled: 0, narrowest: NO_LINK, route });
                 (self.flows.len() - 1) as u32
             }
         };
@@ -603,7 +603,7 @@ impl Network {
         while head < comp_flows.len() {
             let g = comp_flows[head] as usize;
             head += 1;
-            let Walk { route: (r0, r1), narrowest, .. } = walk[g];
+            let FlowSharing { route: (r0, r1), narrowest, .. } = walk[g];
             for &LinkId(k) in &route_links[r0 as usize..r1 as usize] {
                 let ku = k as usize;
                 if !(binding[ku] || k == narrowest) || link_mark[ku] == epoch {

@@ -31,7 +31,7 @@ pub use node::{Node, Origin, Value};
 pub use pieces::{Piece, PieceCosts};
 
 /// One layer of the model, after `repeat` is expanded.
-pub use baton_model::LayerCost as Layer;
+pub use baton_model::LayerCost;
 pub use baton_model::{Speed, Transformer};
 
 /// Where the layer table came from.
@@ -173,7 +173,7 @@ pub struct Scenario {
     /// Where the layer table came from.
     pub source: ModelSource,
     /// The layers, in model order, `repeat` expanded.
-    pub layers: Vec<Layer>,
+    pub layers: Vec<LayerCost>,
     /// The devices and their connections.
     pub cluster: Cluster,
     /// Stages, split, micro-batches and schedule.
@@ -309,7 +309,7 @@ pub struct Document {
     file: String,
     default_title: String,
     base_dir: PathBuf,
-    profiles: Mutex<HashMap<PathBuf, Vec<Layer>>>,
+    profiles: Mutex<HashMap<PathBuf, Vec<LayerCost>>>,
 }
 
 impl Document {
@@ -370,21 +370,21 @@ pub fn parse_in(
 
 /// A value being read, with its key path.
 #[derive(Clone, Copy)]
-struct At<'a> {
-    cx: &'a Cx<'a>,
+struct Field<'a> {
+    cx: &'a Reading<'a>,
     path: &'a str,
     node: &'a Node,
 }
 
-struct Cx<'a> {
+struct Reading<'a> {
     file: &'a str,
     base_dir: &'a Path,
     profiles: Option<&'a ProfileCache>,
 }
 
-type ProfileCache = Mutex<HashMap<PathBuf, Vec<Layer>>>;
+type ProfileCache = Mutex<HashMap<PathBuf, Vec<LayerCost>>>;
 
-impl Cx<'_> {
+impl Reading<'_> {
     fn err(&self, key: &str, origin: &Origin, message: impl Into<String>) -> ScenarioError {
         ScenarioError::Invalid {
             file: self.file.to_string(),
@@ -396,8 +396,8 @@ impl Cx<'_> {
 }
 
 /// A mapping being read: each key may be taken once; leftovers are unknown keys.
-struct MapAt<'a> {
-    cx: &'a Cx<'a>,
+struct Section<'a> {
+    cx: &'a Reading<'a>,
     path: &'a str,
     origin: &'a Origin,
     entries: &'a [(String, Origin, Node)],
@@ -411,12 +411,12 @@ fn join(path: &str, key: &str) -> String {
     }
 }
 
-impl<'a> At<'a> {
+impl<'a> Field<'a> {
     fn err(&self, message: impl Into<String>) -> ScenarioError {
         self.cx.err(self.path, &self.node.origin, message)
     }
 
-    fn map(&self, allowed: &[&str]) -> Result<MapAt<'a>, ScenarioError> {
+    fn map(&self, allowed: &[&str]) -> Result<Section<'a>, ScenarioError> {
         let Value::Map(entries) = &self.node.value else {
             return Err(self.err(format!(
                 "expected a mapping with keys {}, found {}",
@@ -431,7 +431,7 @@ impl<'a> At<'a> {
                 format!("unknown key `{k}`; expected one of: {}", allowed.join(", ")),
             ));
         }
-        Ok(MapAt { cx: self.cx, path: self.path, origin: &self.node.origin, entries })
+        Ok(Section { cx: self.cx, path: self.path, origin: &self.node.origin, entries })
     }
 
     fn str(&self) -> Result<&'a str, ScenarioError> {
@@ -529,7 +529,7 @@ impl<'a> At<'a> {
     }
 }
 
-impl<'a> MapAt<'a> {
+impl<'a> Section<'a> {
     fn get(&self, key: &str) -> Option<(String, &'a Node)> {
         self.entries
             .iter()
@@ -542,16 +542,16 @@ impl<'a> MapAt<'a> {
     fn opt<T>(
         &self,
         key: &str,
-        f: impl FnOnce(At<'_>) -> Result<T, ScenarioError>,
+        f: impl FnOnce(Field<'_>) -> Result<T, ScenarioError>,
     ) -> Result<Option<T>, ScenarioError> {
         match self.get(key) {
-            Some((path, node)) => f(At { cx: self.cx, path: &path, node }).map(Some),
+            Some((path, node)) => f(Field { cx: self.cx, path: &path, node }).map(Some),
             None => Ok(None),
         }
     }
 
     /// Reads a required key with `f`.
-    fn req<T>(&self, key: &str, f: impl FnOnce(At<'_>) -> Result<T, ScenarioError>) -> Result<T, ScenarioError> {
+    fn req<T>(&self, key: &str, f: impl FnOnce(Field<'_>) -> Result<T, ScenarioError>) -> Result<T, ScenarioError> {
         self.opt(key, f)?
             .ok_or_else(|| self.cx.err(&join(self.path, key), self.origin, format!("missing required key `{key}`")))
     }
@@ -567,8 +567,8 @@ fn from_tree(
     base_dir: &Path,
     profiles: Option<&ProfileCache>,
 ) -> Result<Scenario, ScenarioError> {
-    let cx = Cx { file, base_dir, profiles };
-    let root = At { cx: &cx, path: "", node: doc };
+    let cx = Reading { file, base_dir, profiles };
+    let root = Field { cx: &cx, path: "", node: doc };
     let top = root.map(&["title", "seed", "model", "cluster", "pipeline", "training", "placement"])?;
     let title = top.opt("title", |a| a.text())?.unwrap_or_else(|| default_title.to_string());
     let seed = top.opt("seed", |a| a.int(0, u64::MAX as i128).map(|v| v as u64))?.unwrap_or(1);
@@ -582,7 +582,7 @@ fn from_tree(
     let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster))?;
     let placement = match top.get("placement") {
         None => (0..pipeline.stages).collect(),
-        Some((path, node)) => read_placement(At { cx: &cx, path: &path, node }, &cluster, pipeline.stages)?,
+        Some((path, node)) => read_placement(Field { cx: &cx, path: &path, node }, &cluster, pipeline.stages)?,
     };
     Ok(Scenario { title, seed, source, layers, cluster, pipeline, training, placement })
 }
@@ -590,7 +590,7 @@ fn from_tree(
 /// `packed` puts stage s on device s; `spread` deals stages out over the
 /// nodes in turn (stage s on node s mod nodes, in that node's next free
 /// slot); a list names a distinct device for each stage.
-fn read_placement(a: At<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u32>, ScenarioError> {
+fn read_placement(a: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u32>, ScenarioError> {
     match &a.node.value {
         Value::Str(s) if s == "packed" => Ok((0..stages).collect()),
         Value::Str(s) if s == "spread" => {
@@ -609,7 +609,7 @@ fn read_placement(a: At<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u32>,
             let mut out = Vec::with_capacity(items.len());
             for (i, item) in items.iter().enumerate() {
                 let path = format!("{}.{i}", a.path);
-                let at = At { cx: a.cx, path: &path, node: item };
+                let at = Field { cx: a.cx, path: &path, node: item };
                 let d = at.int(0, cluster.devices as i128 - 1).map_err(|_| {
                     at.err(format!(
                         "must name a device from 0 to {}, found {}",
@@ -637,7 +637,7 @@ fn describe(v: &Value) -> String {
     }
 }
 
-fn positive<T: PartialOrd + Default>(a: &At<'_>, v: T) -> Result<T, ScenarioError> {
+fn positive<T: PartialOrd + Default>(a: &Field<'_>, v: T) -> Result<T, ScenarioError> {
     if v > T::default() {
         Ok(v)
     } else {
@@ -645,7 +645,7 @@ fn positive<T: PartialOrd + Default>(a: &At<'_>, v: T) -> Result<T, ScenarioErro
     }
 }
 
-fn read_link(l: At<'_>, with_count: bool) -> Result<(LinkParams, u32), ScenarioError> {
+fn read_link(l: Field<'_>, with_count: bool) -> Result<(LinkParams, u32), ScenarioError> {
     let keys: &[&str] = if with_count { &["latency", "bandwidth", "count"] } else { &["latency", "bandwidth"] };
     let l = l.map(keys)?;
     let latency_ns = l.req("latency", |a| a.duration_ns())?;
@@ -654,7 +654,7 @@ fn read_link(l: At<'_>, with_count: bool) -> Result<(LinkParams, u32), ScenarioE
     Ok((LinkParams { latency_ns, bytes_per_s }, count))
 }
 
-fn read_cluster(c: At<'_>) -> Result<Cluster, ScenarioError> {
+fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
     let c_at = c;
     let c = c.map(&["devices", "link", "nodes", "devices_per_node", "device_link", "node_link", "jitter", "device"])?;
     let flat = ["devices", "link"].iter().any(|k| c.get(k).is_some());
@@ -704,7 +704,7 @@ fn read_cluster(c: At<'_>) -> Result<Cluster, ScenarioError> {
     Ok(Cluster { devices, fabric, jitter, device })
 }
 
-fn read_training(t: At<'_>) -> Result<Training, ScenarioError> {
+fn read_training(t: Field<'_>) -> Result<Training, ScenarioError> {
     let t = t.map(&["state_bytes_per_param", "reserved", "recompute"])?;
     let d = Training::default();
     Ok(Training {
@@ -723,10 +723,10 @@ fn read_training(t: At<'_>) -> Result<Training, ScenarioError> {
 }
 
 fn read_model(
-    model: At<'_>,
+    model: Field<'_>,
     cluster: &Cluster,
     micro_batch_size: u32,
-) -> Result<(ModelSource, Vec<Layer>), ScenarioError> {
+) -> Result<(ModelSource, Vec<LayerCost>), ScenarioError> {
     const SOURCES: [&str; 3] = ["layers", "profile", "transformer"];
     let m = model.map(&SOURCES)?;
     let given: Vec<&str> = SOURCES.iter().copied().filter(|k| m.get(k).is_some()).collect();
@@ -782,7 +782,7 @@ fn read_model(
     }
 }
 
-fn read_layers(list: At<'_>) -> Result<Vec<Layer>, ScenarioError> {
+fn read_layers(list: Field<'_>) -> Result<Vec<LayerCost>, ScenarioError> {
     let Value::Seq(items) = &list.node.value else {
         return Err(list.err(format!("expected a list of layers, found {}", list.node.value.kind())));
     };
@@ -792,7 +792,7 @@ fn read_layers(list: At<'_>) -> Result<Vec<Layer>, ScenarioError> {
     let mut layers = Vec::new();
     for (i, item) in items.iter().enumerate() {
         let path = format!("{}.{i}", list.path);
-        let at = At { cx: list.cx, path: &path, node: item };
+        let at = Field { cx: list.cx, path: &path, node: item };
         let m = at.map(&["name", "repeat", "forward", "backward", "activation", "params", "tied_params", "stash"])?;
         let name = m.opt("name", |a| a.text())?.unwrap_or_else(|| format!("layer{i}"));
         let repeat = m.opt("repeat", |a| a.int(1, MAX_LAYERS as i128))?.unwrap_or(1) as u64;
@@ -807,13 +807,21 @@ fn read_layers(list: At<'_>) -> Result<Vec<Layer>, ScenarioError> {
         }
         for r in 0..repeat {
             let name = if repeat > 1 { format!("{name}.{r}") } else { name.clone() };
-            layers.push(Layer { name, forward_ns, backward_ns, activation_bytes, stash_bytes, params, tied_params });
+            layers.push(LayerCost {
+                name,
+                forward_ns,
+                backward_ns,
+                activation_bytes,
+                stash_bytes,
+                params,
+                tied_params,
+            });
         }
     }
     Ok(layers)
 }
 
-fn read_pipeline(p: At<'_>, layers: &[Layer], cluster: &Cluster) -> Result<Pipeline, ScenarioError> {
+fn read_pipeline(p: Field<'_>, layers: &[LayerCost], cluster: &Cluster) -> Result<Pipeline, ScenarioError> {
     let m = p.map(&PIPELINE_KEYS)?;
     let micro_batch_size = m.opt("micro_batch_size", |a| a.u32(1))?.unwrap_or(1);
     let blocking_sends = m
@@ -849,7 +857,7 @@ fn read_pipeline(p: At<'_>, layers: &[Layer], cluster: &Cluster) -> Result<Pipel
     let split = match m.get("split") {
         None => even_split(n_layers, pieces),
         Some((path, node)) => {
-            let at = At { cx: p.cx, path: &path, node };
+            let at = Field { cx: p.cx, path: &path, node };
             match &node.value {
                 Value::Str(s) if s == "even" => even_split(n_layers, pieces),
                 Value::Seq(items) => {
@@ -862,7 +870,7 @@ fn read_pipeline(p: At<'_>, layers: &[Layer], cluster: &Cluster) -> Result<Pipel
                     let mut split = Vec::with_capacity(items.len());
                     for (i, item) in items.iter().enumerate() {
                         let ip = format!("{path}.{i}");
-                        split.push(At { cx: p.cx, path: &ip, node: item }.u32(1)?);
+                        split.push(Field { cx: p.cx, path: &ip, node: item }.u32(1)?);
                     }
                     let sum: u64 = split.iter().map(|&x| x as u64).sum();
                     if sum != n_layers {

@@ -3,7 +3,7 @@
 //! prefix sums, so any piece costs O(1) to price, which the split search
 //! needs.
 
-use crate::{Layer, Recompute};
+use crate::{LayerCost, Recompute};
 
 /// The summed cost of one piece of the model (one virtual stage).
 #[derive(Clone, Debug, PartialEq, Eq)]
@@ -24,7 +24,7 @@ pub struct Piece {
     pub stash_bytes: u64,
     /// Its layers' parameters, plus their tied parameters when the piece
     /// runs on another device than the first layer (a copy of the shared
-    /// weights; see [`Layer::tied_params`]).
+    /// weights; see [`LayerCost::tied_params`]).
     pub params: u64,
 }
 
@@ -50,7 +50,7 @@ pub struct PieceCosts {
     activation: Vec<u64>,
 }
 
-fn prefix(layers: &[Layer], f: impl Fn(&Layer) -> u64) -> Vec<u128> {
+fn prefix(layers: &[LayerCost], f: impl Fn(&LayerCost) -> u64) -> Vec<u128> {
     let mut v = Vec::with_capacity(layers.len() + 1);
     let mut sum = 0u128;
     v.push(0);
@@ -67,7 +67,7 @@ fn clamp(x: u128) -> u64 {
 
 impl PieceCosts {
     /// The prices of `layers` split over `stages` devices.
-    pub fn new(layers: &[Layer], stages: u32, recompute: Recompute) -> Self {
+    pub fn new(layers: &[LayerCost], stages: u32, recompute: Recompute) -> Self {
         PieceCosts {
             stages: stages.max(1) as usize,
             recompute: recompute == Recompute::Full,

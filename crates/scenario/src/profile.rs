@@ -9,7 +9,7 @@
 
 use std::io::Write;
 
-use crate::{units, Layer, ScenarioError};
+use crate::{units, LayerCost, ScenarioError};
 
 /// Columns a profile may have, in the order they are written.
 pub const COLUMNS: [&str; 7] =
@@ -17,7 +17,7 @@ pub const COLUMNS: [&str; 7] =
 const REQUIRED: [&str; 3] = ["name", "forward_ms", "activation_bytes"];
 
 /// Reads a profile; `file` labels errors, which name the line and column.
-pub fn read(text: &str, file: &str) -> Result<Vec<Layer>, ScenarioError> {
+pub fn read(text: &str, file: &str) -> Result<Vec<LayerCost>, ScenarioError> {
     let err = |line: u64, column: &str, message: String| ScenarioError::Profile {
         file: file.to_string(),
         line,
@@ -72,7 +72,7 @@ pub fn read(text: &str, file: &str) -> Result<Vec<Layer>, ScenarioError> {
         if layers.len() as u64 >= crate::MAX_LAYERS {
             return Err(err(line, "row", format!("more than {} layers", crate::MAX_LAYERS)));
         }
-        layers.push(Layer { name, forward_ns, backward_ns, activation_bytes, stash_bytes, params, tied_params });
+        layers.push(LayerCost { name, forward_ns, backward_ns, activation_bytes, stash_bytes, params, tied_params });
     }
     if layers.is_empty() {
         return Err(err(1, "row", "the profile has no layers".into()));
@@ -92,7 +92,7 @@ pub fn ms_text(ns: u64) -> String {
 }
 
 /// Writes `layers` as a profile that [`read`] gives back exactly.
-pub fn write<W: Write>(layers: &[Layer], out: W) -> Result<(), csv::Error> {
+pub fn write<W: Write>(layers: &[LayerCost], out: W) -> Result<(), csv::Error> {
     let mut w = csv::Writer::from_writer(out);
     w.write_record(COLUMNS)?;
     for l in layers {
@@ -147,7 +147,7 @@ mod tests {
 
     #[test]
     fn writes_what_it_reads() {
-        let layers = vec![Layer {
+        let layers = vec![LayerCost {
             name: "a, \"quoted\"".into(),
             forward_ns: 1_234_567,
             backward_ns: 1,

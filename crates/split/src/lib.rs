@@ -1,14 +1,14 @@
 //! # baton-split: cutting a model into pipeline pieces
 //!
 //! Finds the contiguous split of a model's layers into `pieces = p x v`
-//! pieces that minimises the bottleneck, the largest piece's forward +
-//! backward time per micro-batch, subject to every piece fitting its device's
-//! memory: model state (parameters x bytes per parameter, a piece on any
-//! device but the first layer's also holding a copy of the weights its layers
-//! share with the first layer), plus the stash of
-//! as many micro-batches as the schedule keeps in flight on that piece, plus a
-//! reserve. With one chunk per device (`v = 1`) the piece is the device, so
-//! this is exactly the device bottleneck and the device memory.
+//! pieces that minimises the bottleneck, the largest piece's time per
+//! micro-batch, subject to every device's pieces fitting its memory after a
+//! reserve. The caller prices any run of layers as a piece ([`Pieces`]: its
+//! time, and the bytes it needs on its device); what a price contains (model
+//! state, copies of shared weights, stashes times the micro-batches in
+//! flight, recomputation) is the caller's rule, not this crate's. With one
+//! chunk per device (`v = 1`) the piece is the device, so this is exactly the
+//! device bottleneck and the device memory.
 //!
 //! ## Algorithm
 //!
@@ -16,17 +16,16 @@
 //! largest layer and the whole model, about 64 probes), with an exact
 //! feasibility test for each `B`:
 //!
-//! * when a piece's limits do not depend on its position (no memory limit,
-//!   or the same number of micro-batches in flight on every piece, as with
-//!   fill-drain, and no recomputation), a greedy test is exact: make each
+//! * when a piece's price does not depend on its position (no memory limit,
+//!   or [`Pieces::position_independent`]), a greedy test is exact: make each
 //!   piece as long as its time and memory allow, leaving a layer for each
 //!   piece still to come. By induction the greedy boundary after `k` pieces is
 //!   never left of any feasible split's, since any run inside a feasible piece
 //!   is feasible anywhere. Each end is found by binary search over prefix
 //!   sums: `O(pieces log n)` per probe;
-//! * otherwise (1F1B keeps more micro-batches in flight on earlier devices,
-//!   and with full recomputation a piece stashes its input, which depends on
-//!   where it starts) running ahead can push a layer into a tighter position,
+//! * otherwise (say, more micro-batches in flight on earlier pieces, or a
+//!   stash that depends on where the piece starts) running ahead can push a
+//!   layer into a tighter position,
 //!   so the test is a reachability sweep: for each piece count `k`, every
 //!   reachable boundary `j` reaches the run of ends `j+1 ..= e(j)` (feasible
 //!   ends form a run because time and memory grow with the end), marked with
@@ -48,7 +47,8 @@
 //! make one fit (the same test, searched over capacity) and names the device
 //! that needs it.
 //!
-//! It deliberately knows nothing about time order, links or simulation.
+//! It deliberately knows nothing about what a piece holds, time order, links
+//! or simulation.
 #![warn(missing_docs)]
 
 use thiserror::Error;
@@ -116,7 +116,7 @@ pub struct Solution {
 
 /// The answer to a split problem.
 #[derive(Clone, Debug, PartialEq, Eq)]
-pub enum Outcome {
+pub enum Found {
     /// The best split that fits.
     Fits(Solution),
     /// No split fits: the smallest capacity shortfall over all splits, the
@@ -315,7 +315,7 @@ impl Search<'_> {
 }
 
 /// Solves a split problem exactly (see the crate documentation).
-pub fn solve(problem: &Problem<'_>) -> Result<Outcome, SplitError> {
+pub fn solve(problem: &Problem<'_>) -> Result<Found, SplitError> {
     let pieces = problem.devices * problem.chunks;
     if pieces == 0 {
         return Err(SplitError::NoPieces);
@@ -336,7 +336,7 @@ pub fn solve(problem: &Problem<'_>) -> Result<Outcome, SplitError> {
         let found = cx.best_by_device(None, cap);
         let fits = found.device_bytes.iter().all(|&b| b as u128 <= cap);
         if fits && found.split.iter().all(|&x| x > 0) && found.split.iter().map(|&x| x as usize).sum::<usize>() == n {
-            return Ok(Outcome::Fits(found));
+            return Ok(Found::Fits(found));
         }
     }
     if cx.feasible(total, cap).is_none() {
@@ -362,7 +362,7 @@ pub fn solve(problem: &Problem<'_>) -> Result<Outcome, SplitError> {
         let over = |d: usize| closest.device_bytes[d].saturating_sub(cap.min(u64::MAX as u128) as u64);
         let device = (0..problem.devices).max_by_key(|&d| (over(d), std::cmp::Reverse(d))).unwrap_or(0);
         let shortfall_bytes = (hi - cap).min(u64::MAX as u128) as u64;
-        return Ok(Outcome::NoFit { shortfall_bytes, device, closest });
+        return Ok(Found::NoFit { shortfall_bytes, device, closest });
     }
 
     // Smallest bottleneck that still fits.
@@ -379,9 +379,9 @@ pub fn solve(problem: &Problem<'_>) -> Result<Outcome, SplitError> {
     let split = cx.feasible(lo, cap).unwrap_or_else(|| even(n, pieces));
     let proxy = cx.solution(&split);
     if problem.chunks > 1 {
-        return Ok(Outcome::Fits(cx.best_by_device(Some(proxy), cap)));
+        return Ok(Found::Fits(cx.best_by_device(Some(proxy), cap)));
     }
-    Ok(Outcome::Fits(proxy))
+    Ok(Found::Fits(proxy))
 }
 
 /// Most search nodes the device-level branch-and-bound visits before it settles for the
@@ -510,8 +510,8 @@ impl Pieces for Weights<'_> {
 pub fn linear_partition(weights: &[u64], k: usize) -> Result<(u64, Vec<u32>), SplitError> {
     let problem = Problem { pieces: &Weights(weights), devices: k, chunks: 1, memory: None };
     match solve(&problem)? {
-        Outcome::Fits(s) => Ok((s.bottleneck_ns, s.split)),
-        Outcome::NoFit { closest, .. } => Ok((closest.bottleneck_ns, closest.split)),
+        Found::Fits(s) => Ok((s.bottleneck_ns, s.split)),
+        Found::NoFit { closest, .. } => Ok((closest.bottleneck_ns, closest.split)),
     }
 }
 
@@ -620,7 +620,7 @@ mod tests {
         // it takes one layer: 2 x 50 = 100 <= 150, while 2 x 100 = 200 > 150.
         let m = Model::new(vec![layer(10, 0, 50); 4], 2, vec![2, 1], 150);
         match solve(&m.problem()).unwrap() {
-            Outcome::Fits(s) => {
+            Found::Fits(s) => {
                 assert_eq!(s.split, vec![1, 3]);
                 assert_eq!(s.bottleneck_ns, 30);
                 assert_eq!(s.device_bytes, vec![100, 150]);
@@ -635,7 +635,7 @@ mod tests {
         // device 0; with capacity 120 the best any split can do is 200: 80 short.
         let m = Model::new(vec![layer(10, 0, 100); 3], 2, vec![2, 1], 120);
         match solve(&m.problem()).unwrap() {
-            Outcome::NoFit { shortfall_bytes, device, closest } => {
+            Found::NoFit { shortfall_bytes, device, closest } => {
                 // Device 0 with one layer needs 200 (80 short), device 1 then
                 // holds two layers, 200 (80 short): either way 80.
                 assert_eq!(shortfall_bytes, 80);
@@ -750,7 +750,7 @@ mod tests {
         fn matches_brute_force(p in model()) {
             let best = brute(&p);
             match solve(&p.problem()).unwrap() {
-                Outcome::Fits(s) => {
+                Found::Fits(s) => {
                     prop_assert!(s.exact, "small instances are searched exhaustively");
                     prop_assert_eq!(Some(s.device_ns.iter().copied().max().unwrap_or(0)), best);
                     prop_assert_eq!(s.split.iter().sum::<u32>() as usize, p.layers.len());
@@ -762,7 +762,7 @@ mod tests {
                         prop_assert_eq!(&s.device_bytes, &bytes);
                     }
                 }
-                Outcome::NoFit { shortfall_bytes, closest, .. } => {
+                Found::NoFit { shortfall_bytes, closest, .. } => {
                     prop_assert_eq!(best, None);
                     prop_assert!(shortfall_bytes > 0);
                     // With the shortfall added, some split fits; with one chunk
