@@ -29,7 +29,7 @@
 
 use baton_engine::{Fired, Model, Scheduler, SimDuration, SimTime};
 use baton_link::{LinkStats, Network, Topology, TransferId};
-use baton_schedule::{validate, Flow, Op, OpKind, Plan, ScheduleError};
+use baton_schedule::{validate, Edge, Flow, Op, OpKind, Plan, ScheduleError, Shape};
 use thiserror::Error;
 
 /// Time and data of one virtual stage, per micro-batch.
@@ -182,24 +182,27 @@ impl Trace {
     pub fn dependency(&self, op: Op) -> Option<Dependency> {
         let shape = &self.plan.shape;
         let mut latest: Option<Dependency> = None;
-        for input in op.inputs(shape).filter(|e| e.flow.crosses_stages()) {
-            let producer = input.op;
-            let (producer_device, rec) = self.record(producer);
-            let t = self.transfer_index[shape.op_index(producer)];
-            let transfer = (t != NONE).then_some(t as usize);
-            let available_at = transfer.map_or(rec.end, |t| self.transfers[t].end);
-            let dep = Dependency {
-                flow: input.flow,
-                producer,
-                producer_device,
-                produced_at: rec.end,
-                available_at,
-                transfer,
-            };
-            if latest.is_none_or(|l| dep.available_at > l.available_at) {
-                latest = Some(dep);
+        op.each_input(shape, |input| {
+            if !input.flow.crosses_stages() {
+                return;
             }
-        }
+            let k = shape.op_index(input.op);
+            let (producer_device, i) = self.op_index[k];
+            let produced_at = self.ops[producer_device as usize][i as usize].end;
+            let t = self.transfer_index[k];
+            let transfer = (t != NONE).then_some(t as usize);
+            let available_at = transfer.map_or(produced_at, |t| self.transfers[t].end);
+            if latest.is_none_or(|l| available_at > l.available_at) {
+                latest = Some(Dependency {
+                    flow: input.flow,
+                    producer: input.op,
+                    producer_device,
+                    produced_at,
+                    available_at,
+                    transfer,
+                });
+            }
+        });
         latest
     }
 }
@@ -256,23 +259,17 @@ pub enum Deadline {
     Network,
 }
 
-struct Executor<'a> {
-    plan: &'a Plan,
-    costs: &'a [StageCost],
+/// The data crossing between devices: the link network and the records of
+/// what it carried.
+struct Transfers {
     net: Network,
     /// When the network's deadline is set for (as last told by settle).
-    network_deadline: Option<SimTime>,
-    next: Vec<usize>,
-    busy: Vec<bool>,
-    /// Per `Shape::op_index`: inputs not yet satisfied.
-    waiting: Vec<u8>,
-    ops: Vec<Vec<OpRecord>>,
-    transfers: Vec<TransferRecord>,
-    transfer_index: Vec<u32>,
-    /// Per network transfer id: index in `transfers`.
+    deadline: Option<SimTime>,
+    records: Vec<TransferRecord>,
+    /// Per `Shape::op_index` of the producer: index in `records`, or NONE.
+    index: Vec<u32>,
+    /// Per network transfer id: index in `records`.
     in_flight: Vec<u32>,
-    /// Per device and op: the factor its compute time is scaled by.
-    jitter: Option<Vec<Vec<f64>>>,
     blocking_sends: bool,
     /// Per device: sends not yet delivered (only counted when sends block).
     pending_sends: Vec<u32>,
@@ -280,15 +277,62 @@ struct Executor<'a> {
     due: Vec<TransferId>,
 }
 
+impl Transfers {
+    /// Hands `out`'s data from `producer` (on device `src`) to its consumer on
+    /// device `dst`, at `now`: a transfer of the boundary's bytes.
+    #[allow(clippy::too_many_arguments)]
+    fn send(&mut self, now: SimTime, shape: &Shape, costs: &[StageCost], producer: Op, out: Edge, src: u32, dst: u32) {
+        let boundary = producer.stage.min(out.op.stage);
+        let bytes = costs[boundary as usize].send_bytes;
+        let rec = self.records.len() as u32;
+        self.records.push(TransferRecord {
+            flow: out.flow,
+            producer,
+            consumer: out.op,
+            src,
+            dst,
+            bytes,
+            start: now,
+            sent: now,
+            end: now,
+            bottleneck: None,
+        });
+        self.index[shape.op_index(producer)] = rec;
+        if self.blocking_sends {
+            self.pending_sends[src as usize] += 1;
+        }
+        let t = self.net.start(now, src, dst, bytes).0 as usize;
+        if self.in_flight.len() <= t {
+            self.in_flight.resize(t + 1, NONE);
+        }
+        self.in_flight[t] = rec;
+    }
+}
+
+struct Executor<'a> {
+    plan: &'a Plan,
+    /// The plan's shape, kept by value for the inner loop.
+    shape: Shape,
+    costs: &'a [StageCost],
+    next: Vec<usize>,
+    busy: Vec<bool>,
+    /// Per `Shape::op_index`: inputs not yet satisfied.
+    waiting: Vec<u8>,
+    ops: Vec<Vec<OpRecord>>,
+    transfers: Transfers,
+    /// Per device and op: the factor its compute time is scaled by.
+    jitter: Option<Vec<Vec<f64>>>,
+}
+
 type Sched = Scheduler<Event, Deadline>;
 
 impl Executor<'_> {
     fn try_start(&mut self, d: usize, sched: &mut Sched) {
-        if self.busy[d] || self.pending_sends[d] > 0 {
+        if self.busy[d] || self.transfers.pending_sends[d] > 0 {
             return;
         }
         let Some(&op) = self.plan.per_device[d].get(self.next[d]) else { return };
-        if self.waiting[self.plan.shape.op_index(op)] != 0 {
+        if self.waiting[self.shape.op_index(op)] != 0 {
             return;
         }
         let mut dur = self.costs[op.stage as usize].time(op.kind);
@@ -300,38 +344,6 @@ impl Executor<'_> {
         self.ops[d].push(OpRecord { op, start: now, end: now + dur });
         sched.schedule(now + dur, Event::OpDone(d as u32));
     }
-
-    /// Hands `producer`'s output to `consumer` on another device: a transfer.
-    fn send(&mut self, sched: &mut Sched, producer: Op, consumer: Op, flow: Flow) {
-        let shape = &self.plan.shape;
-        let (src, dst) = (shape.device_of(producer.stage), shape.device_of(consumer.stage));
-        let boundary = producer.stage.min(consumer.stage);
-        let bytes = self.costs[boundary as usize].send_bytes;
-        let rec = self.transfers.len() as u32;
-        let now = sched.now();
-        self.transfers.push(TransferRecord {
-            flow,
-            producer,
-            consumer,
-            src,
-            dst,
-            bytes,
-            start: now,
-            sent: now,
-            end: now,
-            bottleneck: None,
-        });
-        self.transfer_index[shape.op_index(producer)] = rec;
-        if self.blocking_sends {
-            self.pending_sends[src as usize] += 1;
-        }
-        let tid = self.net.start(now, src, dst, bytes);
-        let t = tid.0 as usize;
-        if self.in_flight.len() <= t {
-            self.in_flight.resize(t + 1, NONE);
-        }
-        self.in_flight[t] = rec;
-    }
 }
 
 impl Model for Executor<'_> {
@@ -339,63 +351,80 @@ impl Model for Executor<'_> {
     type Key = Deadline;
 
     fn handle(&mut self, fired: Fired<Event, Deadline>, sched: &mut Sched) {
-        let shape = self.plan.shape;
+        let shape = self.shape;
         match fired {
             Fired::Event(Event::OpDone(d)) => {
                 let d = d as usize;
                 let op = self.plan.per_device[d][self.next[d]];
                 self.next[d] += 1;
                 self.busy[d] = false;
-                for out in op.outputs(&shape) {
-                    if shape.device_of(out.op.stage) as usize == d {
-                        self.waiting[shape.op_index(out.op)] -= 1;
+                // Outputs on this device are satisfied now; the others are
+                // sent, in output order (two fit without allocating).
+                let (mut near, mut far) = ([None; 2], Vec::new());
+                let mut n = 0;
+                let waiting = &mut self.waiting;
+                op.each_output(&shape, |out| {
+                    // Within a stage nothing moves; across stages, only to
+                    // another device.
+                    let to = if out.flow.crosses_stages() { shape.device_of(out.op.stage) } else { d as u32 };
+                    if to as usize == d {
+                        waiting[shape.op_index(out.op)] -= 1;
+                    } else if n < near.len() {
+                        near[n] = Some((out, to));
+                        n += 1;
                     } else {
-                        self.send(sched, op, out.op, out.flow);
+                        far.push((out, to));
                     }
+                });
+                let now = sched.now();
+                for (out, to) in near.into_iter().flatten().chain(far) {
+                    self.transfers.send(now, &shape, self.costs, op, out, d as u32, to);
                 }
                 self.try_start(d, sched);
             }
             Fired::Deadline(Deadline::Network) => {
-                self.network_deadline = None;
+                let tr = &mut self.transfers;
+                tr.deadline = None;
                 let now = sched.now();
-                let mut due = std::mem::take(&mut self.due);
+                let mut due = std::mem::take(&mut tr.due);
                 due.clear();
-                self.net.take_due(now, &mut due);
+                tr.net.take_due(now, &mut due);
                 for &tid in &due {
-                    let fin = self.net.finish(now, tid);
-                    let rec = self.in_flight[tid.0 as usize];
-                    let t = &mut self.transfers[rec as usize];
+                    let fin = tr.net.finish(now, tid);
+                    let rec = tr.in_flight[tid.0 as usize];
+                    let t = &mut tr.records[rec as usize];
                     t.sent = now;
                     t.bottleneck = fin.bottleneck.map(|l| l.0);
                     sched.schedule(fin.delivered_at, Event::Arrival(rec));
                 }
-                self.due = due;
+                tr.due = due;
             }
             Fired::Event(Event::Arrival(rec)) => {
                 let now = sched.now();
-                let t = &mut self.transfers[rec as usize];
+                let t = &mut self.transfers.records[rec as usize];
                 t.end = now;
                 let (consumer, src, dst) = (t.consumer, t.src, t.dst);
                 self.waiting[shape.op_index(consumer)] -= 1;
                 self.try_start(dst as usize, sched);
-                if self.blocking_sends {
-                    self.pending_sends[src as usize] -= 1;
+                if self.transfers.blocking_sends {
+                    self.transfers.pending_sends[src as usize] -= 1;
                     self.try_start(src as usize, sched);
                 }
             }
         }
         // Hand out bandwidth once this instant's starts and finishes are in,
         // and keep the network's deadline where it says.
-        if self.net.needs_settle() && sched.peek_time() != Some(sched.now()) {
-            let next = self.net.settle(sched.now());
-            if next != self.network_deadline {
+        let tr = &mut self.transfers;
+        if tr.net.needs_settle() && sched.peek_time() != Some(sched.now()) {
+            let next = tr.net.settle(sched.now());
+            if next != tr.deadline {
                 match next {
                     Some(t) => sched.set_deadline(Deadline::Network, t),
                     None => {
                         sched.cancel_deadline(&Deadline::Network);
                     }
                 }
-                self.network_deadline = next;
+                tr.deadline = next;
             }
         }
     }
@@ -452,10 +481,15 @@ pub fn simulate_with(
         return Err(ExecError::TopologyDevices { devices: topology.devices(), stages: shape.stages });
     }
     let slots = shape.op_slots();
-    let mut waiting = vec![0u8; slots];
-    for ops in &plan.per_device {
-        for &op in ops {
-            waiting[shape.op_index(op)] = op.inputs(&shape).count() as u8;
+    // Each op's inputs, counted in dense-index order.
+    let mut waiting = Vec::with_capacity(slots);
+    for &kind in shape.kinds() {
+        for micro_batch in 0..shape.micro_batches {
+            for stage in 0..shape.virtual_stages() {
+                let mut n = 0u8;
+                Op { kind, micro_batch, stage }.each_input(&shape, |_| n += 1);
+                waiting.push(n);
+            }
         }
     }
     let link_names =
@@ -465,20 +499,23 @@ pub fn simulate_with(
     let cluster_devices = (0..shape.stages).map(|d| topology.cluster_device(d)).collect();
     let mut exec = Executor {
         plan: &plan,
+        shape,
         costs,
-        net: Network::new(topology),
-        network_deadline: None,
         next: vec![0; p],
         busy: vec![false; p],
         waiting,
         ops: plan.per_device.iter().map(|o| Vec::with_capacity(o.len())).collect(),
-        transfers: Vec::with_capacity(slots),
-        transfer_index: vec![NONE; slots],
-        in_flight: Vec::new(),
+        transfers: Transfers {
+            net: Network::new(topology),
+            deadline: None,
+            records: Vec::with_capacity(slots),
+            index: vec![NONE; slots],
+            in_flight: Vec::new(),
+            blocking_sends: options.blocking_sends,
+            pending_sends: vec![0; p],
+            due: Vec::new(),
+        },
         jitter,
-        blocking_sends: options.blocking_sends,
-        pending_sends: vec![0; p],
-        due: Vec::new(),
     };
     let mut sched = Scheduler::with_capacity(2 * p + 16);
     for d in 0..p {
@@ -496,8 +533,8 @@ pub fn simulate_with(
             op_index[shape.op_index(r.op)] = (d as u32, i as u32);
         }
     }
-    let link_stats = exec.net.stats().to_vec();
-    let Executor { ops, transfers, transfer_index, .. } = exec;
+    let link_stats = exec.transfers.net.stats().to_vec();
+    let Executor { ops, transfers: Transfers { records: transfers, index: transfer_index, .. }, .. } = exec;
     Ok(Trace {
         plan,
         ops,

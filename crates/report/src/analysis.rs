@@ -423,6 +423,7 @@ fn peak_held(trace: &Trace, d: usize) -> u32 {
     peak
 }
 
+#[inline(always)]
 fn push_gap(gaps: &mut Vec<Gap>, device: u32, start: SimTime, end: SimTime, detail: GapDetail) {
     if end <= start {
         return;
@@ -478,13 +479,24 @@ fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec
         let flow = Some(dep.flow);
         let transfer = dep.transfer.map(|t| &trace.transfers[t]);
         let route = transfer.map(|t| (t.src, t.dst));
-        let link = transfer.and_then(|t| t.bottleneck).and_then(|l| trace.link_names.get(l as usize).cloned());
         let producer = Some((dep.producer, dep.producer_device));
         let waiting_until = dep.produced_at.min(b.start);
-        push_gap(gaps, device, from, waiting_until, GapDetail { cause, flow, op: b.op, producer, route, link: None });
+        if waiting_until > from {
+            push_gap(
+                gaps,
+                device,
+                from,
+                waiting_until,
+                GapDetail { cause, flow, op: b.op, producer, route, link: None },
+            );
+        }
         let link_from = dep.produced_at.max(from);
-        let detail = GapDetail { cause: Cause::Link, flow, op: b.op, producer, route, link };
-        push_gap(gaps, device, link_from, b.start, detail);
+        if b.start > link_from {
+            // The link's name is only looked up for a gap that is there.
+            let link = transfer.and_then(|t| t.bottleneck).and_then(|l| trace.link_names.get(l as usize).cloned());
+            let detail = GapDetail { cause: Cause::Link, flow, op: b.op, producer, route, link };
+            push_gap(gaps, device, link_from, b.start, detail);
+        }
     }
     push_gap(gaps, device, last.end, t1, plain(Cause::Drain, last.op));
 }

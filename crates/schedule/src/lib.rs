@@ -78,6 +78,7 @@ impl OpKind {
     pub const SPLIT: &'static [OpKind] = &[OpKind::Forward, OpKind::Backward, OpKind::Weight];
 
     /// Position in [`OpKind::ALL`].
+    #[inline]
     pub fn index(self) -> usize {
         self as usize
     }
@@ -102,6 +103,7 @@ impl OpKind {
 
     /// When the op takes or frees its stage's stashed activations: a forward
     /// takes them as it starts, the backward frees them as it ends.
+    #[inline]
     pub fn stash(self) -> Stash {
         match self {
             OpKind::Forward => Stash::TakeAtStart,
@@ -135,6 +137,7 @@ impl Flow {
 
     /// Whether data crosses a stage boundary (and so, between stages on
     /// different devices, a link).
+    #[inline]
     pub fn crosses_stages(self) -> bool {
         self != Flow::Within
     }
@@ -188,14 +191,17 @@ pub struct Op {
 
 impl Op {
     /// The forward pass of `micro_batch` through `stage`.
+    #[inline]
     pub fn forward(micro_batch: u32, stage: u32) -> Self {
         Op { kind: OpKind::Forward, micro_batch, stage }
     }
     /// The backward pass of `micro_batch` through `stage`.
+    #[inline]
     pub fn backward(micro_batch: u32, stage: u32) -> Self {
         Op { kind: OpKind::Backward, micro_batch, stage }
     }
     /// The weight-gradient pass of `micro_batch` on `stage`.
+    #[inline]
     pub fn weight(micro_batch: u32, stage: u32) -> Self {
         Op { kind: OpKind::Weight, micro_batch, stage }
     }
@@ -203,37 +209,71 @@ impl Op {
     /// The ops this one waits for, and what flows from each: forward(i, s)
     /// needs forward(i, s-1)'s activation; backward(i, s) needs forward(i, s)
     /// and backward(i, s+1)'s gradient; weight(i, s) needs backward(i, s).
+    /// (The rule is written once, in [`Op::each_input`].)
     pub fn inputs(self, shape: &Shape) -> Edges {
-        let (i, s) = (self.micro_batch, self.stage);
-        let last = shape.virtual_stages() - 1;
-        let edge = |op, flow| Some(Edge { op, flow });
-        match self.kind {
-            OpKind::Forward if s > 0 => Edges::of(edge(Op::forward(i, s - 1), Flow::Activation), None),
-            OpKind::Forward => Edges::of(None, None),
-            OpKind::Backward => Edges::of(
-                edge(Op::forward(i, s), Flow::Within),
-                if s < last { edge(Op::backward(i, s + 1), Flow::Gradient) } else { None },
-            ),
-            OpKind::Weight => Edges::of(edge(Op::backward(i, s), Flow::Within), None),
-        }
+        let mut e = Edges::of(None, None);
+        let mut n = 0;
+        self.each_input(shape, |edge| {
+            e.items[n] = Some(edge);
+            n += 1;
+        });
+        e
     }
 
     /// The ops that wait for this one, and what flows to each (the mirror of
-    /// [`Op::inputs`], over the kinds `shape` runs).
+    /// [`Op::inputs`], over the kinds `shape` runs; written once, in
+    /// [`Op::each_output`]).
     pub fn outputs(self, shape: &Shape) -> Edges {
+        let mut e = Edges::of(None, None);
+        let mut n = 0;
+        self.each_output(shape, |edge| {
+            e.items[n] = Some(edge);
+            n += 1;
+        });
+        e
+    }
+
+    /// Calls `f` with each of [`Op::inputs`], in order, without building a
+    /// list (for the executor's and validator's inner loops).
+    #[inline]
+    pub fn each_input(self, shape: &Shape, mut f: impl FnMut(Edge)) {
         let (i, s) = (self.micro_batch, self.stage);
-        let last = shape.virtual_stages() - 1;
-        let edge = |op, flow| Some(Edge { op, flow });
         match self.kind {
-            OpKind::Forward => Edges::of(
-                if s < last { edge(Op::forward(i, s + 1), Flow::Activation) } else { None },
-                edge(Op::backward(i, s), Flow::Within),
-            ),
-            OpKind::Backward => Edges::of(
-                if s > 0 { edge(Op::backward(i, s - 1), Flow::Gradient) } else { None },
-                if shape.split_backward { edge(Op::weight(i, s), Flow::Within) } else { None },
-            ),
-            OpKind::Weight => Edges::of(None, None),
+            OpKind::Forward => {
+                if s > 0 {
+                    f(Edge { op: Op::forward(i, s - 1), flow: Flow::Activation });
+                }
+            }
+            OpKind::Backward => {
+                f(Edge { op: Op::forward(i, s), flow: Flow::Within });
+                if s + 1 < shape.virtual_stages() {
+                    f(Edge { op: Op::backward(i, s + 1), flow: Flow::Gradient });
+                }
+            }
+            OpKind::Weight => f(Edge { op: Op::backward(i, s), flow: Flow::Within }),
+        }
+    }
+
+    /// Calls `f` with each of [`Op::outputs`], in order, without building a list.
+    #[inline]
+    pub fn each_output(self, shape: &Shape, mut f: impl FnMut(Edge)) {
+        let (i, s) = (self.micro_batch, self.stage);
+        match self.kind {
+            OpKind::Forward => {
+                if s + 1 < shape.virtual_stages() {
+                    f(Edge { op: Op::forward(i, s + 1), flow: Flow::Activation });
+                }
+                f(Edge { op: Op::backward(i, s), flow: Flow::Within });
+            }
+            OpKind::Backward => {
+                if s > 0 {
+                    f(Edge { op: Op::backward(i, s - 1), flow: Flow::Gradient });
+                }
+                if shape.split_backward {
+                    f(Edge { op: Op::weight(i, s), flow: Flow::Within });
+                }
+            }
+            OpKind::Weight => {}
         }
     }
 }
@@ -307,6 +347,7 @@ impl Shape {
     }
 
     /// The op kinds every (micro-batch, virtual stage) runs.
+    #[inline]
     pub fn kinds(&self) -> &'static [OpKind] {
         if self.split_backward {
             OpKind::SPLIT
@@ -317,6 +358,7 @@ impl Shape {
 
     /// Size of the dense op index: one slot per kind the shape runs,
     /// micro-batch and virtual stage.
+    #[inline]
     pub fn op_slots(&self) -> usize {
         self.kinds().len() * self.micro_batches as usize * self.virtual_stages() as usize
     }
@@ -324,17 +366,20 @@ impl Shape {
     /// Dense index of `op`: `(kind * m + micro_batch) * S + stage`, below
     /// [`Shape::op_slots`] for the kinds the shape runs (its kinds are always
     /// the first ones of [`OpKind::ALL`], so a kind's index is its place).
+    #[inline]
     pub fn op_index(&self, op: Op) -> usize {
         let s = self.virtual_stages() as usize;
         (op.kind.index() * self.micro_batches as usize + op.micro_batch as usize) * s + op.stage as usize
     }
 
     /// `p * v`.
+    #[inline]
     pub fn virtual_stages(&self) -> u32 {
         self.stages * self.chunks
     }
 
     /// The device that runs virtual stage `stage`.
+    #[inline]
     pub fn device_of(&self, stage: u32) -> u32 {
         stage % self.stages
     }
@@ -587,19 +632,25 @@ pub fn validate(plan: &Plan) -> Result<(), ScheduleError> {
     let mut done = vec![false; shape.op_slots()];
     let mut next = vec![0usize; p];
     let mut work: Vec<usize> = (0..p).collect();
-    let ready = |op: Op, done: &[bool]| op.inputs(&shape).all(|e| done[shape.op_index(e.op)]);
+    let ready = |op: Op, done: &[bool]| {
+        let mut all = true;
+        op.each_input(&shape, |e| all &= done[shape.op_index(e.op)]);
+        all
+    };
     while let Some(d) = work.pop() {
         let ops = &plan.per_device[d];
         while next[d] < ops.len() && ready(ops[next[d]], &done) {
             let op = ops[next[d]];
             done[shape.op_index(op)] = true;
             next[d] += 1;
-            for e in op.outputs(&shape) {
-                let to = shape.device_of(e.op.stage) as usize;
-                if to != d {
-                    work.push(to);
+            op.each_output(&shape, |e| {
+                if e.flow.crosses_stages() {
+                    let to = shape.device_of(e.op.stage) as usize;
+                    if to != d {
+                        work.push(to);
+                    }
                 }
-            }
+            });
         }
     }
     for (d, ops) in plan.per_device.iter().enumerate() {
