@@ -134,10 +134,10 @@ proptest! {
             last_layer.push(end - 1);
         }
         for t in &trace.transfers {
-            let boundary = t.producer.stage.min(t.consumer.stage) as usize;
-            prop_assert_eq!(t.producer.stage.abs_diff(t.consumer.stage), 1);
+            let boundary = t.from_stage.min(t.to_stage) as usize;
+            prop_assert_eq!(t.from_stage.abs_diff(t.to_stage), 1);
             prop_assert_eq!(t.bytes, c.layers[last_layer[boundary]].2 as u64 * 1_000, "boundary {}", boundary);
-            prop_assert_eq!((t.src, t.dst), (t.producer.stage % c.p, t.consumer.stage % c.p));
+            prop_assert_eq!((t.src, t.dst), (t.from_stage % c.p, t.to_stage % c.p));
             prop_assert_eq!(t.end.as_ns() - t.sent.as_ns(), latency);
             // Alone on its link from start until its last byte leaves (no other
             // transfer between the same two devices in flight at once: one that

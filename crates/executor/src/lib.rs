@@ -79,10 +79,16 @@ pub struct OpRecord {
 pub struct TransferRecord {
     /// What it carries.
     pub flow: Flow,
-    /// The op that produced the data.
-    pub producer: Op,
-    /// The op that waits for it.
-    pub consumer: Op,
+    /// The micro-batch whose data it carries.
+    pub micro_batch: u32,
+    /// The virtual stage that produced the data.
+    pub from_stage: u32,
+    /// The virtual stage that consumes it.
+    pub to_stage: u32,
+    /// The kind of the op that produced it.
+    pub producer_kind: OpKind,
+    /// The kind of the op that waits for it.
+    pub consumer_kind: OpKind,
     /// Sending pipeline device.
     pub src: u32,
     /// Receiving pipeline device.
@@ -98,6 +104,18 @@ pub struct TransferRecord {
     /// The link that held the transfer back the longest (an index into the
     /// topology's links), if it shared a finite link.
     pub bottleneck: Option<u32>,
+}
+
+impl TransferRecord {
+    /// The op that produced the data.
+    pub fn producer(&self) -> Op {
+        Op { kind: self.producer_kind, micro_batch: self.micro_batch, stage: self.from_stage }
+    }
+
+    /// The op that waits for it.
+    pub fn consumer(&self) -> Op {
+        Op { kind: self.consumer_kind, micro_batch: self.micro_batch, stage: self.to_stage }
+    }
 }
 
 /// The data an operation waited for from another stage.
@@ -287,8 +305,11 @@ impl Transfers {
         let rec = self.records.len() as u32;
         self.records.push(TransferRecord {
             flow: out.flow,
-            producer,
-            consumer: out.op,
+            micro_batch: producer.micro_batch,
+            from_stage: producer.stage,
+            to_stage: out.op.stage,
+            producer_kind: producer.kind,
+            consumer_kind: out.op.kind,
             src,
             dst,
             bytes,
@@ -403,7 +424,7 @@ impl Model for Executor<'_> {
                 let now = sched.now();
                 let t = &mut self.transfers.records[rec as usize];
                 t.end = now;
-                let (consumer, src, dst) = (t.consumer, t.src, t.dst);
+                let (consumer, src, dst) = (t.consumer(), t.src, t.dst);
                 self.waiting[shape.op_index(consumer)] -= 1;
                 self.try_start(dst as usize, sched);
                 if self.transfers.blocking_sends {

@@ -30,7 +30,7 @@ pub fn write<W: io::Write>(trace: &Trace, out: W) -> Result<(), ReportError> {
         }
     }
     for t in &trace.transfers {
-        rows.push((t.start.as_ns(), t.end.as_ns(), t.src, SEND, t.producer.micro_batch, t.producer.stage));
+        rows.push((t.start.as_ns(), t.end.as_ns(), t.src, SEND, t.micro_batch, t.from_stage));
     }
     rows.sort_unstable();
     let mut w = ::csv::Writer::from_writer(out);

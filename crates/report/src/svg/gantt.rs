@@ -303,7 +303,7 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
                 let what = format!(
                     "{} of micro-batch {} from device {} to device {}, {} bytes: sending {} to {}, arrived {}{}",
                     t.flow.as_str(),
-                    t.producer.micro_batch,
+                    t.micro_batch,
                     t.src,
                     t.dst,
                     t.bytes,
