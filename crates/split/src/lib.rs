@@ -223,6 +223,10 @@ impl Search<'_> {
 
     /// A split with every piece within `limit_ns` and `cap`, if one exists.
     fn feasible(&self, limit_ns: u128, cap: u128) -> Option<Vec<u32>> {
+        // A reserve larger than the device leaves no room for any piece.
+        if self.p.memory.is_some_and(|m| m.reserved_bytes as u128 > cap) {
+            return None;
+        }
         if self.greedy_is_exact() {
             self.greedy(limit_ns, cap)
         } else {
@@ -625,6 +629,18 @@ mod tests {
                 assert_eq!(s.bottleneck_ns, 30);
                 assert_eq!(s.device_bytes, vec![100, 150]);
             }
+            o => panic!("{o:?}"),
+        }
+    }
+
+    #[test]
+    fn a_reserve_larger_than_the_device_fits_nothing() {
+        // Found by `matches_brute_force`: one empty layer, capacity 0, 1 byte
+        // reserved. The pieces need nothing, but the reserve alone is over.
+        let mut m = Model::new(vec![layer(1, 0, 0)], 1, vec![1], 0);
+        m.memory = Some(Memory { capacity_bytes: 0, reserved_bytes: 1 });
+        match solve(&m.problem()).unwrap() {
+            Found::NoFit { shortfall_bytes, device, .. } => assert_eq!((shortfall_bytes, device), (1, 0)),
             o => panic!("{o:?}"),
         }
     }
