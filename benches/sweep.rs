@@ -23,7 +23,8 @@ fn bench(c: &mut Criterion) {
     group.throughput(Throughput::Elements(grid.len() as u64));
     group.bench_function("1000-points-p8-m64-all-cores", |b| {
         b.iter(|| {
-            let points = pool.install(|| sweep::run(&doc, &[], &grid, &indices, &|| {}));
+            let points =
+                pool.install(|| sweep::run(&doc, &[], &grid, &indices, baton::DEFAULT_MAX_MEMORY_BYTES, &|| {}));
             assert!(points.iter().all(|p| p.result.is_ok()));
             points
         })

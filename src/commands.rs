@@ -10,13 +10,13 @@ use std::path::{Path, PathBuf};
 use baton_output::{OutputError, Outputs};
 use baton_report::svg::{gantt, memory};
 use baton_report::ReportError;
-use baton_scenario::ScenarioError;
+use baton_scenario::{Override, ScenarioError};
 use thiserror::Error;
 
 use crate::compare::{CompareError, Comparison};
 use crate::planner::PlanError;
 use crate::sweep::{self as sw, Grid, RankBy, Request, SweepError};
-use crate::SimulateError;
+use crate::{Making, SimulateError};
 
 /// Why a command failed, and so its exit status.
 #[derive(Debug, Error)]
@@ -63,12 +63,31 @@ pub enum CommandError {
         /// The system's reason.
         message: String,
     },
+    /// The run would need more memory than `--max-memory` allows (exit 2).
+    #[error(
+        "this run needs about {} ({ops} operations and {transfers} transfers at about {per} B each, with its outputs), \
+         more than --max-memory {} allows; simulate fewer micro-batches or stages, or raise --max-memory",
+        baton_report::format_bytes(*.estimate),
+        baton_report::format_bytes(*.limit)
+    )]
+    TooMuchMemory {
+        /// The estimate in bytes.
+        estimate: u64,
+        /// The limit in bytes.
+        limit: u64,
+        /// Operations in one step.
+        ops: u64,
+        /// Transfers in one step.
+        transfers: u64,
+        /// The per-element figure used.
+        per: u64,
+    },
     /// Memory over capacity where the command was asked to fail on it (exit 3).
     #[error("{0}")]
     OverCapacity(String),
-    /// Every point of a sweep was skipped (exit 2).
-    #[error("every point was skipped; see the reasons above")]
-    AllSkipped,
+    /// Every point of a sweep was skipped (exit 2); carries the table of reasons.
+    #[error("every point was skipped, so nothing is written:\n{0}")]
+    AllSkipped(String),
 }
 
 impl CommandError {
@@ -77,7 +96,7 @@ impl CommandError {
     pub fn exit_status(&self) -> u8 {
         match self {
             CommandError::Scenario(_) | CommandError::Compare(_) | CommandError::Read { .. } => 2,
-            CommandError::AllSkipped => 2,
+            CommandError::AllSkipped(_) | CommandError::TooMuchMemory { .. } => 2,
             CommandError::Simulate(e) | CommandError::Plan(PlanError::Simulate(e)) => {
                 if e.is_internal() {
                     1
@@ -113,6 +132,17 @@ pub struct Done {
     pub then: Option<CommandError>,
 }
 
+/// Refuses a run whose memory estimate is over `limit`; `copies` steps are
+/// held at once.
+fn check_memory(s: &baton_scenario::Scenario, making: Making, copies: u64, limit: u64) -> Result<(), CommandError> {
+    let estimate = crate::memory_estimate_bytes(s, making).saturating_mul(copies);
+    if estimate > limit {
+        let (ops, transfers) = crate::step_elements(s);
+        return Err(CommandError::TooMuchMemory { estimate, limit, ops, transfers, per: crate::BYTES_PER_ELEMENT });
+    }
+    Ok(())
+}
+
 fn render(what: &'static str) -> impl FnOnce(ReportError) -> CommandError {
     move |source| CommandError::Render { what, source }
 }
@@ -129,11 +159,19 @@ pub struct RunRequest<'a> {
     pub comm_lanes: bool,
     /// Fail (exit 3) when a device is over its memory capacity.
     pub strict: bool,
+    /// Refuse (exit 2) a run whose estimated memory is over this.
+    pub max_memory: u64,
 }
 
 /// `baton run`: outputs `--svg`, `--memory-svg`, `--layers-csv`, `--trace`, `--json`.
 pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandError> {
     let scenario = baton_scenario::load(r.scenario, r.sets)?;
+    let making = Making {
+        json: outputs.wants("--json"),
+        trace: outputs.wants("--trace"),
+        chart: outputs.wants("--svg") || outputs.wants("--memory-svg"),
+    };
+    check_memory(&scenario, making, 1, r.max_memory)?;
     let outcome = crate::simulate(&scenario)?;
     let (trace, report) = (&outcome.trace, &outcome.report);
     if outputs.wants("--svg") {
@@ -179,17 +217,21 @@ pub struct SplitRequest<'a> {
     pub stages: Option<u32>,
     /// Split for this many chunks per device instead.
     pub chunks: Option<u32>,
+    /// Refuse (exit 2) when the simulations it holds at once would need more.
+    pub max_memory: u64,
 }
 
 /// `baton split`: outputs `--apply` (the rewritten scenario) and `--json`.
 pub fn split(r: &SplitRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandError> {
-    let mut sets = r.sets.to_vec();
-    sets.extend(r.stages.map(|n| format!("pipeline.stages={n}")));
-    sets.extend(r.chunks.map(|v| format!("pipeline.chunks={v}")));
-    if r.stages.is_some() || r.chunks.is_some() {
-        sets.push("pipeline.split=even".into());
+    let mut sets: Vec<Override> = r.sets.iter().map(|a| Override::set(a)).collect();
+    sets.extend(r.stages.map(|n| Override::typed(format!("pipeline.stages={n}"), format!("--stages {n}"))));
+    sets.extend(r.chunks.map(|v| Override::typed(format!("pipeline.chunks={v}"), format!("--chunks {v}"))));
+    if let Some(typed) = r.stages.map(|n| format!("--stages {n}")).or(r.chunks.map(|v| format!("--chunks {v}"))) {
+        sets.push(Override::typed("pipeline.split=even", typed));
     }
-    let scenario = baton_scenario::load(r.scenario, &sets)?;
+    let scenario = baton_scenario::load_with(r.scenario, &sets)?;
+    // The search keeps the scenario's, the proxy's, the best and a candidate step.
+    check_memory(&scenario, Making::default(), 4, r.max_memory)?;
     let plan = crate::planner::plan(&scenario)?;
     let report = crate::planner::report(&scenario, &plan)?;
     if let Some(dest) = outputs.path("--apply") {
@@ -224,6 +266,8 @@ pub struct SweepRequest<'a> {
     pub jobs: Option<usize>,
     /// Rows of the table to print.
     pub top: usize,
+    /// Skip a point whose estimated memory is over this.
+    pub max_memory: u64,
 }
 
 /// `baton sweep`: outputs `--csv`, `--svg`, `--json`.
@@ -233,25 +277,40 @@ pub fn sweep(r: &SweepRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comman
     let grid = Grid::new(axes)?;
     let shard = r.shard.map(sw::parse_shard).transpose()?;
     let doc = baton_scenario::Document::load(r.scenario)?;
-    let done = sw::execute(&Request { doc: &doc, sets: r.sets, grid: &grid, shard, jobs: r.jobs, by })?;
-    let (keys, points) = (grid.keys(), &done.points);
-    outputs.write_with("--csv", |w| sw::write_csv(&keys, points, w).map_err(std::io::Error::other))?;
-    if outputs.wants("--svg") {
-        let title = doc.scenario(r.sets).map(|s| s.title).unwrap_or_default();
-        let svg = sw::chart(&title, &grid, points, by)
-            .map_err(|e| CommandError::Render { what: "draw the chart", source: ReportError::Draw(e) })?;
-        outputs.write("--svg", svg.as_bytes())?;
-    }
-    outputs.write("--json", sw::to_json(&keys, points).as_bytes())?;
+    let scenario_text = std::fs::read(r.scenario)
+        .map_err(|e| CommandError::Read { path: r.scenario.display().to_string(), message: e.to_string() })?;
+    let request = Request {
+        doc: &doc,
+        sets: r.sets,
+        grid: &grid,
+        shard,
+        jobs: r.jobs,
+        by,
+        scenario_text: &scenario_text,
+        max_memory: r.max_memory,
+    };
+    let done = sw::execute(&request)?;
+    let (keys, points, tag) = (grid.keys(), &done.points, &done.tag);
     let mut text = String::new();
     if let Some((i, n)) = shard {
         text.push_str(&format!("shard {i}/{n}: {} of the grid's {} points\n", done.covered, grid.len()));
     }
     let scenario_path = r.scenario.display().to_string();
     text.push_str(&sw::table(&keys, points, by, r.top, Some(&scenario_path), r.sets));
+    if shard.is_none() && points.iter().all(|p| p.result.is_err()) {
+        // Nothing to write: say why every point was skipped.
+        return Err(CommandError::AllSkipped(text));
+    }
+    outputs.write_with("--csv", |w| sw::write_csv(&keys, points, tag, w).map_err(std::io::Error::other))?;
+    if outputs.wants("--svg") {
+        let title = doc.scenario(r.sets).map(|s| s.title).unwrap_or_default();
+        let svg = sw::chart(&title, &grid, points, by)
+            .map_err(|e| CommandError::Render { what: "draw the chart", source: ReportError::Draw(e) })?;
+        outputs.write("--svg", svg.as_bytes())?;
+    }
+    outputs.write("--json", sw::to_json(&keys, points, tag).as_bytes())?;
     text.push_str(&format!("simulated {} points in {:.2} s\n", points.len(), done.elapsed.as_secs_f64()));
-    let all_skipped = shard.is_none() && !points.is_empty() && points.iter().all(|p| p.result.is_err());
-    Ok(Done { text, then: all_skipped.then_some(CommandError::AllSkipped) })
+    Ok(Done { text, then: None })
 }
 
 /// `baton merge`: outputs `--csv`, `--json`.
@@ -263,9 +322,9 @@ pub fn merge(parts: &[PathBuf], rank_by: &str, top: usize, outputs: &mut Outputs
             .map_err(|e| CommandError::Read { path: p.display().to_string(), message: e.to_string() })?;
         texts.push((p.display().to_string(), text));
     }
-    let (keys, points) = sw::merge(&texts, by)?;
-    outputs.write_with("--csv", |w| sw::write_csv(&keys, &points, w).map_err(std::io::Error::other))?;
-    outputs.write("--json", sw::to_json(&keys, &points).as_bytes())?;
+    let (keys, points, tag) = sw::merge(&texts, by)?;
+    outputs.write_with("--csv", |w| sw::write_csv(&keys, &points, &tag, w).map_err(std::io::Error::other))?;
+    outputs.write("--json", sw::to_json(&keys, &points, &tag).as_bytes())?;
     Ok(Done { text: sw::table(&keys, &points, by, top, None, &[]), then: None })
 }
 
@@ -274,9 +333,24 @@ pub fn compare(
     scenarios: &[PathBuf],
     sets: &[String],
     comm_lanes: bool,
+    max_memory: u64,
     outputs: &mut Outputs,
 ) -> Result<Done, CommandError> {
     let runs = crate::compare::scenarios(scenarios, sets)?;
+    let making = Making { json: outputs.wants("--json"), trace: false, chart: outputs.wants("--svg") };
+    let total: u64 = runs.iter().map(|(_, s)| crate::memory_estimate_bytes(s, making)).sum();
+    if let Some((_, largest)) = runs.iter().max_by_key(|(_, s)| crate::memory_estimate_bytes(s, making)) {
+        if total > max_memory {
+            let (ops, transfers) = crate::step_elements(largest);
+            return Err(CommandError::TooMuchMemory {
+                estimate: total,
+                limit: max_memory,
+                ops,
+                transfers,
+                per: crate::BYTES_PER_ELEMENT,
+            });
+        }
+    }
     let comparison = Comparison::run(&runs)?;
     if outputs.wants("--svg") {
         outputs.write("--svg", comparison.chart(comm_lanes).map_err(render("draw the chart"))?.as_bytes())?;
@@ -302,7 +376,7 @@ mod tests {
         let bad = SimulateError::Exec(ExecError::Jitter(2.0));
         assert_eq!(CommandError::Simulate(bad).exit_status(), 2);
         assert_eq!(CommandError::OverCapacity("x".into()).exit_status(), 3);
-        assert_eq!(CommandError::AllSkipped.exit_status(), 2);
+        assert_eq!(CommandError::AllSkipped(String::new()).exit_status(), 2);
         let usage = OutputError::TwoStdout { first: "--json".into(), second: "--svg".into() };
         assert_eq!(CommandError::Output(usage).exit_status(), 2);
         let io = OutputError::Write { path: "/dev/full".into(), message: "No space left on device".into() };

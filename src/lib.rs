@@ -157,6 +157,61 @@ pub fn labels(s: &Scenario) -> Labels {
     }
 }
 
+/// What one simulated step holds in memory per operation or transfer: its
+/// records, indices, events and report (gaps included), measured at 114 to
+/// 138 bytes for 1F1B and about 62 for fill-drain and interleaved runs of a
+/// million or more operations (see the README's performance section), with
+/// room to spare.
+pub const BYTES_PER_ELEMENT: u64 = 160;
+/// Extra bytes per operation or transfer while the JSON report is made.
+pub const JSON_BYTES_PER_ELEMENT: u64 = 320;
+/// Extra bytes per operation or transfer while the CSV trace is written.
+pub const TRACE_BYTES_PER_ELEMENT: u64 = 96;
+/// Extra bytes per charted operation or transfer mark while a chart is drawn.
+pub const CHART_BYTES_PER_ELEMENT: u64 = 640;
+/// Bytes every run needs beyond its elements (program, scenario, buffers).
+pub const BASE_BYTES: u64 = 64 << 20;
+/// The default limit on a run's estimated memory: 16 GiB on every machine.
+pub const DEFAULT_MAX_MEMORY_BYTES: u64 = 16 << 30;
+
+/// Which outputs a run makes, for its memory estimate.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct Making {
+    /// The JSON report.
+    pub json: bool,
+    /// The CSV trace.
+    pub trace: bool,
+    /// Charts (Gantt or memory).
+    pub chart: bool,
+}
+
+/// The operations and transfers one step of `s` runs: every op of the plan,
+/// and two transfers (activation and gradient) per micro-batch for every
+/// boundary between pieces on different devices.
+pub fn step_elements(s: &Scenario) -> (u64, u64) {
+    let shape = s.shape();
+    let p = s.pipeline.stages as u64;
+    let crossing = if p > 1 { shape.virtual_stages() as u64 - 1 } else { 0 };
+    (shape.ops(), 2 * s.pipeline.micro_batches as u64 * crossing)
+}
+
+/// An estimate of the memory simulating one step of `s` needs, before it
+/// runs: [`BASE_BYTES`] plus, per operation and transfer,
+/// [`BYTES_PER_ELEMENT`] and what the outputs `making` add.
+pub fn memory_estimate_bytes(s: &Scenario, making: Making) -> u64 {
+    let (ops, transfers) = step_elements(s);
+    let n = ops + transfers;
+    let charted = n.min(baton_report::svg::MAX_CHART_OPS as u64);
+    let per = BYTES_PER_ELEMENT
+        + if making.json { JSON_BYTES_PER_ELEMENT } else { 0 }
+        + if making.trace { TRACE_BYTES_PER_ELEMENT } else { 0 };
+    BASE_BYTES.saturating_add(n.saturating_mul(per)).saturating_add(if making.chart {
+        charted * CHART_BYTES_PER_ELEMENT
+    } else {
+        0
+    })
+}
+
 /// Simulates one training step of `s` and reports on it.
 pub fn simulate(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;

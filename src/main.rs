@@ -94,8 +94,9 @@ struct SweepArgs {
     /// Threads to simulate with (default: all cores), e.g. --jobs 2.
     #[arg(long, value_name = "N")]
     jobs: Option<usize>,
-    /// What to rank by: step_time (default), throughput, bubble or memory, e.g. --rank-by throughput.
-    #[arg(long, value_name = "FIELD", default_value = "step_time")]
+    /// What to rank by: throughput (samples/s, the default: points with more micro-batches do more
+    /// work), step_time, bubble or memory, e.g. --rank-by step_time.
+    #[arg(long, value_name = "FIELD", default_value = "throughput")]
     rank_by: String,
     /// Run only the I-th of N disjoint slices of the grid (every N-th point),
     /// e.g. --shard 3/8 for task 3 of a job array of 8; combine with baton merge.
@@ -107,6 +108,10 @@ struct SweepArgs {
     /// Override a value of the scenario for every point, e.g. --set cluster.devices=8.
     #[arg(long = "set", value_name = "KEY=VALUE")]
     sets: Vec<String>,
+    /// Refuse (exit 2) a run whose estimated memory is over SIZE (default
+    /// 16GiB on every machine), e.g. --max-memory 4GiB.
+    #[arg(long, value_name = "SIZE", default_value = "16GiB", value_parser = parse_size)]
+    max_memory: u64,
 }
 
 #[derive(Args)]
@@ -121,7 +126,7 @@ struct MergeArgs {
     #[arg(long, value_name = "PATH|-")]
     json: Option<PathBuf>,
     /// What to rank by (as in baton sweep), e.g. --rank-by memory.
-    #[arg(long, value_name = "FIELD", default_value = "step_time")]
+    #[arg(long, value_name = "FIELD", default_value = "throughput")]
     rank_by: String,
     /// Rows of the ranked table to print, e.g. --top 50.
     #[arg(long, value_name = "N", default_value_t = 20)]
@@ -146,6 +151,10 @@ struct CompareArgs {
     /// Leave the communication lanes out of the chart, e.g. --no-comm-lanes.
     #[arg(long)]
     no_comm_lanes: bool,
+    /// Refuse (exit 2) a run whose estimated memory is over SIZE (default
+    /// 16GiB on every machine), e.g. --max-memory 4GiB.
+    #[arg(long, value_name = "SIZE", default_value = "16GiB", value_parser = parse_size)]
+    max_memory: u64,
 }
 
 #[derive(Args)]
@@ -173,6 +182,10 @@ struct SplitArgs {
     /// checked; repeatable, e.g. --set pipeline.micro_batches=32.
     #[arg(long = "set", value_name = "KEY=VALUE")]
     sets: Vec<String>,
+    /// Refuse (exit 2) a run whose estimated memory is over SIZE (default
+    /// 16GiB on every machine), e.g. --max-memory 4GiB.
+    #[arg(long, value_name = "SIZE", default_value = "16GiB", value_parser = parse_size)]
+    max_memory: u64,
 }
 
 #[derive(Args)]
@@ -214,6 +227,10 @@ struct RunArgs {
     /// receives, e.g. --svg timeline.svg --no-comm-lanes.
     #[arg(long)]
     no_comm_lanes: bool,
+    /// Refuse (exit 2) a run whose estimated memory is over SIZE (default
+    /// 16GiB on every machine), e.g. --max-memory 4GiB.
+    #[arg(long, value_name = "SIZE", default_value = "16GiB", value_parser = parse_size)]
+    max_memory: u64,
 }
 
 fn main() -> ExitCode {
@@ -239,13 +256,20 @@ fn main() -> ExitCode {
                 show_layers: a.show_layers,
                 comm_lanes: !a.no_comm_lanes,
                 strict: a.strict,
+                max_memory: a.max_memory,
             };
             finish(commands::run(&r, &mut o), o)
         }),
         Command::Split(a) => {
             outputs(&[("--apply", "scenario with the proposed split", &a.apply), json(&a.json, "result")]).and_then(
                 |mut o| {
-                    let r = SplitRequest { scenario: &a.scenario, sets: &a.sets, stages: a.stages, chunks: a.chunks };
+                    let r = SplitRequest {
+                        scenario: &a.scenario,
+                        sets: &a.sets,
+                        stages: a.stages,
+                        chunks: a.chunks,
+                        max_memory: a.max_memory,
+                    };
                     finish(commands::split(&r, &mut o), o)
                 },
             )
@@ -260,14 +284,16 @@ fn main() -> ExitCode {
                     shard: a.shard.as_deref(),
                     jobs: a.jobs,
                     top: a.top,
+                    max_memory: a.max_memory,
                 };
                 finish(commands::sweep(&r, &mut o), o)
             })
         }
         Command::Merge(a) => outputs(&[("--csv", "CSV", &a.csv), json(&a.json, "JSON")])
             .and_then(|mut o| finish(commands::merge(&a.parts, &a.rank_by, a.top, &mut o), o)),
-        Command::Compare(a) => outputs(&[svg(&a.svg), json(&a.json, "JSON")])
-            .and_then(|mut o| finish(commands::compare(&a.scenarios, &a.sets, !a.no_comm_lanes, &mut o), o)),
+        Command::Compare(a) => outputs(&[svg(&a.svg), json(&a.json, "JSON")]).and_then(|mut o| {
+            finish(commands::compare(&a.scenarios, &a.sets, !a.no_comm_lanes, a.max_memory, &mut o), o)
+        }),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -279,6 +305,11 @@ fn main() -> ExitCode {
 }
 
 type Request<'a> = (&'static str, &'static str, &'a Option<PathBuf>);
+
+/// A size such as `16GiB` for `--max-memory`.
+fn parse_size(text: &str) -> Result<u64, String> {
+    baton::scenario::units::parse_bytes(text)
+}
 
 fn svg(path: &Option<PathBuf>) -> Request<'_> {
     ("--svg", "chart", path)

@@ -549,13 +549,25 @@ pub fn applied_text(
     if let Some(v) = chunks {
         edits.push(("pipeline.chunks", v.to_string()));
     }
+    // A profile named relative to the scenario must still be found from the copy.
+    if let (baton_scenario::ModelSource::Profile(profile), Some(dest_dir)) = (&scenario.source, dest_dir(dest)) {
+        let written = profile_as_written(&text, path);
+        if written.as_deref().is_some_and(|w| Path::new(w).is_relative()) {
+            let target = std::fs::canonicalize(profile)
+                .map_err(|e| PlanError::Apply(format!("cannot find the profile {}: {e}", profile.display())))?;
+            let from = std::fs::canonicalize(&dest_dir)
+                .map_err(|e| PlanError::Apply(format!("cannot find {}: {e}", dest_dir.display())))?;
+            let rel = relative_path(&from, &target);
+            edits.push(("model.profile", yaml_text(&rel.to_string_lossy())));
+        }
+    }
     let file = path.display().to_string();
     let new_text =
         baton_scenario::edit::set_values(&text, &file, &edits).map_err(|e| PlanError::Apply(e.to_string()))?;
     // The copy must read back as the same scenario with the new split.
-    let check =
-        baton_scenario::parse_in(&new_text, dest, &scenario.title, path.parent().unwrap_or(Path::new("")), sets)
-            .map_err(|e| PlanError::Apply(format!("the rewritten scenario does not read back: {e}")))?;
+    let check_dir = dest_dir(dest).unwrap_or_else(|| path.parent().unwrap_or(Path::new("")).to_path_buf());
+    let check = baton_scenario::parse_in(&new_text, dest, &scenario.title, &check_dir, sets)
+        .map_err(|e| PlanError::Apply(format!("the rewritten scenario does not read back: {e}")))?;
     if check.pipeline.split != split {
         return Err(PlanError::Apply(format!(
             "the rewritten scenario reads back with split {} instead of {}",
@@ -564,4 +576,65 @@ pub fn applied_text(
         )));
     }
     Ok(new_text)
+}
+
+/// The directory a copy written to `dest` lives in (`None` for standard output).
+fn dest_dir(dest: &str) -> Option<std::path::PathBuf> {
+    if dest == "-" {
+        return None;
+    }
+    let parent = Path::new(dest).parent().unwrap_or(Path::new(""));
+    Some(if parent.as_os_str().is_empty() { Path::new(".").to_path_buf() } else { parent.to_path_buf() })
+}
+
+/// The `model.profile` value as written in the scenario text, if any.
+fn profile_as_written(text: &str, path: &Path) -> Option<String> {
+    let doc = baton_scenario::node::parse_document(text, &path.display().to_string()).ok()?;
+    let mut node = &doc;
+    for key in ["model", "profile"] {
+        let baton_scenario::Value::Map(entries) = &node.value else { return None };
+        node = &entries.iter().find(|(k, _, _)| k == key)?.2;
+    }
+    match &node.value {
+        baton_scenario::Value::Str(s) => Some(s.clone()),
+        _ => None,
+    }
+}
+
+/// The path from directory `from` to `to` (both absolute): up past what they
+/// do not share, then down.
+fn relative_path(from: &Path, to: &Path) -> std::path::PathBuf {
+    let (a, b): (Vec<_>, Vec<_>) = (from.components().collect(), to.components().collect());
+    let common = a.iter().zip(&b).take_while(|(x, y)| x == y).count();
+    let mut out = std::path::PathBuf::new();
+    for _ in common..a.len() {
+        out.push("..");
+    }
+    for c in &b[common..] {
+        out.push(c);
+    }
+    out
+}
+
+/// A YAML scalar for `s`: as is when plain, otherwise double-quoted.
+fn yaml_text(s: &str) -> String {
+    if s.chars().all(|c| c.is_ascii_alphanumeric() || "._/-".contains(c)) && !s.is_empty() {
+        s.to_string()
+    } else {
+        format!("\"{}\"", s.replace('\\', "\\\\").replace('"', "\\\""))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn relative_paths_go_up_then_down() {
+        let p = |s: &str| Path::new(s).to_path_buf();
+        assert_eq!(relative_path(&p("/a/b/c"), &p("/a/d/x.csv")), p("../../d/x.csv"));
+        assert_eq!(relative_path(&p("/a"), &p("/a/x.csv")), p("x.csv"));
+        assert_eq!(yaml_text("../p/x.csv"), "../p/x.csv");
+        assert_eq!(yaml_text("my profile.csv"), "\"my profile.csv\"");
+    }
 }

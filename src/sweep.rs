@@ -9,7 +9,7 @@
 
 use std::fmt::Write as _;
 
-use baton_scenario::Document;
+use baton_scenario::{Document, Override};
 use rayon::prelude::*;
 use thiserror::Error;
 
@@ -52,6 +52,14 @@ pub enum SweepError {
     /// `--jobs 0`.
     #[error("--jobs must be at least 1")]
     NoJobs,
+    /// A shard that holds no point of the grid.
+    #[error("--shard {shard} holds no point: the grid has {points} point(s), so use at most {points} shard(s)")]
+    EmptyShard {
+        /// The shard, `I/N`.
+        shard: String,
+        /// Points in the grid.
+        points: usize,
+    },
     /// The thread pool could not start.
     #[error("cannot start the worker threads: {0}")]
     Threads(String),
@@ -294,19 +302,24 @@ impl RankBy {
     }
 }
 
-/// The overrides of point `i`: the base ones, then its grid values.
-pub fn overrides(base: &[String], grid: &Grid, i: usize) -> Vec<String> {
-    let mut sets = base.to_vec();
-    sets.extend(grid.axes.iter().zip(grid.values(i)).map(|(a, v)| format!("{}={v}", a.key)));
+/// The overrides of point `i`: the base ones (`--set`), then its grid
+/// values (each named as the `--vary` it came from).
+pub fn overrides(base: &[String], grid: &Grid, i: usize) -> Vec<Override> {
+    let mut sets: Vec<Override> = base.iter().map(|a| Override::set(a)).collect();
+    sets.extend(grid.axes.iter().zip(grid.values(i)).map(|(a, v)| {
+        let assignment = format!("{}={v}", a.key);
+        Override::typed(assignment.clone(), format!("--vary {assignment}"))
+    }));
     sets
 }
 
 /// Refuses keys the scenario does not have (rather than skipping every point).
 pub fn check_keys(doc: &Document, base: &[String], grid: &Grid) -> Result<(), SweepError> {
     for a in &grid.axes {
-        let mut sets = base.to_vec();
-        sets.push(format!("{}={}", a.key, a.values[0]));
-        match doc.scenario(&sets) {
+        let mut sets: Vec<Override> = base.iter().map(|b| Override::set(b)).collect();
+        let assignment = format!("{}={}", a.key, a.values[0]);
+        sets.push(Override::typed(assignment.clone(), format!("--vary {assignment}")));
+        match doc.scenario_with(&sets) {
             Err(baton_scenario::ScenarioError::Override { message, .. }) => {
                 return Err(SweepError::Vary { arg: a.key.clone(), message });
             }
@@ -320,8 +333,16 @@ pub fn check_keys(doc: &Document, base: &[String], grid: &Grid) -> Result<(), Sw
 }
 
 /// Simulates one point.
-pub fn evaluate(doc: &Document, base: &[String], grid: &Grid, i: usize) -> Point {
-    let result = doc.scenario(&overrides(base, grid, i)).map_err(|e| e.to_string()).and_then(|s| {
+pub fn evaluate(doc: &Document, base: &[String], grid: &Grid, i: usize, max_memory: u64) -> Point {
+    let result = doc.scenario_with(&overrides(base, grid, i)).map_err(|e| e.to_string()).and_then(|s| {
+        let estimate = crate::memory_estimate_bytes(&s, crate::Making::default());
+        if estimate > max_memory {
+            return Err(format!(
+                "needs about {} of memory, more than --max-memory {} allows",
+                baton_report::format_bytes(estimate),
+                baton_report::format_bytes(max_memory)
+            ));
+        }
         crate::simulate(&s).map_err(|e| e.to_string()).map(|o| {
             let r = o.report;
             Summary {
@@ -338,11 +359,18 @@ pub fn evaluate(doc: &Document, base: &[String], grid: &Grid, i: usize) -> Point
 
 /// Simulates the given points in parallel (in the current rayon pool),
 /// calling `tick` after each; returns them in the order given.
-pub fn run(doc: &Document, base: &[String], grid: &Grid, indices: &[usize], tick: &(dyn Fn() + Sync)) -> Vec<Point> {
+pub fn run(
+    doc: &Document,
+    base: &[String],
+    grid: &Grid,
+    indices: &[usize],
+    max_memory: u64,
+    tick: &(dyn Fn() + Sync),
+) -> Vec<Point> {
     indices
         .par_iter()
         .map(|&i| {
-            let p = evaluate(doc, base, grid, i);
+            let p = evaluate(doc, base, grid, i, max_memory);
             tick();
             p
         })
@@ -376,12 +404,69 @@ pub fn rank(points: &mut [Point], by: RankBy) {
     });
 }
 
-/// The numeric fields of the CSV and JSON, after the varied keys.
-pub const FIELDS: [&str; 7] =
-    ["step_time_ms", "bubble_fraction", "samples_per_s", "peak_memory_bytes", "fits", "skipped", "point"];
+/// The fields of the CSV and JSON, after the varied keys: the results, the
+/// point's index in the grid, and what identifies the sweep it belongs to
+/// (its grid, the grid's size, and the shard `I/N` that ran it).
+pub const FIELDS: [&str; 10] = [
+    "step_time_ms",
+    "bubble_fraction",
+    "samples_per_s",
+    "peak_memory_bytes",
+    "fits",
+    "skipped",
+    "point",
+    "grid",
+    "grid_points",
+    "shard",
+];
+
+/// What identifies the sweep a set of points belongs to: a fingerprint of the
+/// scenario, its `--set` overrides and its `--vary` lists; the grid's size;
+/// and the shard `(I, N)` that ran them (`(1, 1)` for a whole sweep).
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct GridTag {
+    /// 16 hex digits of SHA-256 over the scenario text, overrides and grid.
+    pub id: String,
+    /// Points in the whole grid.
+    pub points: usize,
+    /// `(I, N)`.
+    pub shard: (usize, usize),
+}
+
+impl GridTag {
+    /// The tag of a sweep of `scenario_text` with `sets` over `grid`.
+    pub fn new(scenario_text: &[u8], sets: &[String], grid: &Grid, shard: (usize, usize)) -> Self {
+        use sha2::{Digest, Sha256};
+        let mut h = Sha256::new();
+        h.update(scenario_text);
+        for s in sets {
+            h.update(b"\0set\0");
+            h.update(s.as_bytes());
+        }
+        for a in &grid.axes {
+            h.update(b"\0vary\0");
+            h.update(a.key.as_bytes());
+            for v in &a.values {
+                h.update(b"\0");
+                h.update(v.as_bytes());
+            }
+        }
+        let id = h.finalize().iter().take(8).map(|b| format!("{b:02x}")).collect();
+        GridTag { id, points: grid.len(), shard }
+    }
+
+    fn shard_text(&self) -> String {
+        format!("{}/{}", self.shard.0, self.shard.1)
+    }
+}
 
 /// Writes points as CSV: a column per varied key, then [`FIELDS`].
-pub fn write_csv<W: std::io::Write>(keys: &[String], points: &[Point], out: W) -> Result<(), csv::Error> {
+pub fn write_csv<W: std::io::Write>(
+    keys: &[String],
+    points: &[Point],
+    tag: &GridTag,
+    out: W,
+) -> Result<(), csv::Error> {
     let mut w = csv::Writer::from_writer(out);
     w.write_record(keys.iter().map(String::as_str).chain(FIELDS))?;
     for p in points {
@@ -401,6 +486,7 @@ pub fn write_csv<W: std::io::Write>(keys: &[String], points: &[Point], out: W) -
             }
         }
         rec.push(p.index.to_string());
+        rec.extend([tag.id.clone(), tag.points.to_string(), tag.shard_text()]);
         w.write_record(&rec)?;
     }
     w.flush()?;
@@ -409,7 +495,7 @@ pub fn write_csv<W: std::io::Write>(keys: &[String], points: &[Point], out: W) -
 
 /// The points as a JSON array of objects with the CSV's names (values that
 /// read as numbers are numbers).
-pub fn to_json(keys: &[String], points: &[Point]) -> String {
+pub fn to_json(keys: &[String], points: &[Point], tag: &GridTag) -> String {
     use serde_json::{json, Map, Value};
     let as_value = |v: &str| {
         v.parse::<i64>()
@@ -445,6 +531,9 @@ pub fn to_json(keys: &[String], points: &[Point]) -> String {
                 }
             }
             m.insert("point".into(), json!(p.index));
+            m.insert("grid".into(), json!(tag.id));
+            m.insert("grid_points".into(), json!(tag.points));
+            m.insert("shard".into(), json!(tag.shard_text()));
             Value::Object(m)
         })
         .collect();
@@ -453,8 +542,9 @@ pub fn to_json(keys: &[String], points: &[Point]) -> String {
     s
 }
 
-/// Reads CSVs written by [`write_csv`] (shards of one sweep) back into points.
-pub fn read_csv(text: &str, file: &str) -> Result<(Vec<String>, Vec<Point>), SweepError> {
+/// Reads a CSV written by [`write_csv`] (one shard of a sweep) back into
+/// its keys, points and tag; refuses rows whose tags disagree.
+pub fn read_csv(text: &str, file: &str) -> Result<(Vec<String>, Vec<Point>, GridTag), SweepError> {
     let bad = |message: String| SweepError::Merge { file: file.to_string(), message };
     let mut r = csv::Reader::from_reader(text.as_bytes());
     let header: Vec<String> = r.headers().map_err(|e| bad(e.to_string()))?.iter().map(String::from).collect();
@@ -464,6 +554,7 @@ pub fn read_csv(text: &str, file: &str) -> Result<(Vec<String>, Vec<Point>), Swe
         return Err(bad(format!("not a sweep CSV: the last columns must be {}", FIELDS.join(","))));
     }
     let mut points = Vec::new();
+    let mut tag: Option<GridTag> = None;
     for rec in r.records() {
         let rec = rec.map_err(|e| bad(e.to_string()))?;
         let line = rec.position().map_or(0, |p| p.line());
@@ -471,6 +562,17 @@ pub fn read_csv(text: &str, file: &str) -> Result<(Vec<String>, Vec<Point>), Swe
         let num =
             |i: usize| f(i).parse::<f64>().map_err(|_| bad(format!("line {line}: {} is not a number", FIELDS[i])));
         let index: usize = f(6).parse().map_err(|_| bad(format!("line {line}: point is not a whole number")))?;
+        let grid_points: usize =
+            f(8).parse().map_err(|_| bad(format!("line {line}: grid_points is not a whole number")))?;
+        let shard = parse_shard(f(9)).map_err(|_| bad(format!("line {line}: shard `{}` is not I/N", f(9))))?;
+        let row_tag = GridTag { id: f(7).to_string(), points: grid_points, shard };
+        match &tag {
+            None => tag = Some(row_tag),
+            Some(t) if *t != row_tag => {
+                return Err(bad(format!("line {line}: belongs to another sweep or shard than the lines above it")))
+            }
+            _ => {}
+        }
         let result = if f(5).is_empty() {
             Ok(Summary {
                 step_time_ms: num(0)?,
@@ -490,39 +592,65 @@ pub fn read_csv(text: &str, file: &str) -> Result<(Vec<String>, Vec<Point>), Swe
             result,
         });
     }
-    Ok((header[..n_keys].to_vec(), points))
+    let tag = tag.ok_or_else(|| bad("holds no point".into()))?;
+    Ok((header[..n_keys].to_vec(), points, tag))
 }
 
-/// Combines shard CSVs into one ranked list; refuses mismatched keys and
-/// points that appear twice.
-pub fn merge(parts: &[(String, String)], by: RankBy) -> Result<(Vec<String>, Vec<Point>), SweepError> {
-    let mut keys: Option<Vec<String>> = None;
+/// Combines the shard CSVs of one sweep into one ranked list. Refuses parts
+/// of another sweep (another scenario, overrides or grid), a shard given
+/// twice, a missing shard, and a part that lacks points of its shard.
+pub fn merge(parts: &[(String, String)], by: RankBy) -> Result<(Vec<String>, Vec<Point>, GridTag), SweepError> {
+    let mut first: Option<(Vec<String>, GridTag, String)> = None;
     let mut all = Vec::new();
-    let mut seen = std::collections::HashSet::new();
+    let mut shards: std::collections::BTreeMap<usize, String> = Default::default();
     for (file, text) in parts {
-        let (k, points) = read_csv(text, file)?;
-        match &keys {
-            Some(existing) if *existing != k => {
-                return Err(SweepError::Merge {
-                    file: file.clone(),
-                    message: format!("varies {} but the first part varies {}", k.join(", "), existing.join(", ")),
-                })
+        let bad = |message: String| SweepError::Merge { file: file.clone(), message };
+        let (k, points, tag) = read_csv(text, file)?;
+        match &first {
+            None => first = Some((k.clone(), tag.clone(), file.clone())),
+            Some((keys, t, f0)) => {
+                if *keys != k {
+                    return Err(bad(format!("varies {} but {f0} varies {}", k.join(", "), keys.join(", "))));
+                }
+                if t.id != tag.id || t.points != tag.points {
+                    return Err(bad(format!(
+                        "is a part of another sweep than {f0} (grid {} of {} points, not grid {} of {})",
+                        tag.id, tag.points, t.id, t.points
+                    )));
+                }
+                if t.shard.1 != tag.shard.1 {
+                    return Err(bad(format!("is shard {} but {f0} is one of {} shards", tag.shard_text(), t.shard.1)));
+                }
             }
-            None => keys = Some(k),
-            _ => {}
         }
-        for p in points {
-            if !seen.insert(p.index) {
-                return Err(SweepError::Merge {
-                    file: file.clone(),
-                    message: format!("point {} appears in two parts", p.index),
-                });
-            }
-            all.push(p);
+        if let Some(other) = shards.insert(tag.shard.0, file.clone()) {
+            return Err(bad(format!(
+                "is shard {}, which {other} already is: a shard appears in two parts",
+                tag.shard_text()
+            )));
         }
+        let mut got: Vec<usize> = points.iter().map(|p| p.index).collect();
+        got.sort_unstable();
+        if got != shard_indices(tag.points, tag.shard.0, tag.shard.1) {
+            return Err(bad(format!("does not hold exactly the points of shard {}", tag.shard_text())));
+        }
+        all.extend(points);
+    }
+    let Some((keys, tag, _)) = first else { return Err(SweepError::NoVary) };
+    let missing: Vec<String> =
+        (1..=tag.shard.1).filter(|i| !shards.contains_key(i)).map(|i| format!("{i}/{}", tag.shard.1)).collect();
+    if !missing.is_empty() {
+        return Err(SweepError::Merge {
+            file: parts.iter().map(|(f, _)| f.as_str()).collect::<Vec<_>>().join(", "),
+            message: format!(
+                "shard {} is missing (the parts must be all {} shards of one sweep)",
+                missing.join(", "),
+                tag.shard.1
+            ),
+        });
     }
     rank(&mut all, by);
-    Ok((keys.unwrap_or_default(), all))
+    Ok((keys, all, GridTag { shard: (1, 1), ..tag }))
 }
 
 /// Shell-quotes a `--set` argument when it needs it.
@@ -548,6 +676,10 @@ pub struct Request<'a> {
     pub jobs: Option<usize>,
     /// How points are ranked.
     pub by: RankBy,
+    /// The scenario file's bytes, for the grid's fingerprint.
+    pub scenario_text: &'a [u8],
+    /// A point whose estimated memory is over this is skipped.
+    pub max_memory: u64,
 }
 
 /// The ranked points of a sweep and what it took.
@@ -558,6 +690,8 @@ pub struct Finished {
     pub covered: usize,
     /// Wall-clock time the points took.
     pub elapsed: std::time::Duration,
+    /// What identifies the sweep and the shard.
+    pub tag: GridTag,
 }
 
 /// Checks the request, simulates its points in parallel (a progress bar on
@@ -576,6 +710,11 @@ pub fn execute(r: &Request<'_>) -> Result<Finished, SweepError> {
         Some((i, n)) => shard_indices(r.grid.len(), i, n),
         None => (0..r.grid.len()).collect(),
     };
+    if indices.is_empty() {
+        let (i, n) = r.shard.unwrap_or((1, 1));
+        return Err(SweepError::EmptyShard { shard: format!("{i}/{n}"), points: r.grid.len() });
+    }
+    let tag = GridTag::new(r.scenario_text, r.sets, r.grid, r.shard.unwrap_or((1, 1)));
     let bar =
         indicatif::ProgressBar::with_draw_target(Some(indices.len() as u64), indicatif::ProgressDrawTarget::hidden());
     bar.set_style(
@@ -596,10 +735,10 @@ pub fn execute(r: &Request<'_>) -> Result<Finished, SweepError> {
         .num_threads(r.jobs.unwrap_or(0))
         .build()
         .map_err(|e| SweepError::Threads(e.to_string()))?;
-    let mut points = pool.install(|| run(r.doc, r.sets, r.grid, &indices, &tick));
+    let mut points = pool.install(|| run(r.doc, r.sets, r.grid, &indices, r.max_memory, &tick));
     bar.finish_and_clear();
     rank(&mut points, r.by);
-    Ok(Finished { points, covered: indices.len(), elapsed: started.elapsed() })
+    Ok(Finished { points, covered: indices.len(), elapsed: started.elapsed(), tag })
 }
 
 /// The ranked table (at most `limit` rows) with the best point marked, and,
@@ -802,10 +941,12 @@ mod tests {
         rank(&mut pts, RankBy::StepTime);
         assert_eq!(pts.iter().map(|p| p.index).collect::<Vec<_>>(), vec![2, 0, 1]);
         let mut out = Vec::new();
-        write_csv(&keys, &pts, &mut out).unwrap();
+        let tag = GridTag { id: "0123456789abcdef".into(), points: 3, shard: (1, 1) };
+        write_csv(&keys, &pts, &tag, &mut out).unwrap();
         let text = String::from_utf8(out).unwrap();
-        let (k2, back) = read_csv(&text, "x.csv").unwrap();
-        assert_eq!((k2, back.clone()), (keys.clone(), pts.clone()));
+        assert!(text.lines().nth(1).unwrap().ends_with(",0123456789abcdef,3,1/1"), "{text}");
+        let (k2, back, tag2) = read_csv(&text, "x.csv").unwrap();
+        assert_eq!((k2, back.clone(), tag2), (keys.clone(), pts.clone(), tag.clone()));
         rank(&mut pts, RankBy::Throughput);
         assert_eq!(pts[0].index, 2);
         // A point over memory capacity ranks after every point that fits.
@@ -814,6 +955,8 @@ mod tests {
         }
         rank(&mut pts, RankBy::Throughput);
         assert_eq!(pts.iter().map(|p| p.index).collect::<Vec<_>>(), vec![0, 2, 1]);
-        assert!(to_json(&keys, &pts).contains("\"skipped\": \"bad \\\"value\\\"\""));
+        let json = to_json(&keys, &pts, &tag);
+        assert!(json.contains("\"skipped\": \"bad \\\"value\\\"\""));
+        assert!(json.contains("\"grid\": \"0123456789abcdef\"") && json.contains("\"shard\": \"1/1\""));
     }
 }

@@ -99,11 +99,12 @@ fn sweep_points_equal_single_runs() {
     ])
     .unwrap();
     let base = vec!["seed=5".to_string()];
-    let points = sweep::run(&doc, &base, &grid, &(0..grid.len()).collect::<Vec<_>>(), &|| {});
+    let points =
+        sweep::run(&doc, &base, &grid, &(0..grid.len()).collect::<Vec<_>>(), baton::DEFAULT_MAX_MEMORY_BYTES, &|| {});
     assert_eq!(points.len(), 8);
     for p in &points {
         let sets = sweep::overrides(&base, &grid, p.index);
-        let single = baton::simulate(&baton::scenario::load(Path::new(DEMO), &sets).unwrap()).unwrap().report;
+        let single = baton::simulate(&baton::scenario::load_with(Path::new(DEMO), &sets).unwrap()).unwrap().report;
         let s = p.result.as_ref().unwrap();
         assert_eq!(s.step_time_ms, single.step_time_ms);
         assert_eq!(s.bubble_fraction, single.bubble_fraction);

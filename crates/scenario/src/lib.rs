@@ -247,11 +247,11 @@ pub enum ScenarioError {
         /// What is wrong, in the user's terms.
         message: String,
     },
-    /// A `--set` argument is malformed.
-    #[error("--set {arg}: {message}")]
+    /// An override is malformed.
+    #[error("{typed}: {message}")]
     Override {
-        /// The argument.
-        arg: String,
+        /// The option as the user typed it, e.g. `--set pipeline.stages=8`.
+        typed: String,
         /// What is wrong.
         message: String,
     },
@@ -272,7 +272,7 @@ pub enum ScenarioError {
 fn invalid_text(file: &str, key: &str, origin: &Origin, message: &str) -> String {
     match origin {
         Origin::File { line, column } => format!("{file}:{line}:{column}: {key}: {message}"),
-        Origin::Set(arg) => format!("{key} (from --set {arg}): {message}"),
+        Origin::Set(typed) => format!("{key} (from {typed}): {message}"),
         Origin::Default => format!("{file}: {key}: {message}"),
     }
 }
@@ -295,9 +295,22 @@ pub const MAX_DEVICES: i128 = 65_536;
 /// link, so the link count grows with the square of this.
 pub const MAX_STAGES: u32 = 512;
 
-/// Reads, overrides and validates a scenario file.
+/// Longest single duration a scenario may give or derive (one op, one
+/// latency): 10^6 s, about 11.6 days.
+pub const MAX_DURATION_NS: u64 = 1_000_000_000_000_000;
+
+/// Longest step the simulation's clock is sure to hold: 2^60 ns, about 36
+/// years, well inside its 64-bit nanoseconds.
+pub const MAX_STEP_NS: u128 = 1 << 60;
+
+/// Reads, overrides (`--set KEY=VALUE`) and validates a scenario file.
 pub fn load(path: &Path, overrides: &[String]) -> Result<Scenario, ScenarioError> {
     Document::load(path)?.scenario(overrides)
+}
+
+/// [`load`] with overrides that name the options they came from.
+pub fn load_with(path: &Path, overrides: &[Override]) -> Result<Scenario, ScenarioError> {
+    Document::load(path)?.scenario_with(overrides)
 }
 
 /// A scenario file read and parsed once, from which any number of variants
@@ -316,10 +329,16 @@ impl Document {
     /// Reads and parses a scenario file.
     pub fn load(path: &Path) -> Result<Self, ScenarioError> {
         let file = path.display().to_string();
-        let text = std::fs::read_to_string(path)
-            .map_err(|e| ScenarioError::Read { file: file.clone(), message: e.to_string() })?;
+        let bytes =
+            std::fs::read(path).map_err(|e| ScenarioError::Read { file: file.clone(), message: e.to_string() })?;
+        let text = node::utf8_text(&bytes).map_err(|(line, byte)| ScenarioError::Syntax {
+            file: file.clone(),
+            line,
+            column: byte as u32,
+            message: format!("byte {byte} of line {line} is not UTF-8 text; save the file as UTF-8"),
+        })?;
         let default_title = path.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
-        Self::from_text(&text, &file, &default_title, path.parent().unwrap_or(Path::new("")))
+        Self::from_text(text, &file, &default_title, path.parent().unwrap_or(Path::new("")))
     }
 
     /// Parses scenario text; relative paths resolve against `base_dir`.
@@ -338,16 +357,47 @@ impl Document {
         &self.file
     }
 
-    /// The scenario with `overrides` (`KEY=VALUE`) applied, validated.
+    /// The scenario with `overrides` (`KEY=VALUE`, given with `--set`)
+    /// applied, validated.
     pub fn scenario(&self, overrides: &[String]) -> Result<Scenario, ScenarioError> {
+        let typed: Vec<Override> = overrides.iter().map(|a| Override::set(a)).collect();
+        self.scenario_with(&typed)
+    }
+
+    /// The scenario with `overrides` applied, validated; messages name each
+    /// override as the user typed it.
+    pub fn scenario_with(&self, overrides: &[Override]) -> Result<Scenario, ScenarioError> {
         if overrides.is_empty() {
             return from_tree(&self.tree, &self.file, &self.default_title, &self.base_dir, Some(&self.profiles));
         }
         let mut tree = self.tree.clone();
-        for arg in overrides {
-            node::apply_override(&mut tree, arg)?;
+        for o in overrides {
+            node::apply_override_as(&mut tree, &o.assignment, &o.typed)?;
         }
         from_tree(&tree, &self.file, &self.default_title, &self.base_dir, Some(&self.profiles))
+    }
+}
+
+/// A `KEY=VALUE` override and the command-line option it came from, which
+/// messages name (`--set pipeline.stages=8`, `--vary pipeline.stages=8`,
+/// `--stages 8`).
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Override {
+    /// `KEY=VALUE`.
+    pub assignment: String,
+    /// The option as the user typed it.
+    pub typed: String,
+}
+
+impl Override {
+    /// An override given as `--set KEY=VALUE`.
+    pub fn set(assignment: &str) -> Self {
+        Override { assignment: assignment.to_string(), typed: format!("--set {assignment}") }
+    }
+
+    /// An override the user typed as `typed`.
+    pub fn typed(assignment: impl Into<String>, typed: impl Into<String>) -> Self {
+        Override { assignment: assignment.into(), typed: typed.into() }
     }
 }
 
@@ -455,14 +505,13 @@ impl<'a> Field<'a> {
     fn int(&self, min: i128, max: i128) -> Result<i128, ScenarioError> {
         let v = match &self.node.value {
             Value::Int(i) => *i,
-            Value::Float(f) => return Err(self.err(format!("expected a whole number, found {f}"))),
-            other => return Err(self.err(format!("expected a whole number, found {}", other.kind()))),
+            _ => return Err(self.err(format!("expected a whole number, found {}", self.node.shown()))),
         };
         if v < min {
-            return Err(self.err(format!("must be at least {min}, found {v}")));
+            return Err(self.err(format!("must be at least {min}, found {}", self.node.shown())));
         }
         if v > max {
-            return Err(self.err(format!("must be at most {max}, found {v}")));
+            return Err(self.err(format!("must be at most {max}, found {}", self.node.shown())));
         }
         Ok(v)
     }
@@ -472,7 +521,7 @@ impl<'a> Field<'a> {
         match &self.node.value {
             Value::Int(i) => Ok(*i as f64),
             Value::Float(f) if f.is_finite() => Ok(*f),
-            other => Err(self.err(format!("expected a number, found {}", other.kind()))),
+            _ => Err(self.err(format!("expected a number, found {}", self.node.shown()))),
         }
     }
 
@@ -480,8 +529,9 @@ impl<'a> Field<'a> {
     fn count(&self) -> Result<u64, ScenarioError> {
         match &self.node.value {
             Value::Int(i) if *i >= 0 && *i <= u64::MAX as i128 => Ok(*i as u64),
+            Value::Int(i) if *i < 0 => Err(self.err(format!("must not be negative, found {}", self.node.shown()))),
             Value::Str(s) => units::parse_count(s).map_err(|m| self.err(m)),
-            other => Err(self.err(format!("expected a count such as 350M or 1.2B, found {}", other.kind()))),
+            _ => Err(self.err(format!("expected a count such as 350M or 1.2B, found {}", self.node.shown()))),
         }
     }
 
@@ -497,7 +547,7 @@ impl<'a> Field<'a> {
             }
         };
         if !(0.0..1.0).contains(&v) {
-            return Err(self.err(format!("must be at least 0 and below 1, found {v}")));
+            return Err(self.err(format!("must be at least 0 and below 1, found {}", self.node.shown())));
         }
         Ok(v)
     }
@@ -510,14 +560,22 @@ impl<'a> Field<'a> {
         match &self.node.value {
             Value::Str(s) => parse(s).map_err(|m| self.err(m)),
             Value::Int(_) | Value::Float(_) => {
-                Err(self.err(format!("a bare number needs a unit; accepted units: {accepted}")))
+                Err(self.err(format!("{} is a bare number; it needs a unit, one of: {accepted}", self.node.shown())))
             }
             other => Err(self.err(format!("expected a quantity with a unit ({accepted}), found {}", other.kind()))),
         }
     }
 
     fn duration_ns(&self) -> Result<u64, ScenarioError> {
-        self.quantity(units::parse_duration_ns, units::DURATION_UNITS)
+        let v = self.quantity(units::parse_duration_ns, units::DURATION_UNITS)?;
+        if v > MAX_DURATION_NS {
+            return Err(self.err(format!(
+                "{} is too large: a duration may be at most {} s",
+                self.node.shown(),
+                MAX_DURATION_NS / 1_000_000_000
+            )));
+        }
+        Ok(v)
     }
 
     fn bytes(&self) -> Result<u64, ScenarioError> {
@@ -584,7 +642,49 @@ fn from_tree(
         None => (0..pipeline.stages).collect(),
         Some((path, node)) => read_placement(Field { cx: &cx, path: &path, node }, &cluster, pipeline.stages)?,
     };
-    Ok(Scenario { title, seed, source, layers, cluster, pipeline, training, placement })
+    let scenario = Scenario { title, seed, source, layers, cluster, pipeline, training, placement };
+    if let Some(bound) = step_bound_ns(&scenario).filter(|&b| b > MAX_STEP_NS) {
+        let origin = top
+            .get("pipeline")
+            .and_then(|(_, p)| match &p.value {
+                Value::Map(e) => e.iter().find(|(k, _, _)| k == "micro_batches").map(|(_, _, n)| n.origin.clone()),
+                _ => None,
+            })
+            .unwrap_or(Origin::Default);
+        return Err(cx.err(
+            "pipeline.micro_batches",
+            &origin,
+            format!(
+                "the step would last up to {} years of simulated time, more than the simulation's clock holds \
+                 ({} years); use fewer micro-batches, shorter times or larger bandwidths",
+                bound / 31_557_600_000_000_000,
+                MAX_STEP_NS / 31_557_600_000_000_000
+            ),
+        ));
+    }
+    Ok(scenario)
+}
+
+/// An upper bound on the step's length: every op of every micro-batch run one
+/// after another, plus two transfers per boundary and micro-batch, each the
+/// largest activation over the slowest link with the longest route's latency.
+/// `None` when the scenario has no layers.
+fn step_bound_ns(s: &Scenario) -> Option<u128> {
+    let m = s.pipeline.micro_batches as u128;
+    let recompute = s.training.recompute == Recompute::Full;
+    let work: u128 =
+        s.layers.iter().map(|l| l.forward_ns as u128 * if recompute { 2 } else { 1 } + l.backward_ns as u128).sum();
+    let (latency, bandwidth) = match s.cluster.fabric {
+        Fabric::Flat { link } => (link.latency_ns as u128, link.bytes_per_s),
+        Fabric::TwoLevel { device_link, node_link, .. } => (
+            2 * (device_link.latency_ns as u128 + node_link.latency_ns as u128),
+            device_link.bytes_per_s.min(node_link.bytes_per_s),
+        ),
+    };
+    let largest = s.layers.iter().map(|l| l.activation_bytes).max()? as u128;
+    let transfer = latency + (largest * 1_000_000_000).div_ceil(bandwidth.max(1) as u128);
+    let boundaries = s.pipeline.split.len().saturating_sub(1) as u128;
+    Some(m * (work + 2 * boundaries * transfer))
 }
 
 /// `packed` puts stage s on device s; `spread` deals stages out over the
@@ -611,11 +711,7 @@ fn read_placement(a: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u3
                 let path = format!("{}.{i}", a.path);
                 let at = Field { cx: a.cx, path: &path, node: item };
                 let d = at.int(0, cluster.devices as i128 - 1).map_err(|_| {
-                    at.err(format!(
-                        "must name a device from 0 to {}, found {}",
-                        cluster.devices - 1,
-                        describe(&item.value)
-                    ))
+                    at.err(format!("must name a device from 0 to {}, found {}", cluster.devices - 1, item.shown()))
                 })? as u32;
                 if let Some(j) = out.iter().position(|&x| x == d) {
                     return Err(at.err(format!("device {d} is already given to stage {j}")));
@@ -624,16 +720,7 @@ fn read_placement(a: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u3
             }
             Ok(out)
         }
-        other => Err(a.err(format!("expected packed, spread or a list of device ids, found {}", describe(other)))),
-    }
-}
-
-fn describe(v: &Value) -> String {
-    match v {
-        Value::Str(s) => format!("`{s}`"),
-        Value::Int(i) => i.to_string(),
-        Value::Float(f) => f.to_string(),
-        other => other.kind().to_string(),
+        _ => Err(a.err(format!("expected packed, spread or a list of device ids, found {}", a.node.shown()))),
     }
 }
 
@@ -745,9 +832,15 @@ fn read_model(
             let layers = match cached {
                 Some(layers) => layers,
                 None => {
-                    let text = std::fs::read_to_string(&path)
-                        .map_err(|e| a.err(format!("cannot read {}: {e}", path.display())))?;
-                    let layers = profile::read(&text, &path.display().to_string())?;
+                    let bytes =
+                        std::fs::read(&path).map_err(|e| a.err(format!("cannot read {}: {e}", path.display())))?;
+                    let text = node::utf8_text(&bytes).map_err(|(line, byte)| ScenarioError::Profile {
+                        file: path.display().to_string(),
+                        line: line as u64,
+                        column: format!("byte {byte}"),
+                        message: "is not UTF-8 text; save the profile as UTF-8".into(),
+                    })?;
+                    let layers = profile::read(text, &path.display().to_string())?;
                     if let Some(mut m) = model.cx.profiles.and_then(|c| c.lock().ok()) {
                         m.insert(path.clone(), layers.clone());
                     }
@@ -777,7 +870,18 @@ fn read_model(
                 peak_flop_per_s: cluster.device.peak_flop_per_s.ok_or_else(|| need("peak"))? as f64,
                 efficiency: cluster.device.efficiency.ok_or_else(|| need("efficiency"))?,
             };
-            Ok((ModelSource::Transformer(shape), shape.layer_table(micro_batch_size as u64, speed)))
+            let table = shape.layer_table(micro_batch_size as u64, speed);
+            if table.iter().any(|l| l.forward_ns > MAX_DURATION_NS || l.backward_ns > MAX_DURATION_NS) {
+                return Err(model.cx.err(
+                    "cluster.device.peak",
+                    &Origin::Default,
+                    format!(
+                        "derives layer times longer than {} s from model.transformer; check peak and efficiency",
+                        MAX_DURATION_NS / 1_000_000_000
+                    ),
+                ));
+            }
+            Ok((ModelSource::Transformer(shape), table))
         }),
     }
 }
@@ -827,7 +931,7 @@ fn read_pipeline(p: Field<'_>, layers: &[LayerCost], cluster: &Cluster) -> Resul
     let blocking_sends = m
         .opt("blocking_sends", |a| match &a.node.value {
             Value::Bool(b) => Ok(*b),
-            other => Err(a.err(format!("expected true or false, found {}", describe(other)))),
+            _ => Err(a.err(format!("expected true or false, found {}", a.node.shown()))),
         })?
         .unwrap_or(false);
     let stages = m.req("stages", |a| {
@@ -998,7 +1102,7 @@ pipeline:
             (&["pipeline.chunks=2", "pipeline.split=even"], "pipeline.chunks", "interleaved"),
             (&["cluster.link.bandwidth=0GB/s"], "cluster.link.bandwidth", "more than zero"),
             (&["cluster.link.latency=5"], "cluster.link.latency", "needs a unit"),
-            (&["cluster.link.latency=-5us"], "cluster.link.latency", "number"),
+            (&["cluster.link.latency=-5us"], "cluster.link.latency", "must not be negative"),
             (&["model.layers.0.forward=0ms"], "model.layers.0.forward", "more than zero"),
             (&["model.layers.0.speed=fast"], "model.layers.0.speed", "unknown key"),
             (&["pipeline.micro_batches=2.5"], "pipeline.micro_batches", "whole number"),

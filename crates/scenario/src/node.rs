@@ -20,7 +20,8 @@ pub enum Origin {
         /// Column, 1-based.
         column: u32,
     },
-    /// A `--set KEY=VALUE` argument.
+    /// A command-line option, as typed (`--set KEY=VALUE`, `--vary
+    /// KEY=VALUE`, `--stages 8`).
     Set(String),
     /// Not written anywhere (a default).
     Default,
@@ -30,7 +31,7 @@ impl fmt::Display for Origin {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
             Origin::File { line, column } => write!(f, "line {line}, column {column}"),
-            Origin::Set(arg) => write!(f, "--set {arg}"),
+            Origin::Set(typed) => f.write_str(typed),
             Origin::Default => f.write_str("default"),
         }
     }
@@ -62,6 +63,23 @@ pub struct Node {
     pub value: Value,
     /// Where it was written.
     pub origin: Origin,
+    /// A number's text as written (`1e30`, not the number it parses to),
+    /// for messages that echo it.
+    pub written: Option<String>,
+}
+
+impl Node {
+    /// How to show the value in a message: a number as written, text in
+    /// backquotes, anything else by its kind.
+    pub fn shown(&self) -> String {
+        match (&self.value, &self.written) {
+            (Value::Int(_) | Value::Float(_), Some(w)) => w.clone(),
+            (Value::Int(i), None) => i.to_string(),
+            (Value::Float(f), None) => f.to_string(),
+            (Value::Str(s), _) => format!("`{s}`"),
+            (other, _) => other.kind().to_string(),
+        }
+    }
 }
 
 impl Value {
@@ -157,20 +175,37 @@ fn origin_of(loc: serde_saphyr::Location, set: Option<&str>) -> Origin {
     }
 }
 
-fn convert(raw: Spanned<Raw>, set: Option<&str>) -> Node {
+/// The plain scalar written at `loc` in `source`: from its first character
+/// to the end of the token (a comma, bracket, brace, comment or line end).
+fn written_at(source: &str, loc: serde_saphyr::Location) -> Option<String> {
+    let line = source.lines().nth((loc.line() as usize).checked_sub(1)?)?;
+    let rest = line.get((loc.column() as usize).checked_sub(1)?..)?;
+    let end = rest.find([',', ']', '}', '#']).unwrap_or(rest.len());
+    let token = rest[..end].trim();
+    (!token.is_empty()).then(|| token.to_string())
+}
+
+fn convert(raw: Spanned<Raw>, set: Option<&str>, source: &str) -> Node {
     let origin = origin_of(raw.referenced, set);
+    let written = match raw.value {
+        Raw::Int(_) | Raw::Float(_) => written_at(source, raw.referenced),
+        _ => None,
+    };
     let value = match raw.value {
         Raw::Map(entries) => Value::Map(
-            entries.into_iter().map(|(k, v)| (k.value, origin_of(k.referenced, set), convert(v, set))).collect(),
+            entries
+                .into_iter()
+                .map(|(k, v)| (k.value, origin_of(k.referenced, set), convert(v, set, source)))
+                .collect(),
         ),
-        Raw::Seq(items) => Value::Seq(items.into_iter().map(|x| convert(x, set)).collect()),
+        Raw::Seq(items) => Value::Seq(items.into_iter().map(|x| convert(x, set, source)).collect()),
         Raw::Str(s) => Value::Str(s),
         Raw::Int(i) => Value::Int(i),
         Raw::Float(f) => Value::Float(f),
         Raw::Bool(b) => Value::Bool(b),
         Raw::Null => Value::Null,
     };
-    Node { value, origin }
+    Node { value, origin, written }
 }
 
 /// Largest scenario text accepted (bytes): keeps parsing bounded on any input.
@@ -193,7 +228,32 @@ fn parse_raw(text: &str) -> Result<Spanned<Raw>, SyntaxProblem> {
             Some((head, rest)) if head.starts_with("line ") => rest.to_string(),
             _ => first.to_string(),
         };
-        (loc, msg)
+        (loc, plain_message(&msg))
+    })
+}
+
+/// The parser's message in the user's terms: no option names or type dumps.
+fn plain_message(msg: &str) -> String {
+    if let Some(rest) = msg.strip_prefix("duplicate mapping key: ") {
+        let key = rest.split(',').next().unwrap_or(rest).trim();
+        return format!("the key `{key}` appears twice in one mapping; give each key once");
+    }
+    if msg.starts_with("budget breached") {
+        return "the document expands to too many values (more than 250,000, through anchors `&name` \
+                and aliases `*name` used inside each other); write the values out or nest fewer aliases"
+            .to_string();
+    }
+    msg.to_string()
+}
+
+/// Checks that `bytes` are UTF-8 text; otherwise names the line and the byte
+/// (1-based, counted in that line) where they stop being.
+pub fn utf8_text(bytes: &[u8]) -> Result<&str, (u32, usize)> {
+    std::str::from_utf8(bytes).map_err(|e| {
+        let good = &bytes[..e.valid_up_to()];
+        let line = good.iter().filter(|&&b| b == b'\n').count() as u32 + 1;
+        let start = good.iter().rposition(|&b| b == b'\n').map_or(0, |i| i + 1);
+        (line, good.len() - start + 1)
     })
 }
 
@@ -207,17 +267,24 @@ pub fn parse_document(text: &str, file: &str) -> Result<Node, ScenarioError> {
             message: "the file is empty".into(),
         });
     }
-    parse_raw(text).map(|r| convert(r, None)).map_err(|(loc, message)| {
+    parse_raw(text).map(|r| convert(r, None, text)).map_err(|(loc, message)| {
         let (line, column) = loc.unwrap_or((1, 1));
         ScenarioError::Syntax { file: file.into(), line, column, message }
     })
 }
 
-/// Applies one `KEY=VALUE` override: the value is read as YAML (so `16`,
-/// `1f1b`, `2ms` and `[2, 6]` all work); the dotted key walks mappings by name
-/// and lists by index; a missing last key is added.
+/// Applies one `KEY=VALUE` override given as `--set KEY=VALUE`.
 pub fn apply_override(root: &mut Node, arg: &str) -> Result<(), ScenarioError> {
-    let bad = |message: String| ScenarioError::Override { arg: arg.to_string(), message };
+    apply_override_as(root, arg, &format!("--set {arg}"))
+}
+
+/// Applies one `KEY=VALUE` override that the user typed as `typed` (e.g.
+/// `--vary pipeline.micro_batches=8` or `--stages 8`), which messages name:
+/// the value is read as YAML (so `16`, `1f1b`, `2ms` and `[2, 6]` all work);
+/// the dotted key walks mappings by name and lists by index; a missing last
+/// key is added.
+pub fn apply_override_as(root: &mut Node, arg: &str, typed: &str) -> Result<(), ScenarioError> {
+    let bad = |message: String| ScenarioError::Override { typed: typed.to_string(), message };
     let (key, raw_value) =
         arg.split_once('=').ok_or_else(|| bad("expected KEY=VALUE, e.g. pipeline.micro_batches=16".into()))?;
     let key = key.trim();
@@ -225,18 +292,18 @@ pub fn apply_override(root: &mut Node, arg: &str) -> Result<(), ScenarioError> {
         return Err(bad(format!("`{key}` is not a dotted key path such as pipeline.micro_batches")));
     }
     let value = if raw_value.trim().is_empty() {
-        Node { value: Value::Null, origin: Origin::Set(arg.to_string()) }
+        Node { value: Value::Null, origin: Origin::Set(typed.to_string()), written: None }
     } else {
         parse_raw(raw_value)
-            .map(|r| convert(r, Some(arg)))
+            .map(|r| convert(r, Some(typed), raw_value))
             .map_err(|(_, m)| bad(format!("value is not valid YAML: {m}")))?
     };
     let parts: Vec<&str> = key.split('.').collect();
-    set_path(root, &parts, 0, value, arg)
+    set_path(root, &parts, 0, value, typed)
 }
 
-fn set_path(cur: &mut Node, parts: &[&str], i: usize, value: Node, arg: &str) -> Result<(), ScenarioError> {
-    let bad = |message: String| ScenarioError::Override { arg: arg.to_string(), message };
+fn set_path(cur: &mut Node, parts: &[&str], i: usize, value: Node, typed: &str) -> Result<(), ScenarioError> {
+    let bad = |message: String| ScenarioError::Override { typed: typed.to_string(), message };
     let part = parts[i];
     let last = i + 1 == parts.len();
     let walked = parts[..=i].join(".");
@@ -248,8 +315,8 @@ fn set_path(cur: &mut Node, parts: &[&str], i: usize, value: Node, arg: &str) ->
             let pos = match entries.iter().position(|(k, _, _)| k == part) {
                 Some(pos) => pos,
                 None => {
-                    let fresh = Node { value: Value::Null, origin: Origin::Set(arg.into()) };
-                    entries.push((part.to_string(), Origin::Set(arg.into()), fresh));
+                    let fresh = Node { value: Value::Null, origin: Origin::Set(typed.into()), written: None };
+                    entries.push((part.to_string(), Origin::Set(typed.into()), fresh));
                     entries.len() - 1
                 }
             };
@@ -272,7 +339,7 @@ fn set_path(cur: &mut Node, parts: &[&str], i: usize, value: Node, arg: &str) ->
         *child = value;
         Ok(())
     } else {
-        set_path(child, parts, i + 1, value, arg)
+        set_path(child, parts, i + 1, value, typed)
     }
 }
 
@@ -322,7 +389,7 @@ mod tests {
         let mut doc = parse_document("p:\n  m: 8\nl:\n  - {f: 1ms}\n", "t.yaml").unwrap();
         apply_override(&mut doc, "p.m=16").unwrap();
         assert_eq!(get(get(&doc, "p"), "m").value, Value::Int(16));
-        assert_eq!(get(get(&doc, "p"), "m").origin, Origin::Set("p.m=16".into()));
+        assert_eq!(get(get(&doc, "p"), "m").origin, Origin::Set("--set p.m=16".into()));
         apply_override(&mut doc, "p.split=[2, 6]").unwrap();
         assert!(matches!(get(get(&doc, "p"), "split").value, Value::Seq(_)));
         apply_override(&mut doc, "l.0.f=2ms").unwrap();

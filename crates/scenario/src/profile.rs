@@ -49,9 +49,7 @@ pub fn read(text: &str, file: &str) -> Result<Vec<LayerCost>, ScenarioError> {
         let cell = |c: usize| index[c].and_then(|i| record.get(i)).filter(|s| !s.is_empty());
         let name = cell(0).map(str::to_string).unwrap_or_else(|| format!("layer{}", layers.len()));
         let ms = |c: usize| -> Result<Option<u64>, ScenarioError> {
-            cell(c)
-                .map(|v| units::parse_duration_ns(&format!("{v}ms")).map_err(|m| err(line, COLUMNS[c], m)))
-                .transpose()
+            cell(c).map(|v| units::parse_duration_in(v, "ms").map_err(|m| err(line, COLUMNS[c], m))).transpose()
         };
         let whole = |c: usize| -> Result<Option<u64>, ScenarioError> {
             cell(c)
@@ -62,6 +60,12 @@ pub fn read(text: &str, file: &str) -> Result<Vec<LayerCost>, ScenarioError> {
         };
         let forward_ns = ms(1)?.ok_or_else(|| err(line, "forward_ms", "is empty".into()))?;
         let backward_ns = ms(2)?.unwrap_or(forward_ns.saturating_mul(2));
+        for (c, v) in [(1, forward_ns), (2, backward_ns)] {
+            if v > crate::MAX_DURATION_NS {
+                let most = crate::MAX_DURATION_NS / 1_000_000;
+                return Err(err(line, COLUMNS[c], format!("is too large: a duration may be at most {most} ms")));
+            }
+        }
         let activation_bytes = whole(3)?.ok_or_else(|| err(line, "activation_bytes", "is empty".into()))?;
         let stash_bytes = whole(4)?.unwrap_or(activation_bytes);
         let count = |c: usize| -> Result<u64, ScenarioError> {
@@ -133,6 +137,10 @@ mod tests {
     fn bad_rows_name_line_and_column() {
         let e = read("name,forward_ms,activation_bytes\na,1,10\nb,fast,10\n", "p.csv").unwrap_err();
         assert_eq!(e.to_string().split(": ").take(2).collect::<Vec<_>>(), vec!["p.csv:3", "column forward_ms"]);
+        let e = read("name,forward_ms,activation_bytes\na,NaN,3\n", "p.csv").unwrap_err();
+        assert_eq!(e.to_string(), "p.csv:2: column forward_ms: `NaN` is not a number");
+        let e = read("name,forward_ms,activation_bytes\na,2ms,3\n", "p.csv").unwrap_err();
+        assert!(e.to_string().contains("`2ms` is not a plain number of ms"), "{e}");
         let e = read("name,forward_ms,activation_bytes\na,1,-3\n", "p.csv").unwrap_err();
         assert!(e.to_string().starts_with("p.csv:2: column activation_bytes"), "{e}");
         let e = read("name,forward_ms,activation_bytes,colour\n", "p.csv").unwrap_err();

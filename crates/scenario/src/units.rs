@@ -68,10 +68,26 @@ const COUNT: &[(&str, Scale)] =
 /// Splits `"1.25 ms"` into the exact decimal `125 / 10^2` and the unit text.
 fn split_number(text: &str) -> Result<(u128, u32, &str), String> {
     let t = text.trim();
+    if t.starts_with('-') {
+        return Err(format!("`{text}` must not be negative"));
+    }
+    let lower = t.to_ascii_lowercase();
+    if ["nan", "inf", "+inf", "infinity", ".nan", ".inf"].iter().any(|w| lower.starts_with(w)) {
+        return Err(format!("`{text}` is not a number"));
+    }
     let end = t.find(|c: char| !(c.is_ascii_digit() || c == '.')).unwrap_or(t.len());
     let (num, unit) = t.split_at(end);
     if num.is_empty() || num == "." {
         return Err(format!("`{text}` does not start with a number"));
+    }
+    let after = unit.trim_start();
+    let exponent = after
+        .strip_prefix(['e', 'E'])
+        .is_some_and(|r| r.starts_with(|c: char| c.is_ascii_digit() || c == '-' || c == '+'));
+    if exponent {
+        return Err(format!(
+            "`{text}` is written with an exponent; write the number out in full, e.g. 0.001ms for 1e-3ms"
+        ));
     }
     let (int, frac) = num.split_once('.').unwrap_or((num, ""));
     if frac.contains('.') {
@@ -118,6 +134,18 @@ pub fn parse_duration_ns(text: &str) -> Result<u64, String> {
 /// Parses a size into bytes.
 pub fn parse_bytes(text: &str) -> Result<u64, String> {
     parse(text, SIZE, "a size", SIZE_UNITS, "bytes")
+}
+
+/// Parses a bare decimal number as a quantity in `unit` (a unit of the
+/// duration table, e.g. `ms` for a profile's `forward_ms` column); messages
+/// echo `text` as written.
+pub fn parse_duration_in(text: &str, unit: &str) -> Result<u64, String> {
+    let (_, _, rest) = split_number(text)?;
+    if !rest.is_empty() {
+        return Err(format!("`{text}` is not a plain number of {unit}"));
+    }
+    parse_duration_ns(&format!("{}{unit}", text.trim()))
+        .map_err(|m| m.replace(&format!("{}{unit}", text.trim()), text.trim()))
 }
 
 /// Parses a bandwidth into bytes per second.
@@ -173,7 +201,11 @@ mod tests {
         let e = parse_bytes("3 parsecs").unwrap_err();
         assert!(e.contains("unknown unit `parsecs`") && e.contains("MiB"), "{e}");
         assert!(parse_duration_ns("0.5ns").unwrap_err().contains("whole number"));
-        assert!(parse_duration_ns("-1ms").unwrap_err().contains("does not start with a number"));
+        assert_eq!(parse_duration_ns("-1ms").unwrap_err(), "`-1ms` must not be negative");
+        assert!(parse_duration_ns("1e-3ms").unwrap_err().contains("written with an exponent"));
+        assert!(parse_duration_ns("2E6ns").unwrap_err().contains("written with an exponent"));
+        assert_eq!(parse_duration_ns("NaN").unwrap_err(), "`NaN` is not a number");
+        assert_eq!(parse_bytes("inf MB").unwrap_err(), "`inf MB` is not a number");
         assert!(parse_duration_ns("1.2.3ms").is_err());
         assert!(parse_bytes("99999999999TiB").unwrap_err().contains("too large"));
         assert!(parse_bytes("1Mib").is_err(), "units are case-sensitive");
