@@ -86,7 +86,7 @@ pub enum CommandError {
     #[error("{0}")]
     OverCapacity(String),
     /// Every point of a sweep was skipped (exit 2); carries the table of reasons.
-    #[error("every point was skipped, so nothing is written:\n{0}")]
+    #[error("every point of the sweep was skipped, so nothing is written:\n{0}")]
     AllSkipped(String),
 }
 
@@ -299,7 +299,7 @@ pub fn sweep(r: &SweepRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comman
     text.push_str(&sw::table(&keys, points, by, r.top, Some(&scenario_path), r.sets));
     if shard.is_none() && points.iter().all(|p| p.result.is_err()) {
         // Nothing to write: say why every point was skipped.
-        return Err(CommandError::AllSkipped(text));
+        return Err(CommandError::AllSkipped(sw::skip_reasons(&keys, points, 10)));
     }
     outputs.write_with("--csv", |w| sw::write_csv(&keys, points, tag, w).map_err(std::io::Error::other))?;
     if outputs.wants("--svg") {

@@ -653,6 +653,21 @@ pub fn merge(parts: &[(String, String)], by: RankBy) -> Result<(Vec<String>, Vec
     Ok((keys, all, GridTag { shard: (1, 1), ..tag }))
 }
 
+/// One line per skipped point (at most `limit`, then a count of the rest):
+/// its values and why it was skipped.
+pub fn skip_reasons(keys: &[String], points: &[Point], limit: usize) -> String {
+    let skipped: Vec<&Point> = points.iter().filter(|p| p.result.is_err()).collect();
+    let mut s = String::new();
+    for p in skipped.iter().take(limit) {
+        let desc: Vec<String> = keys.iter().zip(&p.values).map(|(k, v)| format!("{k}={v}")).collect();
+        let _ = writeln!(s, "  {}: {}", desc.join(" "), p.result.as_ref().err().map_or("", |e| e.as_str()));
+    }
+    if skipped.len() > limit {
+        let _ = writeln!(s, "  ... {} more", skipped.len() - limit);
+    }
+    s
+}
+
 /// Shell-quotes a `--set` argument when it needs it.
 fn quote(arg: &str) -> String {
     if arg.chars().all(|c| c.is_ascii_alphanumeric() || "._-=/:+".contains(c)) {
@@ -797,13 +812,7 @@ pub fn table(
     }
     if !skipped.is_empty() {
         let _ = writeln!(s, "skipped:");
-        for p in skipped.iter().take(5) {
-            let desc: Vec<String> = keys.iter().zip(&p.values).map(|(k, v)| format!("{k}={v}")).collect();
-            let _ = writeln!(s, "  {}: {}", desc.join(" "), p.result.as_ref().err().map_or("", |e| e.as_str()));
-        }
-        if skipped.len() > 5 {
-            let _ = writeln!(s, "  ... {} more", skipped.len() - 5);
-        }
+        s.push_str(&skip_reasons(keys, points, 5));
     }
     if let Some(best) = ok.first() {
         let mut sets: Vec<String> = base.to_vec();

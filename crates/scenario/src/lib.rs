@@ -505,6 +505,12 @@ impl<'a> Field<'a> {
     fn int(&self, min: i128, max: i128) -> Result<i128, ScenarioError> {
         let v = match &self.node.value {
             Value::Int(i) => *i,
+            // A whole number too large for the reader's integers (YAML then
+            // reads it as a float): say it is out of range, not "not whole".
+            Value::Float(f) if f.is_finite() && f.fract() == 0.0 && (*f > max as f64 || *f < min as f64) => {
+                let bound = if *f > 0.0 { format!("at most {max}") } else { format!("at least {min}") };
+                return Err(self.err(format!("must be {bound}, found {}", self.node.shown())));
+            }
             _ => return Err(self.err(format!("expected a whole number, found {}", self.node.shown()))),
         };
         if v < min {

@@ -86,7 +86,7 @@ fn split_number(text: &str) -> Result<(u128, u32, &str), String> {
         .is_some_and(|r| r.starts_with(|c: char| c.is_ascii_digit() || c == '-' || c == '+'));
     if exponent {
         return Err(format!(
-            "`{text}` is written with an exponent; write the number out in full, e.g. 0.001ms for 1e-3ms"
+            "`{text}` is written with an exponent; write the number out in full (0.001 rather than 1e-3)"
         ));
     }
     let (int, frac) = num.split_once('.').unwrap_or((num, ""));
