@@ -1,7 +1,9 @@
 //! Sweep speed: 1,000 points of an 8-stage, 64-micro-batch scenario on all
 //! cores, the scenario parsed once (each point only applies its overrides to
 //! the parsed tree). The points differ by the seed of a 5% compute jitter, so
-//! every one is a distinct simulation. Run with `cargo bench --bench sweep`.
+//! every one is a distinct simulation (`scenarios/sweep-p8-m64.yaml`, which
+//! also shows the same sweep as a whole `baton sweep` process). Run with
+//! `cargo bench --bench sweep`.
 
 use std::time::Duration;
 
@@ -9,9 +11,7 @@ use baton::scenario::Document;
 use baton::sweep::{self, Grid};
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 
-const SCENARIO: &str = "title: sweep bench\nmodel:\n  layers:\n    - { name: block, repeat: 16, forward: 1ms, backward: 2ms, activation: 16MiB }\n\
-cluster:\n  devices: 8\n  link: { latency: 5us, bandwidth: 64GB/s }\n  jitter: 0.05\n\
-pipeline:\n  stages: 8\n  split: even\n  micro_batches: 64\n  schedule: 1f1b\n";
+const SCENARIO: &str = include_str!("scenarios/sweep-p8-m64.yaml");
 
 fn bench(c: &mut Criterion) {
     let doc = Document::from_text(SCENARIO, "bench.yaml", "bench", std::path::Path::new("")).expect("valid scenario");

@@ -67,7 +67,8 @@ enum Command {
     Merge(MergeArgs),
     /// Simulate several scenarios (or one and a variant of it) and show them side by side.
     #[command(after_help = concat!("Examples:\n  \
-        baton compare scenarios/unbalanced-split.yaml balanced.yaml --svg both.svg\n  \
+        baton split scenarios/heavy-head.yaml --apply heavy-head-split.yaml\n  \
+        baton compare scenarios/heavy-head.yaml heavy-head-split.yaml --svg both.svg\n  \
         baton compare scenarios/interleaved.yaml --set pipeline.schedule=1f1b --set pipeline.chunks=1\n\n\
         With one scenario, --set makes the variant it is compared with; with several, --set applies to all.", outputs_note!()))]
     Compare(CompareArgs),
