@@ -98,10 +98,29 @@ pub fn layer_table(s: &Scenario) -> String {
     let source = match &s.source {
         baton_scenario::ModelSource::Layers => "model.layers".to_string(),
         baton_scenario::ModelSource::Profile(p) => format!("profile {}", p.display()),
-        baton_scenario::ModelSource::Transformer(t) => format!(
-            "transformer l={} h={} a={} s={} V={}, micro-batch size {}",
-            t.layers, t.hidden, t.heads, t.seq_len, t.vocab, s.pipeline.micro_batch_size
-        ),
+        baton_scenario::ModelSource::Transformer(t) => {
+            let mut shape =
+                format!("transformer l={} h={} a={} s={} V={}", t.layers, t.hidden, t.heads, t.seq_len, t.vocab);
+            if t.ffn_hidden != 4 * t.hidden {
+                shape.push_str(&format!(" ffn={}", t.ffn_hidden));
+            }
+            if t.gated_ffn {
+                shape.push_str(" gated");
+            }
+            if t.kv_heads != t.heads {
+                shape.push_str(&format!(" kv_heads={}", t.kv_heads));
+            }
+            if t.attention != baton_scenario::Attention::Standard {
+                shape.push_str(&format!(" attention={}", t.attention.name()));
+            }
+            if !t.tied_embeddings {
+                shape.push_str(" untied");
+            }
+            if t.bytes_per_value != 2 {
+                shape.push_str(&format!(" {} B/value", t.bytes_per_value));
+            }
+            format!("{shape}, micro-batch size {}", s.pipeline.micro_batch_size)
+        }
     };
     let mut out = format!("layers ({}, from {source})\n", s.layers.len());
     let _ = writeln!(

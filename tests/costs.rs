@@ -153,6 +153,86 @@ fn transformer_layers_follow_the_published_formulas() {
     assert!((r.samples_per_s - 16.0 / (r.step_time_ns as f64 / 1e9)).abs() < 1e-9);
 }
 
+/// One layer with every variant switched on: grouped-query attention,
+/// a gated FFN of another width, flash attention, an untied output layer
+/// and 4-byte activations, at 1e12 FLOP/s so that FLOPs / 1e3 = ns.
+const VARIANTS: &str =
+    "title: variants\nmodel:\n  transformer: { layers: 1, hidden: 1024, heads: 16, seq_len: 512, vocab: 1000,\n\
+    ffn_hidden: 2048, gated_ffn: true, kv_heads: 4, attention: flash, tied_embeddings: false, bytes_per_value: 4 }\n\
+    cluster:\n  devices: 1\n  link: { latency: 5us, bandwidth: 50GB/s }\n  device: { peak: 1TFLOP/s, efficiency: 1 }\n\
+    pipeline: { stages: 1, micro_batches: 1, schedule: 1f1b }\n";
+
+#[test]
+fn transformer_variants_combine_as_worked_by_hand() {
+    // h = 1024, a = 16, k = 4, s = 512, V = 1000, f = 2048, b = 1.
+    // Key/value width w = k h / a = 256 (Ainslie et al., "GQA", EMNLP 2023).
+    let s = parse(VARIANTS, "v.yaml", "v", &[]).unwrap();
+    let [embedding, layer, logits] = &s.layers[..] else { panic!("three layers: {:?}", s.layers) };
+    // Parameters: query and output 2 h^2 + 2 h = 2,099,200; key and value
+    // 2 h w + 2 w = 524,800; gated FFN 3 h f + 2 f + h = 6,291,456 + 5,120 =
+    // 6,296,576 (Shazeer 2020: three matrices); layer norms 4 h = 4,096.
+    // 2,099,200 + 524,800 + 6,296,576 + 4,096 = 8,924,672.
+    assert_eq!(layer.params, 8_924_672);
+    // Forward FLOPs: 4 b s h^2 = 2,147,483,648; 4 b s h w = 536,870,912;
+    // 6 b s h f = 6,442,450,944; 4 b s^2 h = 1,073,741,824; in all
+    // 10,200,547,328 -> 10,200,547.328 ns, rounded 10,200,547.
+    assert_eq!(layer.forward_ns, 10_200_547);
+    // Backward: twice that, 20,401,094,656, plus the scores recomputed
+    // (Dao et al., "FlashAttention", NeurIPS 2022), 2 b s^2 h = 536,870,912:
+    // 20,937,965,568 -> 20,937,965.568 ns, rounded 20,937,966.
+    assert_eq!(layer.backward_ns, 20_937_966);
+    // Stash in units of s b at 2 bytes a value: attention 7 h + 4 w =
+    // 8,192; FFN 3 h + 6 f = 15,360; layer norms 4 h = 4,096; no score term
+    // with flash: 27,648 x 512 = 14,155,776, x 4/2 bytes = 28,311,552.
+    assert_eq!(layer.stash_bytes, 28_311_552);
+    // Sent between stages: 4 s b h = 2,097,152 bytes.
+    assert_eq!((embedding.activation_bytes, layer.activation_bytes), (2_097_152, 2_097_152));
+    // Embedding (V + s) h = 1,512 x 1024 = 1,548,288; untied logits V h =
+    // 1,024,000 of their own, none shared.
+    assert_eq!((embedding.params, embedding.tied_params), (1_548_288, 0));
+    assert_eq!((logits.params, logits.tied_params), (1_024_000, 0));
+    // Logits: 2 b s h V = 1,048,576,000 FLOPs -> 1,048,576 ns forward,
+    // 2,097,152 ns backward; stash input + logits = 2,097,152 + 4 s b V
+    // (2,048,000) = 4,145,152.
+    assert_eq!((logits.forward_ns, logits.backward_ns), (1_048_576, 2_097_152));
+    assert_eq!(logits.stash_bytes, 4_145_152);
+    // The defaults are the original architecture: the same shape without
+    // the switches gives eq. 2's 12 h^2 + 13 h and eq. 1's stash.
+    let plain = VARIANTS.replace(
+        "ffn_hidden: 2048, gated_ffn: true, kv_heads: 4, attention: flash, tied_embeddings: false, bytes_per_value: 4",
+        "ffn_hidden: 4096",
+    );
+    let p = parse(&plain, "p.yaml", "p", &[]).unwrap();
+    assert_eq!(p.layers[1].params, 12 * 1024 * 1024 + 13 * 1024);
+    assert_eq!(p.layers[1].stash_bytes, 512 * 1024 * (34 + 5 * 16 * 512 / 1024));
+    assert_eq!((p.layers[2].params, p.layers[2].tied_params), (0, 1_024_000));
+}
+
+#[test]
+fn transformer_variant_keys_are_checked() {
+    let bad = |from: &str, to: &str| {
+        let text = VARIANTS.replace(from, to);
+        assert_ne!(text, VARIANTS, "{from}");
+        parse(&text, "v.yaml", "v", &[]).unwrap_err()
+    };
+    let e = bad("kv_heads: 4", "kv_heads: 5");
+    assert_eq!(e.key(), Some("model.transformer.kv_heads"));
+    assert!(e.to_string().contains("must divide model.transformer.heads (16)"), "{e}");
+    let e = bad("kv_heads: 4", "kv_heads: 32");
+    assert!(e.to_string().contains("at most 16"), "{e}");
+    let e = bad("attention: flash", "attention: sparse");
+    assert!(e.to_string().contains("expected standard or flash"), "{e}");
+    let e = bad("gated_ffn: true", "gated_ffn: yes please");
+    assert!(e.to_string().contains("expected true or false"), "{e}");
+    let e = bad("bytes_per_value: 4", "bytes_per_value: 0");
+    assert_eq!(e.key(), Some("model.transformer.bytes_per_value"));
+    // 4 x 1010 / 16 = 252.5.
+    let e = bad("hidden: 1024, heads: 16", "hidden: 1010, heads: 16");
+    assert!(e.to_string().contains("make hidden a multiple of heads"), "{e}");
+    let e = bad("ffn_hidden: 2048", "ffn_width: 2048");
+    assert!(e.to_string().contains("unknown key `ffn_width`"), "{e}");
+}
+
 #[test]
 fn transformer_needs_the_device_speed() {
     let t = TRANSFORMER.replace("peak: 200TFLOP/s, ", "");

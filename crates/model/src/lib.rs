@@ -22,6 +22,11 @@
 //! * model state: parameters x bytes per parameter, 16 for mixed-precision
 //!   Adam (Rajbhandari et al., "ZeRO", SC 2020, sec. 3.1).
 //!
+//! Those are the original architecture's ([`Transformer::new`]). Its
+//! variants (a feed-forward width other than `4 h`, a gated FFN, grouped-query
+//! attention, flash attention, an untied output layer, activations of other
+//! than 2 bytes) change the terms as derived in each method's documentation.
+//!
 //! It deliberately knows nothing about files, schedules or simulated time.
 #![warn(missing_docs)]
 
@@ -49,18 +54,60 @@ pub struct LayerCost {
 }
 
 /// A decoder-style transformer's shape.
+///
+/// [`Transformer::new`] gives the original architecture of the published
+/// formulas (feed-forward width `4 h`, plain two-matrix FFN, as many key and
+/// value heads as query heads, attention scores stored, tied output weights,
+/// 2-byte activations); the other fields describe today's variants.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct Transformer {
     /// `l`: transformer layers.
     pub layers: u64,
     /// `h`: hidden size.
     pub hidden: u64,
-    /// `a`: attention heads.
+    /// `a`: attention (query) heads.
     pub heads: u64,
     /// `s`: sequence length.
     pub seq_len: u64,
     /// `V`: vocabulary size.
     pub vocab: u64,
+    /// `f`: the feed-forward block's inner width (`4 h` in the original).
+    pub ffn_hidden: u64,
+    /// Whether the feed-forward block is gated (three `h x f` matrices, as
+    /// in the GLU variants; Shazeer, "GLU Variants Improve Transformer",
+    /// 2020) instead of two.
+    pub gated_ffn: bool,
+    /// `k`: key and value heads (grouped-query attention; Ainslie et al.,
+    /// "GQA", EMNLP 2023); `heads` in the original. Divides `heads`.
+    pub kv_heads: u64,
+    /// How attention is computed.
+    pub attention: Attention,
+    /// Whether the output layer shares the token embedding's matrix.
+    pub tied_embeddings: bool,
+    /// Bytes per activation value (2 in the published formulas).
+    pub bytes_per_value: u64,
+}
+
+/// How a transformer computes attention.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub enum Attention {
+    /// The `s x s` score matrices (and their softmax and dropout mask) are
+    /// stored for the backward pass.
+    #[default]
+    Standard,
+    /// The score matrices are not stored but recomputed, block by block, in
+    /// the backward pass (Dao et al., "FlashAttention", NeurIPS 2022).
+    Flash,
+}
+
+impl Attention {
+    /// The name used in scenario files.
+    pub fn name(self) -> &'static str {
+        match self {
+            Attention::Standard => "standard",
+            Attention::Flash => "flash",
+        }
+    }
 }
 
 /// An accelerator's arithmetic speed.
@@ -80,11 +127,64 @@ impl Speed {
 }
 
 impl Transformer {
-    /// Forward FLOPs of one transformer layer for `b` sequences:
-    /// `24 b s h^2 + 4 b s^2 h` (Narayanan et al. 2021, appendix).
+    /// The original architecture with these dimensions.
+    pub const fn new(layers: u64, hidden: u64, heads: u64, seq_len: u64, vocab: u64) -> Transformer {
+        Transformer {
+            layers,
+            hidden,
+            heads,
+            seq_len,
+            vocab,
+            ffn_hidden: 4 * hidden,
+            gated_ffn: false,
+            kv_heads: heads,
+            attention: Attention::Standard,
+            tied_embeddings: true,
+            bytes_per_value: 2,
+        }
+    }
+
+    /// Width of the key projection (and of the value projection):
+    /// `k h / a`, the key and value heads times the head size.
+    pub fn kv_width(&self) -> u64 {
+        self.kv_heads * self.hidden / self.heads
+    }
+
+    /// Projection matrices of the feed-forward block: 3 when gated, else 2.
+    fn ffn_matrices(&self) -> u64 {
+        if self.gated_ffn {
+            3
+        } else {
+            2
+        }
+    }
+
+    /// Forward FLOPs of one transformer layer for `b` sequences.
+    ///
+    /// The original is `24 b s h^2 + 4 b s^2 h` (Narayanan et al. 2021,
+    /// appendix). Term by term (2 FLOPs per multiply-add): the query and
+    /// output projections `2 x 2 b s h^2`, the key and value projections
+    /// `2 x 2 b s h w` with `w = k h / a`, the scores and the weighted sum of
+    /// the values `2 x 2 b s^2 h` (every query head still scores every
+    /// position), and the feed-forward block `2 b s h f` per matrix. So
+    /// `4 b s h^2 + 4 b s h w + 2 n b s h f + 4 b s^2 h` with `n` matrices;
+    /// with `w = h`, `f = 4 h`, `n = 2` this is the original.
     pub fn layer_forward_flops(&self, b: u64) -> f64 {
         let (s, h, b) = (self.seq_len as f64, self.hidden as f64, b as f64);
-        24.0 * b * s * h * h + 4.0 * b * s * s * h
+        let (w, f, n) = (self.kv_width() as f64, self.ffn_hidden as f64, self.ffn_matrices() as f64);
+        4.0 * b * s * h * h + 4.0 * b * s * h * w + 2.0 * n * b * s * h * f + 4.0 * b * s * s * h
+    }
+
+    /// Backward FLOPs of one transformer layer: twice the forward's, plus,
+    /// with flash attention, the scores computed again (`2 b s^2 h`: the
+    /// score matrices are recomputed from the queries and keys instead of
+    /// read back; Dao et al. 2022, sec. 3.1, "Recomputation").
+    pub fn layer_backward_flops(&self, b: u64) -> f64 {
+        let again = match self.attention {
+            Attention::Standard => 0.0,
+            Attention::Flash => 2.0 * b as f64 * (self.seq_len as f64).powi(2) * self.hidden as f64,
+        };
+        2.0 * self.layer_forward_flops(b) + again
     }
 
     /// Forward FLOPs of the logit layer: `2 b s h V`.
@@ -92,9 +192,18 @@ impl Transformer {
         2.0 * b as f64 * self.seq_len as f64 * self.hidden as f64 * self.vocab as f64
     }
 
-    /// Parameters of one transformer layer: `12 h^2 + 13 h`.
+    /// Parameters of one transformer layer.
+    ///
+    /// The original `12 h^2 + 13 h` is, with a bias on every projection:
+    /// query, key, value and output projections `4 h^2 + 4 h`, the
+    /// feed-forward block `2 x 4 h^2 + 4 h + h`, two layer norms `4 h`.
+    /// In general: query and output `2 h^2 + 2 h`, key and value
+    /// `2 h w + 2 w`, the feed-forward block `n h f` plus a bias of `f` per
+    /// input-side matrix (`n - 1` of them) and `h` for the output one, and
+    /// `4 h` of layer norms.
     pub fn layer_params(&self) -> u64 {
-        12 * self.hidden * self.hidden + 13 * self.hidden
+        let (h, w, f, n) = (self.hidden, self.kv_width(), self.ffn_hidden, self.ffn_matrices());
+        2 * h * h + 2 * h + 2 * h * w + 2 * w + n * h * f + (n - 1) * f + h + 4 * h
     }
 
     /// Parameters of the token and position embeddings: `(V + s) h`.
@@ -102,29 +211,65 @@ impl Transformer {
         (self.vocab + self.seq_len) * self.hidden
     }
 
-    /// Parameters the output layer shares with the token embedding, `V h`
-    /// (the position embedding is not shared).
+    /// Parameters the output layer shares with the token embedding: `V h`
+    /// when the embeddings are tied (the position embedding is not shared),
+    /// else 0.
     pub fn tied_params(&self) -> u64 {
-        self.vocab * self.hidden
+        if self.tied_embeddings {
+            self.vocab * self.hidden
+        } else {
+            0
+        }
+    }
+
+    /// The output layer's own parameters: 0 when tied, else `V h`.
+    pub fn logit_params(&self) -> u64 {
+        if self.tied_embeddings {
+            0
+        } else {
+            self.vocab * self.hidden
+        }
     }
 
     /// All parameters: eq. 2 of Narayanan et al. 2021,
-    /// `12 l h^2 (1 + 13/(12h) + (V+s)/(12 l h))`.
+    /// `12 l h^2 (1 + 13/(12h) + (V+s)/(12 l h))` for the original; an untied
+    /// output layer adds `V h`.
     pub fn total_params(&self) -> u64 {
-        self.layers * self.layer_params() + self.embedding_params()
+        self.layers * self.layer_params() + self.embedding_params() + self.logit_params()
     }
 
-    /// Bytes sent between stages per micro-batch of `b` sequences: `2 s b h`.
+    /// Bytes sent between stages per micro-batch of `b` sequences:
+    /// `s b h` values (`2 s b h` bytes at 2 bytes a value).
     pub fn boundary_bytes(&self, b: u64) -> u64 {
-        2 * self.seq_len * b * self.hidden
+        self.bytes_per_value * self.seq_len * b * self.hidden
     }
 
-    /// Bytes one transformer layer stashes for its backward pass:
-    /// `s b h (34 + 5 a s / h)` (Korthikanti et al., eq. 1), rounded down.
+    /// Bytes one transformer layer stashes for its backward pass, rounded
+    /// down.
+    ///
+    /// Korthikanti et al., eq. 1, `s b h (34 + 5 a s / h)` at 2 bytes a
+    /// value, is in units of `s b`: attention `11 h` (its input `2 h`, the
+    /// queries and keys `4 h`, the values `2 h`, the output projection's
+    /// input `2 h`, a dropout mask `h`) plus the scores `5 a s` (softmax
+    /// output `2 a s`, its dropout mask `a s`, the dropout output `2 a s`);
+    /// the MLP `19 h` (input `2 h`, `8 h` into the activation function,
+    /// `8 h` into the second matrix, a dropout mask `h`); layer norms `4 h`.
+    /// Here keys and values take `2 w` each instead of `2 h`, so attention
+    /// is `7 h + 4 w`; a plain FFN keeps `3 h + 4 f` (`2 f` into the
+    /// activation function and `2 f` into the second matrix); a gated one
+    /// `3 h + 6 f` (the gate's and the up projection's outputs and their
+    /// product); flash attention stores no score term. The whole is scaled
+    /// by `bytes_per_value / 2`.
     pub fn layer_stash_bytes(&self, b: u64) -> u64 {
-        let sbh = (self.seq_len * b * self.hidden) as u128;
-        // s b h (34 + 5 a s / h) = 34 s b h + 5 a s^2 b, exactly.
-        (34 * sbh + 5 * self.heads as u128 * (self.seq_len as u128).pow(2) * b as u128) as u64
+        let (s, b, h) = (self.seq_len as u128, b as u128, self.hidden as u128);
+        let (w, f) = (self.kv_width() as u128, self.ffn_hidden as u128);
+        let ffn = if self.gated_ffn { 6 * f } else { 4 * f };
+        let per_position = 7 * h + 4 * w + 3 * h + ffn + 4 * h;
+        let scores = match self.attention {
+            Attention::Standard => 5 * self.heads as u128 * s * s * b,
+            Attention::Flash => 0,
+        };
+        ((s * b * per_position + scores) * self.bytes_per_value as u128 / 2) as u64
     }
 
     /// The layer table: an embedding layer, `l` transformer layers and the
@@ -132,14 +277,17 @@ impl Transformer {
     ///
     /// The embedding lookup does no arithmetic (no FLOPs are counted for it, as
     /// in eq. 3 of Narayanan et al.) and stashes nothing but token ids, taken
-    /// as 0 bytes. The logit layer's parameters are the token embedding's
-    /// (counted once, as in eq. 2: its `params` is 0 and its `tied_params`
-    /// is `V h`, copied when it runs on another device), and it stashes its 16-bit input and logits,
-    /// `2 s b h + 2 s b V` bytes (common practice, no source).
+    /// as 0 bytes. With tied embeddings the logit layer's parameters are the
+    /// token embedding's (counted once, as in eq. 2: its `params` is 0 and its
+    /// `tied_params` is `V h`, copied when it runs on another device);
+    /// untied, it has `V h` of its own. It stashes its input and logits,
+    /// `s b h + s b V` values (common practice, no source).
     pub fn layer_table(&self, b: u64, speed: Speed) -> Vec<LayerCost> {
         let boundary = self.boundary_bytes(b);
         let f = self.layer_forward_flops(b);
+        let back = self.layer_backward_flops(b);
         let logit = self.logit_forward_flops(b);
+        let logits_bytes = self.bytes_per_value * self.seq_len * b * self.vocab;
         let mut out = Vec::with_capacity(self.layers as usize + 2);
         out.push(LayerCost {
             name: "embedding".into(),
@@ -154,7 +302,7 @@ impl Transformer {
             out.push(LayerCost {
                 name: format!("layer.{i}"),
                 forward_ns: speed.time_ns(f),
-                backward_ns: speed.time_ns(2.0 * f),
+                backward_ns: speed.time_ns(back),
                 activation_bytes: boundary,
                 stash_bytes: self.layer_stash_bytes(b),
                 params: self.layer_params(),
@@ -165,9 +313,9 @@ impl Transformer {
             name: "logits".into(),
             forward_ns: speed.time_ns(logit),
             backward_ns: speed.time_ns(2.0 * logit),
-            activation_bytes: 2 * self.seq_len * b * self.vocab,
-            stash_bytes: boundary + 2 * self.seq_len * b * self.vocab,
-            params: 0,
+            activation_bytes: logits_bytes,
+            stash_bytes: boundary + logits_bytes,
+            params: self.logit_params(),
             tied_params: self.tied_params(),
         });
         out
@@ -187,7 +335,7 @@ mod tests {
 
     /// The 145.6-billion-parameter configuration of table 1 in Narayanan et al.
     /// 2021: l = 80, h = 12288, a = 96, s = 2048, V = 51200.
-    const GPT_145B: Transformer = Transformer { layers: 80, hidden: 12288, heads: 96, seq_len: 2048, vocab: 51200 };
+    const GPT_145B: Transformer = Transformer::new(80, 12288, 96, 2048, 51200);
 
     #[test]
     fn parameters_match_table_1() {
@@ -199,7 +347,7 @@ mod tests {
         let eq2 = 12.0 * l * h * h * (1.0 + 13.0 / (12.0 * h) + (v + s) / (12.0 * l * h));
         assert!((p as f64 - eq2).abs() / eq2 < 1e-12);
         // Same table, l = 128, h = 25600, a = 160: 1008.0 billion.
-        let t = Transformer { layers: 128, hidden: 25600, heads: 160, seq_len: 2048, vocab: 51200 };
+        let t = Transformer::new(128, 25600, 160, 2048, 51200);
         assert_eq!((t.total_params() as f64 / 1e8).round() / 10.0, 1008.0);
     }
 
@@ -221,7 +369,7 @@ mod tests {
     #[test]
     fn flops_and_times() {
         // Narayanan et al. 2021, appendix: 24 b s h^2 + 4 b s^2 h per layer.
-        let t = Transformer { layers: 2, hidden: 1024, heads: 16, seq_len: 512, vocab: 1000 };
+        let t = Transformer::new(2, 1024, 16, 512, 1000);
         assert_eq!(t.layer_forward_flops(2), 24.0 * 2.0 * 512.0 * 1024.0 * 1024.0 + 4.0 * 2.0 * 512.0 * 512.0 * 1024.0);
         assert_eq!(t.logit_forward_flops(1), 2.0 * 512.0 * 1024.0 * 1000.0);
         // 1e12 FLOPs at 400 TFLOP/s x 0.5 = 5 ms.
@@ -253,5 +401,99 @@ mod tests {
         // 3 x 24 h^2 = 6 x (12 h^2), six times its weight count.
         let no_attention = t.layer_forward_flops(1) - 4.0 * 512.0 * 512.0 * 1024.0;
         assert_eq!(3.0 * no_attention / 512.0, 6.0 * (12 * 1024 * 1024) as f64);
+    }
+
+    /// A small shape for hand-worked cases: l = 1, h = 1024, a = 16,
+    /// s = 512, V = 1000, one sequence per micro-batch.
+    const SMALL: Transformer = Transformer::new(1, 1024, 16, 512, 1000);
+
+    #[test]
+    fn grouped_query_attention_shrinks_keys_and_values() {
+        // Ainslie et al., "GQA", EMNLP 2023: k key/value heads of size h / a,
+        // so the K and V projections are h x (k h / a). k = 4: w = 4 x 1024 / 16 = 256.
+        let t = Transformer { kv_heads: 4, ..SMALL };
+        assert_eq!(t.kv_width(), 256);
+        // Parameters: the original 12 h^2 + 13 h = 12,582,912 + 13,312 = 12,596,224;
+        // K and V go from 2 h^2 + 2 h = 2,099,200 to 2 h w + 2 w = 524,288 + 512
+        // = 524,800, 1,574,400 fewer: 11,021,824.
+        assert_eq!(SMALL.layer_params(), 12_596_224);
+        assert_eq!(t.layer_params(), 11_021_824);
+        // Forward FLOPs: the original 24 b s h^2 + 4 b s^2 h = 12,884,901,888 +
+        // 1,073,741,824 = 13,958,643,712; the K and V projections go from
+        // 4 b s h^2 = 2,147,483,648 to 4 b s h w = 536,870,912: 12,348,030,976.
+        assert_eq!(SMALL.layer_forward_flops(1), 13_958_643_712.0);
+        assert_eq!(t.layer_forward_flops(1), 12_348_030_976.0);
+        // Stash: Korthikanti et al. eq. 1, s b h (34 + 5 a s / h) = 524,288 x
+        // (34 + 40) = 38,797,312; K and V stored at 2 w instead of 2 h bytes per
+        // position each: 4 (h - w) s b = 4 x 768 x 512 = 1,572,864 less: 37,224,448.
+        assert_eq!(SMALL.layer_stash_bytes(1), 38_797_312);
+        assert_eq!(t.layer_stash_bytes(1), 37_224_448);
+    }
+
+    #[test]
+    fn gated_ffn_has_three_matrices() {
+        // Shazeer, "GLU Variants Improve Transformer", 2020: a gate, an up
+        // and a down projection, each h x f. f = 2048.
+        let t = Transformer { gated_ffn: true, ffn_hidden: 2048, ..SMALL };
+        // Parameters: attention 4 h^2 + 4 h = 4,194,304 + 4,096, layer norms
+        // 4 h = 4,096; FFN 3 h f = 6,291,456 plus biases 2 f + h = 5,120:
+        // 4,202,496 + 6,296,576 = 10,499,072.
+        assert_eq!(t.layer_params(), 10_499_072);
+        // Forward FLOPs: FFN 6 b s h f = 6 x 512 x 1024 x 2048 = 6,442,450,944;
+        // attention 8 b s h^2 + 4 b s^2 h = 4,294,967,296 + 1,073,741,824:
+        // 11,811,160,064.
+        assert_eq!(t.layer_forward_flops(1), 11_811_160_064.0);
+        // Stash: s b (14 h + 4 h + 6 f) + 5 a s^2 b = 512 x (14,336 + 4,096 +
+        // 12,288) + 5 x 16 x 262,144 = 15,728,640 + 20,971,520 = 36,700,160.
+        assert_eq!(t.layer_stash_bytes(1), 36_700_160);
+        // A plain FFN of another width, f = 3000: 2 h f + f + h = 6,144,000 +
+        // 4,024 = 6,148,024, plus 4,202,496: 10,350,520; FLOPs 4 b s h f =
+        // 6,291,456,000 + 5,368,709,120 = 11,660,165,120.
+        let wide = Transformer { ffn_hidden: 3000, ..SMALL };
+        assert_eq!(wide.layer_params(), 10_350_520);
+        assert_eq!(wide.layer_forward_flops(1), 11_660_165_120.0);
+    }
+
+    #[test]
+    fn flash_attention_stores_no_scores() {
+        // Dao et al., "FlashAttention", NeurIPS 2022: the s x s matrices are
+        // recomputed in the backward pass, not stored. The 5 a s / h term
+        // goes: 34 s b h = 34 x 524,288 = 17,825,792 bytes.
+        let t = Transformer { attention: Attention::Flash, ..SMALL };
+        assert_eq!(t.layer_stash_bytes(1), 17_825_792);
+        // Forward unchanged; backward 2 x 13,958,643,712 plus the scores again,
+        // 2 b s^2 h = 536,870,912: 28,454,158,336.
+        assert_eq!(t.layer_forward_flops(1), SMALL.layer_forward_flops(1));
+        assert_eq!(t.layer_backward_flops(1), 28_454_158_336.0);
+        assert_eq!(SMALL.layer_backward_flops(1), 27_917_287_424.0);
+    }
+
+    #[test]
+    fn untied_output_layer_has_its_own_weights() {
+        // V h = 1000 x 1024 = 1,024,000 parameters of its own, none shared.
+        let t = Transformer { tied_embeddings: false, ..SMALL };
+        let speed = Speed { peak_flop_per_s: 1e15, efficiency: 1.0 };
+        let table = t.layer_table(1, speed);
+        let logits = table.last().unwrap();
+        assert_eq!((logits.params, logits.tied_params), (1_024_000, 0));
+        // Total: 12,596,224 + (1000 + 512) x 1024 = 1,548,288, + 1,024,000.
+        assert_eq!(t.total_params(), 12_596_224 + 1_548_288 + 1_024_000);
+        let tied = SMALL.layer_table(1, speed);
+        assert_eq!((tied.last().unwrap().params, tied.last().unwrap().tied_params), (0, 1_024_000));
+    }
+
+    #[test]
+    fn bytes_per_value_scales_activations() {
+        // The published formulas count 2-byte values; at 4 bytes every
+        // activation doubles: stash 2 x 38,797,312 = 77,594,624, boundary
+        // 4 s b h = 4 x 512 x 1024 = 2,097,152, logits 4 s b V = 2,048,000.
+        let t = Transformer { bytes_per_value: 4, ..SMALL };
+        assert_eq!(t.layer_stash_bytes(1), 77_594_624);
+        assert_eq!(t.boundary_bytes(1), 2_097_152);
+        let table = t.layer_table(1, Speed { peak_flop_per_s: 1e15, efficiency: 1.0 });
+        assert_eq!(table.last().unwrap().activation_bytes, 2_048_000);
+        assert_eq!(table.last().unwrap().stash_bytes, 2_097_152 + 2_048_000);
+        // At 1 byte, half (rounded down): 19,398,656.
+        assert_eq!(Transformer { bytes_per_value: 1, ..SMALL }.layer_stash_bytes(1), 19_398_656);
     }
 }

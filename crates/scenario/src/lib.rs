@@ -32,7 +32,7 @@ pub use pieces::{Piece, PieceCosts};
 
 /// One layer of the model, after `repeat` is expanded.
 pub use baton_model::LayerCost;
-pub use baton_model::{Speed, Transformer};
+pub use baton_model::{Attention, Speed, Transformer};
 
 /// Where the layer table came from.
 #[derive(Clone, Debug, PartialEq)]
@@ -522,6 +522,14 @@ impl<'a> Field<'a> {
         Ok(v)
     }
 
+    /// `true` or `false`.
+    fn boolean(&self) -> Result<bool, ScenarioError> {
+        match &self.node.value {
+            Value::Bool(b) => Ok(*b),
+            _ => Err(self.err(format!("expected true or false, found {}", self.node.shown()))),
+        }
+    }
+
     /// Any number.
     fn number(&self) -> Result<f64, ScenarioError> {
         match &self.node.value {
@@ -856,15 +864,65 @@ fn read_model(
             Ok((ModelSource::Profile(path), layers))
         }),
         _ => m.req("transformer", |a| {
-            let t = a.map(&["layers", "hidden", "heads", "seq_len", "vocab"])?;
+            let t = a.map(&[
+                "layers",
+                "hidden",
+                "heads",
+                "seq_len",
+                "vocab",
+                "ffn_hidden",
+                "gated_ffn",
+                "kv_heads",
+                "attention",
+                "tied_embeddings",
+                "bytes_per_value",
+            ])?;
             let n = |k: &str, max: i128| t.req(k, |a| a.int(1, max).map(|v| v as u64));
-            let shape = Transformer {
-                layers: n("layers", MAX_LAYERS as i128 - 2)?,
-                hidden: n("hidden", 1 << 24)?,
-                heads: n("heads", 1 << 16)?,
-                seq_len: n("seq_len", 1 << 24)?,
-                vocab: n("vocab", 1 << 26)?,
-            };
+            let mut shape = Transformer::new(
+                n("layers", MAX_LAYERS as i128 - 2)?,
+                n("hidden", 1 << 24)?,
+                n("heads", 1 << 16)?,
+                n("seq_len", 1 << 24)?,
+                n("vocab", 1 << 26)?,
+            );
+            let (hidden, heads) = (shape.hidden, shape.heads);
+            if let Some(f) = t.opt("ffn_hidden", |a| a.int(1, 1 << 26).map(|v| v as u64))? {
+                shape.ffn_hidden = f;
+            }
+            if let Some(g) = t.opt("gated_ffn", |a| a.boolean())? {
+                shape.gated_ffn = g;
+            }
+            if let Some(k) = t.opt("kv_heads", |a| {
+                let k = a.int(1, heads as i128)? as u64;
+                if heads % k != 0 {
+                    return Err(a.err(format!(
+                        "must divide model.transformer.heads ({heads}) so that each key and value head \
+                         serves a whole group of query heads; found {k}"
+                    )));
+                }
+                if (k * hidden) % heads != 0 {
+                    return Err(a.err(format!(
+                        "gives key and value projections of kv_heads x hidden / heads = {k} x {hidden} / {heads}, \
+                         not a whole number; make hidden a multiple of heads"
+                    )));
+                }
+                Ok(k)
+            })? {
+                shape.kv_heads = k;
+            }
+            if let Some(at) = t.opt("attention", |a| match a.str()? {
+                "standard" => Ok(Attention::Standard),
+                "flash" => Ok(Attention::Flash),
+                other => Err(a.err(format!("unknown attention `{other}`; expected standard or flash"))),
+            })? {
+                shape.attention = at;
+            }
+            if let Some(tied) = t.opt("tied_embeddings", |a| a.boolean())? {
+                shape.tied_embeddings = tied;
+            }
+            if let Some(bytes) = t.opt("bytes_per_value", |a| a.int(1, 8).map(|v| v as u64))? {
+                shape.bytes_per_value = bytes;
+            }
             let need = |key: &str| {
                 model.cx.err(
                     &format!("cluster.device.{key}"),
@@ -934,12 +992,7 @@ fn read_layers(list: Field<'_>) -> Result<Vec<LayerCost>, ScenarioError> {
 fn read_pipeline(p: Field<'_>, layers: &[LayerCost], cluster: &Cluster) -> Result<Pipeline, ScenarioError> {
     let m = p.map(&PIPELINE_KEYS)?;
     let micro_batch_size = m.opt("micro_batch_size", |a| a.u32(1))?.unwrap_or(1);
-    let blocking_sends = m
-        .opt("blocking_sends", |a| match &a.node.value {
-            Value::Bool(b) => Ok(*b),
-            _ => Err(a.err(format!("expected true or false, found {}", a.node.shown()))),
-        })?
-        .unwrap_or(false);
+    let blocking_sends = m.opt("blocking_sends", |a| a.boolean())?.unwrap_or(false);
     let stages = m.req("stages", |a| {
         let v = a.u32(1)?;
         if v > MAX_STAGES {
