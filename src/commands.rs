@@ -362,6 +362,11 @@ pub fn compare(
     Ok(Done { text: comparison.table(), then: None })
 }
 
+/// The scenario format's JSON Schema, pretty-printed.
+pub fn schema() -> String {
+    serde_json::to_string_pretty(&baton_scenario::keys::schema()).unwrap_or_default()
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -72,6 +72,14 @@ enum Command {
         baton compare scenarios/interleaved.yaml --set pipeline.schedule=1f1b --set pipeline.chunks=1\n\n\
         With one scenario, --set makes the variant it is compared with; with several, --set applies to all.", outputs_note!()))]
     Compare(CompareArgs),
+    /// Print a JSON Schema (draft 2020-12) of the scenario format, for editors
+    /// that complete and check YAML files.
+    #[command(after_help = "Examples:\n  \
+        baton schema > scenario.schema.json\n  \
+        baton schema | jq '.properties.pipeline.properties | keys'\n\n\
+        Point an editor at it with a first line in the scenario file:\n  \
+        # yaml-language-server: $schema=scenario.schema.json")]
+    Schema,
 }
 
 #[derive(Args)]
@@ -292,6 +300,16 @@ fn main() -> ExitCode {
         }
         Command::Merge(a) => outputs(&[("--csv", "CSV", &a.csv), json(&a.json, "JSON")])
             .and_then(|mut o| finish(commands::merge(&a.parts, &a.rank_by, a.top, &mut o), o)),
+        Command::Schema => {
+            let mut out = std::io::stdout().lock();
+            return match writeln!(out, "{}", commands::schema()).and_then(|()| out.flush()) {
+                Ok(()) => ExitCode::SUCCESS,
+                Err(e) => {
+                    eprintln!("error: cannot write the schema: {e}");
+                    ExitCode::from(1)
+                }
+            };
+        }
         Command::Compare(a) => outputs(&[svg(&a.svg), json(&a.json, "JSON")]).and_then(|mut o| {
             finish(commands::compare(&a.scenarios, &a.sets, !a.no_comm_lanes, a.max_memory, &mut o), o)
         }),

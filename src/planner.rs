@@ -562,8 +562,12 @@ pub fn applied_text(
         }
     }
     let file = path.display().to_string();
-    let new_text =
+    let mut new_text =
         baton_scenario::edit::set_values(&text, &file, &edits).map_err(|e| PlanError::Apply(e.to_string()))?;
+    // So must an editor's schema named relative to the scenario.
+    if let Some(dest_dir) = dest_dir(dest) {
+        new_text = schema_line_moved(&new_text, path, &dest_dir);
+    }
     // The copy must read back as the same scenario with the new split.
     let check_dir = dest_dir(dest).unwrap_or_else(|| path.parent().unwrap_or(Path::new("")).to_path_buf());
     let check = baton_scenario::parse_in(&new_text, dest, &scenario.title, &check_dir, sets)
@@ -576,6 +580,29 @@ pub fn applied_text(
         )));
     }
     Ok(new_text)
+}
+
+/// The comment line that points an editor at a JSON Schema.
+const SCHEMA_COMMENT: &str = "# yaml-language-server: $schema=";
+
+/// `text` with a relative schema path in its editor comment rewritten to
+/// be relative to `dest_dir` instead of the scenario's directory; unchanged
+/// when there is none, it is a URL or absolute, or it names no file.
+fn schema_line_moved(text: &str, path: &Path, dest_dir: &Path) -> String {
+    let mut out = String::with_capacity(text.len());
+    for line in text.split_inclusive('\n') {
+        let body = line.trim_end_matches(['\n', '\r']);
+        let moved = body.strip_prefix(SCHEMA_COMMENT).and_then(|rel| {
+            if rel.contains("://") || Path::new(rel).is_absolute() {
+                return None;
+            }
+            let target = std::fs::canonicalize(path.parent().unwrap_or(Path::new("")).join(rel)).ok()?;
+            let from = std::fs::canonicalize(dest_dir).ok()?;
+            Some(format!("{SCHEMA_COMMENT}{}{}", relative_path(&from, &target).display(), &line[body.len()..]))
+        });
+        out.push_str(moved.as_deref().unwrap_or(line));
+    }
+    out
 }
 
 /// The directory a copy written to `dest` lives in (`None` for standard output).

@@ -50,7 +50,7 @@ fn a_time_too_large_for_the_clock_names_its_key_once() {
     // are added; the reader caps one duration at 1,000,000 s.
     let f = demo_with(dir.path(), "big.yaml", "forward: 1.1ms", "forward: 9000000000s");
     let out = baton(&["run", &f, "--svg", &dir.path().join("t.svg").display().to_string()]);
-    refused(&out, &["big.yaml:9:", "model.layers.1.forward", "`9000000000s`", "too large"], &["waits", "stuck"]);
+    refused(&out, &["big.yaml:10:", "model.layers.1.forward", "`9000000000s`", "too large"], &["waits", "stuck"]);
     assert_eq!(files_in(dir.path()), ["big.yaml"]);
 
     // Each time within the cap, but the whole step beyond the clock: a
@@ -67,12 +67,12 @@ fn a_time_too_large_for_the_clock_names_its_key_once() {
 fn negative_and_oversized_numbers_echo_what_was_typed() {
     let dir = tempfile::tempdir().unwrap();
     let f = demo_with(dir.path(), "neg.yaml", "forward: 1.1ms", "forward: -1ms");
-    refused(&baton(&["run", &f]), &["neg.yaml:9:", "`-1ms`", "must not be negative"], &["does not start"]);
+    refused(&baton(&["run", &f]), &["neg.yaml:10:", "`-1ms`", "must not be negative"], &["does not start"]);
 
     let f = demo_with(dir.path(), "e30.yaml", "micro_batches: 8", "micro_batches: 1e30");
     refused(
         &baton(&["run", &f]),
-        &["e30.yaml:17:", "pipeline.micro_batches", "found 1e30", "at most"],
+        &["e30.yaml:18:", "pipeline.micro_batches", "found 1e30", "at most"],
         &["1000000000000000019884624838656"],
     );
 
@@ -266,6 +266,14 @@ fn applying_a_split_elsewhere_keeps_the_profile_reachable() {
     let written = std::fs::read_to_string(&applied).unwrap();
     // From plans/next/ the profile is two directories up.
     assert!(written.contains("profile: ../../profiles/demo.csv"), "{written}");
+    // The editor's schema comment follows the copy too (it was
+    // ../docs/scenario.schema.json from scenarios/).
+    let out = baton(&["split", "scenarios/heavy-head.yaml", "--apply", elsewhere.join("hh.yaml").to_str().unwrap()]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let first = std::fs::read_to_string(elsewhere.join("hh.yaml")).unwrap().lines().next().unwrap().to_string();
+    let schema = first.strip_prefix("# yaml-language-server: $schema=").expect("the schema comment is kept");
+    let docs = std::fs::canonicalize(Path::new(env!("CARGO_MANIFEST_DIR")).join("docs/scenario.schema.json")).unwrap();
+    assert_eq!(std::fs::canonicalize(elsewhere.join(schema)).unwrap(), docs, "{first}");
     // Run from another working directory: the path is relative to the file.
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_baton"))
         .args(["run", applied.to_str().unwrap()])

@@ -205,7 +205,11 @@ fn dash_is_standard_output_for_every_output_option() {
     assert!(text(&out.stdout).starts_with("<svg") && text(&out.stderr).contains("step time"));
     let out = baton(&["split", "scenarios/heavy-head.yaml", "--apply", "-"]);
     assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
-    assert!(text(&out.stdout).starts_with("# An invented chat model"), "the rewritten scenario");
+    assert!(
+        text(&out.stdout)
+            .starts_with("# yaml-language-server: $schema=../docs/scenario.schema.json\n# An invented chat model"),
+        "the rewritten scenario"
+    );
     assert!(text(&out.stderr).contains("proposed split"));
 }
 

@@ -15,6 +15,7 @@
 #![warn(missing_docs)]
 
 pub mod edit;
+pub mod keys;
 pub mod node;
 pub mod pieces;
 pub mod profile;
@@ -26,6 +27,8 @@ use std::sync::Mutex;
 
 use baton_schedule::{check_shape, ScheduleError, ScheduleKind, Shape};
 use thiserror::Error;
+
+use keys::Key;
 
 pub use node::{Node, Origin, Value};
 pub use pieces::{Piece, PieceCosts};
@@ -424,6 +427,8 @@ struct Field<'a> {
     cx: &'a Reading<'a>,
     path: &'a str,
     node: &'a Node,
+    /// The key's definition, when it is a key of a section.
+    def: Option<&'static Key>,
 }
 
 struct Reading<'a> {
@@ -451,6 +456,8 @@ struct Section<'a> {
     path: &'a str,
     origin: &'a Origin,
     entries: &'a [(String, Origin, Node)],
+    /// The section's keys (see [`keys`]).
+    keys: &'static [Key],
 }
 
 fn join(path: &str, key: &str) -> String {
@@ -466,7 +473,8 @@ impl<'a> Field<'a> {
         self.cx.err(self.path, &self.node.origin, message)
     }
 
-    fn map(&self, allowed: &[&str]) -> Result<Section<'a>, ScenarioError> {
+    fn map(&self, keys: &'static [Key]) -> Result<Section<'a>, ScenarioError> {
+        let allowed = keys::names(keys);
         let Value::Map(entries) = &self.node.value else {
             return Err(self.err(format!(
                 "expected a mapping with keys {}, found {}",
@@ -481,7 +489,15 @@ impl<'a> Field<'a> {
                 format!("unknown key `{k}`; expected one of: {}", allowed.join(", ")),
             ));
         }
-        Ok(Section { cx: self.cx, path: self.path, origin: &self.node.origin, entries })
+        Ok(Section { cx: self.cx, path: self.path, origin: &self.node.origin, entries, keys })
+    }
+
+    /// A whole number within the bounds its key's definition gives.
+    fn whole(&self) -> Result<i128, ScenarioError> {
+        match self.def.map(|d| &d.ty) {
+            Some(keys::Type::Whole { min, max }) => self.int(*min as i128, *max as i128),
+            _ => self.int(0, i64::MAX as i128),
+        }
     }
 
     fn str(&self) -> Result<&'a str, ScenarioError> {
@@ -602,6 +618,13 @@ impl<'a> Field<'a> {
 }
 
 impl<'a> Section<'a> {
+    /// The definition of `key`, which the section must declare.
+    fn def(&self, key: &str) -> Option<&'static Key> {
+        let def = self.keys.iter().find(|k| k.name == key);
+        debug_assert!(def.is_some(), "{key} is read but not declared in its section's keys");
+        def
+    }
+
     fn get(&self, key: &str) -> Option<(String, &'a Node)> {
         self.entries
             .iter()
@@ -617,7 +640,7 @@ impl<'a> Section<'a> {
         f: impl FnOnce(Field<'_>) -> Result<T, ScenarioError>,
     ) -> Result<Option<T>, ScenarioError> {
         match self.get(key) {
-            Some((path, node)) => f(Field { cx: self.cx, path: &path, node }).map(Some),
+            Some((path, node)) => f(Field { cx: self.cx, path: &path, node, def: self.def(key) }).map(Some),
             None => Ok(None),
         }
     }
@@ -629,9 +652,6 @@ impl<'a> Section<'a> {
     }
 }
 
-const PIPELINE_KEYS: [&str; 7] =
-    ["stages", "split", "micro_batches", "schedule", "chunks", "micro_batch_size", "blocking_sends"];
-
 fn from_tree(
     doc: &Node,
     file: &str,
@@ -640,21 +660,25 @@ fn from_tree(
     profiles: Option<&ProfileCache>,
 ) -> Result<Scenario, ScenarioError> {
     let cx = Reading { file, base_dir, profiles };
-    let root = Field { cx: &cx, path: "", node: doc };
-    let top = root.map(&["title", "seed", "model", "cluster", "pipeline", "training", "placement"])?;
+    let root = Field { cx: &cx, path: "", node: doc, def: None };
+    let top = root.map(keys::TOP)?;
     let title = top.opt("title", |a| a.text())?.unwrap_or_else(|| default_title.to_string());
-    let seed = top.opt("seed", |a| a.int(0, u64::MAX as i128).map(|v| v as u64))?.unwrap_or(1);
+    let seed = top.opt("seed", |a| a.whole().map(|v| v as u64))?.unwrap_or(1);
 
     let cluster = top.req("cluster", read_cluster)?;
     // The micro-batch size shapes derived layer costs, so it is read first.
-    let micro_batch_size =
-        top.opt("pipeline", |p| p.map(&PIPELINE_KEYS)?.opt("micro_batch_size", |a| a.u32(1)))?.flatten().unwrap_or(1);
+    let micro_batch_size = top
+        .opt("pipeline", |p| p.map(keys::PIPELINE)?.opt("micro_batch_size", |a| a.whole().map(|v| v as u32)))?
+        .flatten()
+        .unwrap_or(1);
     let (source, layers) = top.req("model", |m| read_model(m, &cluster, micro_batch_size))?;
     let training = top.opt("training", read_training)?.unwrap_or_default();
     let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster))?;
     let placement = match top.get("placement") {
         None => (0..pipeline.stages).collect(),
-        Some((path, node)) => read_placement(Field { cx: &cx, path: &path, node }, &cluster, pipeline.stages)?,
+        Some((path, node)) => {
+            read_placement(Field { cx: &cx, path: &path, node, def: top.def("placement") }, &cluster, pipeline.stages)?
+        }
     };
     let scenario = Scenario { title, seed, source, layers, cluster, pipeline, training, placement };
     if let Some(bound) = step_bound_ns(&scenario).filter(|&b| b > MAX_STEP_NS) {
@@ -723,7 +747,7 @@ fn read_placement(a: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u3
             let mut out = Vec::with_capacity(items.len());
             for (i, item) in items.iter().enumerate() {
                 let path = format!("{}.{i}", a.path);
-                let at = Field { cx: a.cx, path: &path, node: item };
+                let at = Field { cx: a.cx, path: &path, node: item, def: None };
                 let d = at.int(0, cluster.devices as i128 - 1).map_err(|_| {
                     at.err(format!("must name a device from 0 to {}, found {}", cluster.devices - 1, item.shown()))
                 })? as u32;
@@ -747,17 +771,16 @@ fn positive<T: PartialOrd + Default>(a: &Field<'_>, v: T) -> Result<T, ScenarioE
 }
 
 fn read_link(l: Field<'_>, with_count: bool) -> Result<(LinkParams, u32), ScenarioError> {
-    let keys: &[&str] = if with_count { &["latency", "bandwidth", "count"] } else { &["latency", "bandwidth"] };
-    let l = l.map(keys)?;
+    let l = l.map(if with_count { keys::NODE_LINK } else { keys::LINK })?;
     let latency_ns = l.req("latency", |a| a.duration_ns())?;
     let bytes_per_s = l.req("bandwidth", |a| positive(&a, a.bytes_per_s()?))?;
-    let count = if with_count { l.opt("count", |a| a.int(1, 64).map(|v| v as u32))?.unwrap_or(1) } else { 1 };
+    let count = if with_count { l.opt("count", |a| a.whole().map(|v| v as u32))?.unwrap_or(1) } else { 1 };
     Ok((LinkParams { latency_ns, bytes_per_s }, count))
 }
 
 fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
     let c_at = c;
-    let c = c.map(&["devices", "link", "nodes", "devices_per_node", "device_link", "node_link", "jitter", "device"])?;
+    let c = c.map(keys::CLUSTER)?;
     let flat = ["devices", "link"].iter().any(|k| c.get(k).is_some());
     let boxes = ["nodes", "devices_per_node", "device_link", "node_link"].iter().any(|k| c.get(k).is_some());
     let (devices, fabric) = if flat && boxes {
@@ -765,8 +788,8 @@ fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
             "give either devices and link (every device pair joined directly) or nodes, devices_per_node, device_link and node_link, not both",
         ));
     } else if boxes {
-        let nodes = c.req("nodes", |a| a.int(1, 4096).map(|v| v as u32))?;
-        let dpn = c.req("devices_per_node", |a| a.int(1, 4096).map(|v| v as u32))?;
+        let nodes = c.req("nodes", |a| a.whole().map(|v| v as u32))?;
+        let dpn = c.req("devices_per_node", |a| a.whole().map(|v| v as u32))?;
         let (device_link, _) = c.req("device_link", |l| read_link(l, false))?;
         let (node_link, cards) = c.req("node_link", |l| read_link(l, true))?;
         let total = nodes as i128 * dpn as i128;
@@ -779,14 +802,14 @@ fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
         }
         (total as u32, Fabric::TwoLevel { nodes, devices_per_node: dpn, device_link, node_link, cards })
     } else {
-        let devices = c.req("devices", |a| a.int(1, MAX_DEVICES).map(|v| v as u32))?;
+        let devices = c.req("devices", |a| a.whole().map(|v| v as u32))?;
         let (link, _) = c.req("link", |l| read_link(l, false))?;
         (devices, Fabric::Flat { link })
     };
     let jitter = c.opt("jitter", |a| a.fraction())?.unwrap_or(0.0);
     let device = c
         .opt("device", |d| {
-            let d = d.map(&["peak", "efficiency", "memory"])?;
+            let d = d.map(keys::DEVICE)?;
             Ok(DeviceSpec {
                 peak_flop_per_s: d
                     .opt("peak", |a| positive(&a, a.quantity(units::parse_flop_per_s, units::FLOP_RATE_UNITS)?))?,
@@ -806,11 +829,11 @@ fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
 }
 
 fn read_training(t: Field<'_>) -> Result<Training, ScenarioError> {
-    let t = t.map(&["state_bytes_per_param", "reserved", "recompute"])?;
+    let t = t.map(keys::TRAINING)?;
     let d = Training::default();
     Ok(Training {
         state_bytes_per_param: t
-            .opt("state_bytes_per_param", |a| a.int(0, 1 << 20).map(|v| v as u64))?
+            .opt("state_bytes_per_param", |a| a.whole().map(|v| v as u64))?
             .unwrap_or(d.state_bytes_per_param),
         reserved_bytes: t.opt("reserved", |a| a.bytes())?.unwrap_or(d.reserved_bytes),
         recompute: t
@@ -828,9 +851,8 @@ fn read_model(
     cluster: &Cluster,
     micro_batch_size: u32,
 ) -> Result<(ModelSource, Vec<LayerCost>), ScenarioError> {
-    const SOURCES: [&str; 3] = ["layers", "profile", "transformer"];
-    let m = model.map(&SOURCES)?;
-    let given: Vec<&str> = SOURCES.iter().copied().filter(|k| m.get(k).is_some()).collect();
+    let m = model.map(keys::MODEL)?;
+    let given: Vec<&str> = keys::names(keys::MODEL).into_iter().filter(|k| m.get(k).is_some()).collect();
     if given.len() != 1 {
         return Err(model.err(format!(
             "give exactly one of layers, profile or transformer{}",
@@ -864,29 +886,11 @@ fn read_model(
             Ok((ModelSource::Profile(path), layers))
         }),
         _ => m.req("transformer", |a| {
-            let t = a.map(&[
-                "layers",
-                "hidden",
-                "heads",
-                "seq_len",
-                "vocab",
-                "ffn_hidden",
-                "gated_ffn",
-                "kv_heads",
-                "attention",
-                "tied_embeddings",
-                "bytes_per_value",
-            ])?;
-            let n = |k: &str, max: i128| t.req(k, |a| a.int(1, max).map(|v| v as u64));
-            let mut shape = Transformer::new(
-                n("layers", MAX_LAYERS as i128 - 2)?,
-                n("hidden", 1 << 24)?,
-                n("heads", 1 << 16)?,
-                n("seq_len", 1 << 24)?,
-                n("vocab", 1 << 26)?,
-            );
+            let t = a.map(keys::TRANSFORMER)?;
+            let n = |k: &str| t.req(k, |a| a.whole().map(|v| v as u64));
+            let mut shape = Transformer::new(n("layers")?, n("hidden")?, n("heads")?, n("seq_len")?, n("vocab")?);
             let (hidden, heads) = (shape.hidden, shape.heads);
-            if let Some(f) = t.opt("ffn_hidden", |a| a.int(1, 1 << 26).map(|v| v as u64))? {
+            if let Some(f) = t.opt("ffn_hidden", |a| a.whole().map(|v| v as u64))? {
                 shape.ffn_hidden = f;
             }
             if let Some(g) = t.opt("gated_ffn", |a| a.boolean())? {
@@ -920,7 +924,7 @@ fn read_model(
             if let Some(tied) = t.opt("tied_embeddings", |a| a.boolean())? {
                 shape.tied_embeddings = tied;
             }
-            if let Some(bytes) = t.opt("bytes_per_value", |a| a.int(1, 8).map(|v| v as u64))? {
+            if let Some(bytes) = t.opt("bytes_per_value", |a| a.whole().map(|v| v as u64))? {
                 shape.bytes_per_value = bytes;
             }
             let need = |key: &str| {
@@ -960,10 +964,10 @@ fn read_layers(list: Field<'_>) -> Result<Vec<LayerCost>, ScenarioError> {
     let mut layers = Vec::new();
     for (i, item) in items.iter().enumerate() {
         let path = format!("{}.{i}", list.path);
-        let at = Field { cx: list.cx, path: &path, node: item };
-        let m = at.map(&["name", "repeat", "forward", "backward", "activation", "params", "tied_params", "stash"])?;
+        let at = Field { cx: list.cx, path: &path, node: item, def: None };
+        let m = at.map(keys::LAYER)?;
         let name = m.opt("name", |a| a.text())?.unwrap_or_else(|| format!("layer{i}"));
-        let repeat = m.opt("repeat", |a| a.int(1, MAX_LAYERS as i128))?.unwrap_or(1) as u64;
+        let repeat = m.opt("repeat", |a| a.whole())?.unwrap_or(1) as u64;
         let forward_ns = m.req("forward", |a| positive(&a, a.duration_ns()?))?;
         let backward_ns = m.opt("backward", |a| a.duration_ns())?.unwrap_or(forward_ns.saturating_mul(2));
         let activation_bytes = m.req("activation", |a| a.bytes())?;
@@ -990,22 +994,19 @@ fn read_layers(list: Field<'_>) -> Result<Vec<LayerCost>, ScenarioError> {
 }
 
 fn read_pipeline(p: Field<'_>, layers: &[LayerCost], cluster: &Cluster) -> Result<Pipeline, ScenarioError> {
-    let m = p.map(&PIPELINE_KEYS)?;
-    let micro_batch_size = m.opt("micro_batch_size", |a| a.u32(1))?.unwrap_or(1);
+    let m = p.map(keys::PIPELINE)?;
+    let micro_batch_size = m.opt("micro_batch_size", |a| a.whole().map(|v| v as u32))?.unwrap_or(1);
     let blocking_sends = m.opt("blocking_sends", |a| a.boolean())?.unwrap_or(false);
     let stages = m.req("stages", |a| {
-        let v = a.u32(1)?;
-        if v > MAX_STAGES {
-            return Err(a.err(format!("must be at most {MAX_STAGES}, found {v}")));
-        }
+        let v = a.whole()? as u32;
         if v > cluster.devices {
             return Err(a.err(format!("{v} stages need {v} devices, but cluster.devices is {}", cluster.devices)));
         }
         Ok(v)
     })?;
-    let micro_batches = m.req("micro_batches", |a| a.u32(1))?;
+    let micro_batches = m.req("micro_batches", |a| a.whole().map(|v| v as u32))?;
     let schedule = m.req("schedule", |a| a.str()?.parse::<ScheduleKind>().map_err(|e| a.err(e.to_string())))?;
-    let chunks = m.opt("chunks", |a| a.u32(1))?.unwrap_or(1);
+    let chunks = m.opt("chunks", |a| a.whole().map(|v| v as u32))?.unwrap_or(1);
     let pieces = stages as u64 * chunks as u64;
     let n_layers = layers.len() as u64;
     let field_origin = |key: &str| m.get(key).map(|(_, n)| n.origin.clone()).unwrap_or_else(|| m.origin.clone());
@@ -1020,7 +1021,7 @@ fn read_pipeline(p: Field<'_>, layers: &[LayerCost], cluster: &Cluster) -> Resul
     let split = match m.get("split") {
         None => even_split(n_layers, pieces),
         Some((path, node)) => {
-            let at = Field { cx: p.cx, path: &path, node };
+            let at = Field { cx: p.cx, path: &path, node, def: None };
             match &node.value {
                 Value::Str(s) if s == "even" => even_split(n_layers, pieces),
                 Value::Seq(items) => {
@@ -1033,7 +1034,7 @@ fn read_pipeline(p: Field<'_>, layers: &[LayerCost], cluster: &Cluster) -> Resul
                     let mut split = Vec::with_capacity(items.len());
                     for (i, item) in items.iter().enumerate() {
                         let ip = format!("{path}.{i}");
-                        split.push(Field { cx: p.cx, path: &ip, node: item }.u32(1)?);
+                        split.push(Field { cx: p.cx, path: &ip, node: item, def: None }.u32(1)?);
                     }
                     let sum: u64 = split.iter().map(|&x| x as u64).sum();
                     if sum != n_layers {

@@ -20,12 +20,12 @@ pub const FLOP_RATE_UNITS: &str = "FLOP/s, kFLOP/s, MFLOP/s, GFLOP/s, TFLOP/s, P
 pub const COUNT_SUFFIXES: &str = "none, k (thousand), M (million), B (billion), T (trillion)";
 
 /// A multiplier expressed as `num / den` of the base unit.
-type Scale = (u128, u128);
+pub(crate) type Scale = (u128, u128);
 
-const DURATION: &[(&str, Scale)] =
+pub(crate) const DURATION: &[(&str, Scale)] =
     &[("ns", (1, 1)), ("us", (1_000, 1)), ("ms", (1_000_000, 1)), ("s", (1_000_000_000, 1))];
 
-const SIZE: &[(&str, Scale)] = &[
+pub(crate) const SIZE: &[(&str, Scale)] = &[
     ("B", (1, 1)),
     ("kB", (1_000, 1)),
     ("MB", (1_000_000, 1)),
@@ -37,7 +37,7 @@ const SIZE: &[(&str, Scale)] = &[
     ("TiB", (1 << 40, 1)),
 ];
 
-const BANDWIDTH: &[(&str, Scale)] = &[
+pub(crate) const BANDWIDTH: &[(&str, Scale)] = &[
     ("B/s", (1, 1)),
     ("kB/s", (1_000, 1)),
     ("MB/s", (1_000_000, 1)),
@@ -53,7 +53,7 @@ const BANDWIDTH: &[(&str, Scale)] = &[
     ("Tbit/s", (1_000_000_000_000, 8)),
 ];
 
-const FLOP_RATE: &[(&str, Scale)] = &[
+pub(crate) const FLOP_RATE: &[(&str, Scale)] = &[
     ("FLOP/s", (1, 1)),
     ("kFLOP/s", (1_000, 1)),
     ("MFLOP/s", (1_000_000, 1)),
@@ -62,7 +62,7 @@ const FLOP_RATE: &[(&str, Scale)] = &[
     ("PFLOP/s", (1_000_000_000_000_000, 1)),
 ];
 
-const COUNT: &[(&str, Scale)] =
+pub(crate) const COUNT: &[(&str, Scale)] =
     &[("", (1, 1)), ("k", (1_000, 1)), ("M", (1_000_000, 1)), ("B", (1_000_000_000, 1)), ("T", (1_000_000_000_000, 1))];
 
 /// Splits `"1.25 ms"` into the exact decimal `125 / 10^2` and the unit text.
