@@ -8,7 +8,7 @@
 use std::path::{Path, PathBuf};
 
 use baton_output::{OutputError, Outputs};
-use baton_report::svg::{gantt, memory};
+use baton_report::svg::{gantt, memory, View};
 use baton_report::ReportError;
 use baton_scenario::{Override, ScenarioError};
 use thiserror::Error;
@@ -88,6 +88,9 @@ pub enum CommandError {
     /// Every point of a sweep was skipped (exit 2); carries the table of reasons.
     #[error("every point of the sweep was skipped, so nothing is written:\n{0}")]
     AllSkipped(String),
+    /// A chart option that cannot apply (exit 2).
+    #[error("{0}")]
+    Chart(String),
 }
 
 impl CommandError {
@@ -96,7 +99,7 @@ impl CommandError {
     pub fn exit_status(&self) -> u8 {
         match self {
             CommandError::Scenario(_) | CommandError::Compare(_) | CommandError::Read { .. } => 2,
-            CommandError::AllSkipped(_) | CommandError::TooMuchMemory { .. } => 2,
+            CommandError::AllSkipped(_) | CommandError::TooMuchMemory { .. } | CommandError::Chart(_) => 2,
             CommandError::Simulate(e) | CommandError::Plan(PlanError::Simulate(e)) => {
                 if e.is_internal() {
                     1
@@ -143,6 +146,27 @@ fn check_memory(s: &baton_scenario::Scenario, making: Making, copies: u64, limit
     Ok(())
 }
 
+/// Refuses `--width`/`--window` without a chart to shape, and a window that
+/// starts after the (longest) step ends.
+fn check_view(view: &View, charts: &[&str], outputs: &Outputs, step_ns: Option<u64>) -> Result<(), CommandError> {
+    if view != &View::default() && !charts.iter().any(|c| outputs.wants(c)) {
+        return Err(CommandError::Chart(format!(
+            "--width and --window shape a chart; add {}",
+            charts.iter().map(|c| format!("{c} PATH")).collect::<Vec<_>>().join(" or ")
+        )));
+    }
+    if let (Some(w), Some(step)) = (view.window, step_ns) {
+        if w.start_ns >= step {
+            return Err(CommandError::Chart(format!(
+                "--window starts at {}, after the step ends ({}); choose a start before it",
+                baton_engine::format_ns(w.start_ns),
+                baton_engine::format_ns(step)
+            )));
+        }
+    }
+    Ok(())
+}
+
 fn render(what: &'static str) -> impl FnOnce(ReportError) -> CommandError {
     move |source| CommandError::Render { what, source }
 }
@@ -161,6 +185,8 @@ pub struct RunRequest<'a> {
     pub strict: bool,
     /// Refuse (exit 2) a run whose estimated memory is over this.
     pub max_memory: u64,
+    /// The charts' width and time window.
+    pub view: View,
 }
 
 /// `baton run`: outputs `--svg`, `--memory-svg`, `--layers-csv`, `--trace`, `--json`.
@@ -172,17 +198,26 @@ pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandErr
         chart: outputs.wants("--svg") || outputs.wants("--memory-svg"),
     };
     check_memory(&scenario, making, 1, r.max_memory)?;
+    check_view(&r.view, &["--svg", "--memory-svg"], outputs, None)?;
     let outcome = crate::simulate(&scenario)?;
     let (trace, report) = (&outcome.trace, &outcome.report);
+    check_view(&r.view, &["--svg", "--memory-svg"], outputs, Some(report.step_time_ns))?;
     if outputs.wants("--svg") {
-        let options = gantt::GanttOptions { comm_lanes: r.comm_lanes, title: None };
-        let run = gantt::Run { trace, report, label: String::new() };
+        let options = gantt::GanttOptions { comm_lanes: r.comm_lanes, title: None, view: r.view };
+        let run = gantt::Run {
+            trace,
+            report,
+            label: String::new(),
+            note: crate::overrides_note(r.sets),
+            devices_per_node: crate::devices_per_node(&scenario),
+        };
         outputs.write("--svg", gantt::render(&[run], &options).map_err(render("draw the chart"))?.as_bytes())?;
     }
     if outputs.wants("--memory-svg") {
         let memory_inputs = crate::memory_inputs(&scenario);
         let run = memory::MemoryRun { trace, report, memory: &memory_inputs };
-        let svg = memory::render(&run, &Default::default()).map_err(render("draw the memory chart"))?;
+        let options = memory::MemoryOptions { view: r.view, note: crate::overrides_note(r.sets), ..Default::default() };
+        let svg = memory::render(&run, &options).map_err(render("draw the memory chart"))?;
         outputs.write("--memory-svg", svg.as_bytes())?;
     }
     outputs.write_with("--layers-csv", |w| {
@@ -268,10 +303,15 @@ pub struct SweepRequest<'a> {
     pub top: usize,
     /// Skip a point whose estimated memory is over this.
     pub max_memory: u64,
+    /// The chart's width in pixels (`None`: the default).
+    pub width: Option<u32>,
 }
 
 /// `baton sweep`: outputs `--csv`, `--svg`, `--json`.
 pub fn sweep(r: &SweepRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandError> {
+    if r.width.is_some() && !outputs.wants("--svg") {
+        return Err(CommandError::Chart("--width shapes the chart; add --svg PATH".into()));
+    }
     let by: RankBy = r.rank_by.parse()?;
     let axes = r.vary.iter().map(|v| sw::parse_vary(v)).collect::<Result<Vec<_>, _>>()?;
     let grid = Grid::new(axes)?;
@@ -304,7 +344,7 @@ pub fn sweep(r: &SweepRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comman
     outputs.write_with("--csv", |w| sw::write_csv(&keys, points, tag, w).map_err(std::io::Error::other))?;
     if outputs.wants("--svg") {
         let title = doc.scenario(r.sets).map(|s| s.title).unwrap_or_default();
-        let svg = sw::chart(&title, &grid, points, by)
+        let svg = sw::chart(&title, r.sets, &grid, points, by, r.width)
             .map_err(|e| CommandError::Render { what: "draw the chart", source: ReportError::Draw(e) })?;
         outputs.write("--svg", svg.as_bytes())?;
     }
@@ -334,14 +374,15 @@ pub fn compare(
     sets: &[String],
     comm_lanes: bool,
     max_memory: u64,
+    view: View,
     outputs: &mut Outputs,
 ) -> Result<Done, CommandError> {
     let runs = crate::compare::scenarios(scenarios, sets)?;
     let making = Making { json: outputs.wants("--json"), trace: false, chart: outputs.wants("--svg") };
-    let total: u64 = runs.iter().map(|(_, s)| crate::memory_estimate_bytes(s, making)).sum();
-    if let Some((_, largest)) = runs.iter().max_by_key(|(_, s)| crate::memory_estimate_bytes(s, making)) {
+    let total: u64 = runs.iter().map(|c| crate::memory_estimate_bytes(&c.scenario, making)).sum();
+    if let Some(largest) = runs.iter().max_by_key(|c| crate::memory_estimate_bytes(&c.scenario, making)) {
         if total > max_memory {
-            let (ops, transfers) = crate::step_elements(largest);
+            let (ops, transfers) = crate::step_elements(&largest.scenario);
             return Err(CommandError::TooMuchMemory {
                 estimate: total,
                 limit: max_memory,
@@ -351,9 +392,11 @@ pub fn compare(
             });
         }
     }
+    check_view(&view, &["--svg"], outputs, None)?;
     let comparison = Comparison::run(&runs)?;
+    check_view(&view, &["--svg"], outputs, comparison.longest_step_ns())?;
     if outputs.wants("--svg") {
-        outputs.write("--svg", comparison.chart(comm_lanes).map_err(render("draw the chart"))?.as_bytes())?;
+        outputs.write("--svg", comparison.chart(comm_lanes, view).map_err(render("draw the chart"))?.as_bytes())?;
     }
     if outputs.wants("--json") {
         let json = comparison.json().map_err(|source| CommandError::Encode { what: "reports", source })?;

@@ -5,6 +5,7 @@ use std::path::PathBuf;
 
 use baton_engine::format_ns;
 use baton_report::svg::gantt::{self, GanttOptions, Run};
+use baton_report::svg::View;
 use baton_report::{format_bytes, Report, ReportError};
 use baton_scenario::{Scenario, ScenarioError};
 use thiserror::Error;
@@ -32,17 +33,35 @@ pub enum CompareError {
     TooFew,
 }
 
+/// One run to compare.
+pub struct Candidate {
+    /// The scenario file (and the `--set` that made a variant).
+    pub source: String,
+    /// The scenario, overrides applied.
+    pub scenario: Scenario,
+    /// What the overrides changed, for the chart's caption (`with ...`), or empty.
+    pub note: String,
+}
+
 /// The runs `baton compare` compares: each scenario with `sets` applied, or
 /// with a single scenario, it and its variant made by `sets`.
-pub fn scenarios(paths: &[PathBuf], sets: &[String]) -> Result<Vec<(String, Scenario)>, CompareError> {
+pub fn scenarios(paths: &[PathBuf], sets: &[String]) -> Result<Vec<Candidate>, CompareError> {
     let mut runs = Vec::new();
     let variant = paths.len() == 1 && !sets.is_empty();
     for (i, path) in paths.iter().enumerate() {
         let these: &[String] = if variant { &[] } else { sets };
-        runs.push((path.display().to_string(), baton_scenario::load(path, these)?));
+        runs.push(Candidate {
+            source: path.display().to_string(),
+            scenario: baton_scenario::load(path, these)?,
+            note: crate::overrides_note(these),
+        });
         if variant && i == 0 {
             let desc = sets.iter().map(|x| format!("--set {x}")).collect::<Vec<_>>().join(" ");
-            runs.push((format!("{} {desc}", path.display()), baton_scenario::load(path, sets)?));
+            runs.push(Candidate {
+                source: format!("{} {desc}", path.display()),
+                scenario: baton_scenario::load(path, sets)?,
+                note: crate::overrides_note(sets),
+            });
         }
     }
     if runs.len() < 2 {
@@ -54,6 +73,8 @@ pub fn scenarios(paths: &[PathBuf], sets: &[String]) -> Result<Vec<(String, Scen
 /// Simulated runs, side by side.
 pub struct Comparison {
     sources: Vec<String>,
+    notes: Vec<String>,
+    devices_per_node: Vec<Option<u32>>,
     outcomes: Vec<SimulatedStep>,
 }
 
@@ -65,9 +86,14 @@ fn label(i: usize) -> String {
 
 impl Comparison {
     /// Simulates each `(source, scenario)`.
-    pub fn run(runs: &[(String, Scenario)]) -> Result<Self, SimulateError> {
-        let outcomes = runs.iter().map(|(_, s)| simulate(s)).collect::<Result<Vec<_>, _>>()?;
-        Ok(Comparison { sources: runs.iter().map(|(src, _)| src.clone()).collect(), outcomes })
+    pub fn run(runs: &[Candidate]) -> Result<Self, SimulateError> {
+        let outcomes = runs.iter().map(|c| simulate(&c.scenario)).collect::<Result<Vec<_>, _>>()?;
+        Ok(Comparison {
+            sources: runs.iter().map(|c| c.source.clone()).collect(),
+            notes: runs.iter().map(|c| c.note.clone()).collect(),
+            devices_per_node: runs.iter().map(|c| crate::devices_per_node(&c.scenario)).collect(),
+            outcomes,
+        })
     }
 
     fn entries(&self) -> Vec<Entry<'_>> {
@@ -78,24 +104,43 @@ impl Comparison {
             .collect()
     }
 
+    /// The longest of the runs' steps, in nanoseconds.
+    pub fn longest_step_ns(&self) -> Option<u64> {
+        self.outcomes.iter().map(|o| o.report.step_time_ns).max()
+    }
+
     /// The side-by-side table.
     pub fn table(&self) -> String {
         table(&self.entries())
     }
 
     /// The runs' Gantt charts stacked on one time axis.
-    pub fn chart(&self, comm_lanes: bool) -> Result<String, ReportError> {
+    pub fn chart(&self, comm_lanes: bool, view: View) -> Result<String, ReportError> {
         let runs: Vec<Run<'_>> = self
             .outcomes
             .iter()
             .enumerate()
-            .map(|(i, o)| Run { trace: &o.trace, report: &o.report, label: label(i) })
+            .map(|(i, o)| Run {
+                trace: &o.trace,
+                report: &o.report,
+                label: label(i),
+                note: self.notes[i].clone(),
+                devices_per_node: self.devices_per_node[i],
+            })
             .collect();
-        let title = format!(
-            "Comparison: {}",
-            self.entries().iter().map(|e| format!("{} {}", e.label, e.report.title)).collect::<Vec<_>>().join(" / ")
-        );
-        gantt::render(&runs, &GanttOptions { comm_lanes, title: Some(title) })
+        let entries = self.entries();
+        let labels: Vec<&str> = entries.iter().map(|e| e.label.as_str()).collect();
+        let first = entries.first().map(|e| e.report.title.as_str()).unwrap_or_default();
+        // One title for a file and its variants; each run's own otherwise.
+        let title = if entries.iter().all(|e| e.report.title == first) {
+            format!("{first}: {} compared", labels.join(", "))
+        } else {
+            format!(
+                "Comparison: {}",
+                entries.iter().map(|e| format!("{} {}", e.label, e.report.title)).collect::<Vec<_>>().join(" / ")
+            )
+        };
+        gantt::render(&runs, &GanttOptions { comm_lanes, title: Some(title), view })
     }
 
     /// The reports as a JSON array.

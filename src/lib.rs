@@ -90,6 +90,57 @@ pub fn memory_inputs(s: &Scenario) -> MemoryInputs {
     }
 }
 
+pub use baton_report::svg::{View, Window};
+
+/// Reads `--width PX`: a whole number of pixels in
+/// [`baton_report::svg::WIDTH_RANGE_PX`].
+pub fn parse_width(text: &str) -> Result<u32, String> {
+    let range = baton_report::svg::WIDTH_RANGE_PX;
+    let px: u32 = text.trim().parse().map_err(|_| format!("`{text}` is not a whole number of pixels"))?;
+    if !range.contains(&px) {
+        return Err(format!("{px} px is outside {} to {} px", range.start(), range.end()));
+    }
+    Ok(px)
+}
+
+/// Reads `--window START..END`: two durations with units (`0` may stand
+/// alone), the start before the end, e.g. `20ms..60ms`.
+pub fn parse_window(text: &str) -> Result<Window, String> {
+    let (a, b) = text
+        .split_once("..")
+        .ok_or_else(|| format!("`{text}` is not a window; write START..END with units, e.g. 20ms..60ms"))?;
+    let time = |t: &str| {
+        if t.trim() == "0" {
+            Ok(0)
+        } else {
+            baton_scenario::units::parse_duration_ns(t)
+        }
+    };
+    let (start_ns, end_ns) = (time(a)?, time(b)?);
+    if start_ns >= end_ns {
+        return Err(format!("the window `{text}` ends before it starts; write START..END with START < END"));
+    }
+    Ok(Window { start_ns, end_ns })
+}
+
+/// Devices per node when the scenario's cluster is made of nodes.
+pub fn devices_per_node(s: &Scenario) -> Option<u32> {
+    match s.cluster.fabric {
+        baton_scenario::Fabric::TwoLevel { devices_per_node, .. } => Some(devices_per_node),
+        baton_scenario::Fabric::Flat { .. } => None,
+    }
+}
+
+/// What `--set` overrides changed, for a chart's caption: `with k=v, k2=v2`
+/// (empty for none).
+pub fn overrides_note(sets: &[String]) -> String {
+    if sets.is_empty() {
+        String::new()
+    } else {
+        format!("with {}", sets.join(", "))
+    }
+}
+
 /// The per-layer cost table `baton run --show-layers` prints.
 pub fn layer_table(s: &Scenario) -> String {
     use baton_engine::format_ns;

@@ -111,6 +111,9 @@ struct SweepArgs {
     /// e.g. --shard 3/8 for task 3 of a job array of 8; combine with baton merge.
     #[arg(long, value_name = "I/N")]
     shard: Option<String>,
+    /// The chart's width in pixels (400 to 20000; default 1000), e.g. --width 1600.
+    #[arg(long, value_name = "PX", value_parser = baton::parse_width)]
+    width: Option<u32>,
     /// Rows of the ranked table to print, e.g. --top 50.
     #[arg(long, value_name = "N", default_value_t = 20)]
     top: usize,
@@ -137,6 +140,9 @@ struct MergeArgs {
     /// What to rank by (as in baton sweep), e.g. --rank-by memory.
     #[arg(long, value_name = "FIELD", default_value = "throughput")]
     rank_by: String,
+    /// The chart's width in pixels (400 to 20000; default 1000), e.g. --width 1600.
+    #[arg(long, value_name = "PX", value_parser = baton::parse_width)]
+    width: Option<u32>,
     /// Rows of the ranked table to print, e.g. --top 50.
     #[arg(long, value_name = "N", default_value_t = 20)]
     top: usize,
@@ -164,6 +170,27 @@ struct CompareArgs {
     /// 16GiB on every machine), e.g. --max-memory 4GiB.
     #[arg(long, value_name = "SIZE", default_value = "16GiB", value_parser = parse_size)]
     max_memory: u64,
+    #[command(flatten)]
+    chart: ChartArgs,
+}
+
+/// How a timeline chart is framed.
+#[derive(Args)]
+struct ChartArgs {
+    /// The chart's width in pixels (400 to 20000; default: one that suits the
+    /// chart, at most 1800), e.g. --width 2400.
+    #[arg(long, value_name = "PX", value_parser = baton::parse_width)]
+    width: Option<u32>,
+    /// Show only this time window, measured from the step's start, e.g.
+    /// --window 20ms..60ms.
+    #[arg(long, value_name = "START..END", value_parser = baton::parse_window)]
+    window: Option<baton::Window>,
+}
+
+impl ChartArgs {
+    fn view(&self) -> baton::View {
+        baton::View { width_px: self.width, window: self.window }
+    }
 }
 
 #[derive(Args)]
@@ -232,7 +259,7 @@ struct RunArgs {
     /// (outputs are still written), e.g. --strict.
     #[arg(long)]
     strict: bool,
-    /// Leave out the thin lane under each device that shows its sends and
+    /// Leave out the lane under each device that shows its sends and
     /// receives, e.g. --svg timeline.svg --no-comm-lanes.
     #[arg(long)]
     no_comm_lanes: bool,
@@ -240,6 +267,8 @@ struct RunArgs {
     /// 16GiB on every machine), e.g. --max-memory 4GiB.
     #[arg(long, value_name = "SIZE", default_value = "16GiB", value_parser = parse_size)]
     max_memory: u64,
+    #[command(flatten)]
+    chart: ChartArgs,
 }
 
 fn main() -> ExitCode {
@@ -266,6 +295,7 @@ fn main() -> ExitCode {
                 comm_lanes: !a.no_comm_lanes,
                 strict: a.strict,
                 max_memory: a.max_memory,
+                view: a.chart.view(),
             };
             finish(commands::run(&r, &mut o), o)
         }),
@@ -294,6 +324,7 @@ fn main() -> ExitCode {
                     jobs: a.jobs,
                     top: a.top,
                     max_memory: a.max_memory,
+                    width: a.width,
                 };
                 finish(commands::sweep(&r, &mut o), o)
             })
@@ -311,7 +342,7 @@ fn main() -> ExitCode {
             };
         }
         Command::Compare(a) => outputs(&[svg(&a.svg), json(&a.json, "JSON")]).and_then(|mut o| {
-            finish(commands::compare(&a.scenarios, &a.sets, !a.no_comm_lanes, a.max_memory, &mut o), o)
+            finish(commands::compare(&a.scenarios, &a.sets, !a.no_comm_lanes, a.max_memory, a.chart.view(), &mut o), o)
         }),
     };
     match result {

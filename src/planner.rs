@@ -549,6 +549,15 @@ pub fn applied_text(
     if let Some(v) = chunks {
         edits.push(("pipeline.chunks", v.to_string()));
     }
+    // A chart of the copy must not carry a title that describes the old
+    // split: name the new one in it (once, however often it is re-split).
+    if let Some(title) = text_at(&text, path, &["title"]) {
+        let base = match title.rfind(RESPLIT) {
+            Some(i) if title.ends_with(']') => &title[..i],
+            _ => title.as_str(),
+        };
+        edits.push(("title", quoted(&format!("{base}{RESPLIT}{}", list(split)))));
+    }
     // A profile named relative to the scenario must still be found from the copy.
     if let (baton_scenario::ModelSource::Profile(profile), Some(dest_dir)) = (&scenario.source, dest_dir(dest)) {
         let written = profile_as_written(&text, path);
@@ -614,11 +623,24 @@ fn dest_dir(dest: &str) -> Option<std::path::PathBuf> {
     Some(if parent.as_os_str().is_empty() { Path::new(".").to_path_buf() } else { parent.to_path_buf() })
 }
 
+/// What `split --apply` adds to a copy's title: `, re-split [7, 8, 8, 1]`.
+const RESPLIT: &str = ", re-split ";
+
+/// A double-quoted YAML scalar.
+fn quoted(s: &str) -> String {
+    format!("\"{}\"", s.replace('\\', "\\\\").replace('"', "\\\""))
+}
+
 /// The `model.profile` value as written in the scenario text, if any.
 fn profile_as_written(text: &str, path: &Path) -> Option<String> {
+    text_at(text, path, &["model", "profile"])
+}
+
+/// The text at `keys` in the scenario text, if it is text.
+fn text_at(text: &str, path: &Path, keys: &[&str]) -> Option<String> {
     let doc = baton_scenario::node::parse_document(text, &path.display().to_string()).ok()?;
     let mut node = &doc;
-    for key in ["model", "profile"] {
+    for &key in keys {
         let baton_scenario::Value::Map(entries) = &node.value else { return None };
         node = &entries.iter().find(|(k, _, _)| k == key)?.2;
     }

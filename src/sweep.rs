@@ -839,47 +839,83 @@ pub fn table(
 /// A line chart of the ranking field against the first varied key, one line
 /// per value of the second key. With more keys, each plotted point is the best
 /// over the other keys' values. Skipped points leave gaps.
-pub fn chart(title: &str, grid: &Grid, points: &[Point], by: RankBy) -> Result<String, String> {
-    use baton_report::svg::line::{self, LineChart, Series};
+pub fn chart(
+    title: &str,
+    sets: &[String],
+    grid: &Grid,
+    points: &[Point],
+    by: RankBy,
+    width_px: Option<u32>,
+) -> Result<String, String> {
+    use baton_report::svg::line::{self, LineChart, LineOptions, Series};
     let xs = &grid.axes[0].values;
     let lines: Vec<String> = grid.axes.get(1).map_or_else(|| vec![String::new()], |a| a.values.clone());
-    // best[line][x] = best point's value there.
-    let mut best: Vec<Vec<Option<(f64, f64)>>> = vec![vec![None; xs.len()]; lines.len()];
-    // Points that fit are preferred; over-capacity ones are drawn only where
-    // nothing fits.
-    let any_fit = points.iter().any(|p| p.result.as_ref().is_ok_and(|s| s.fits));
+    // At each (line, x): the best point that fits, and the best one over
+    // memory capacity; as (sort key, value, point).
+    type Best<'p> = Option<(f64, f64, &'p Point)>;
+    let mut fit: Vec<Vec<Best<'_>>> = vec![vec![None; xs.len()]; lines.len()];
+    let mut over: Vec<Vec<Best<'_>>> = vec![vec![None; xs.len()]; lines.len()];
     for p in points {
         let Ok(s) = &p.result else { continue };
-        if any_fit && !s.fits {
-            continue;
-        }
         let c = grid.coords(p.index);
         let line = if grid.axes.len() > 1 { c[1] } else { 0 };
-        let slot = &mut best[line][c[0]];
+        let slot = if s.fits { &mut fit[line][c[0]] } else { &mut over[line][c[0]] };
         let key = by.key(s);
-        if slot.is_none_or(|(k, _)| key < k) {
-            *slot = Some((key, by.value(s)));
+        if slot.is_none_or(|(k, _, _)| key < k) {
+            *slot = Some((key, by.value(s), p));
         }
     }
-    if best.iter().flatten().all(Option::is_none) {
+    if fit.iter().chain(&over).flatten().all(Option::is_none) {
         return Err("no point was simulated, so there is nothing to chart".into());
     }
+    // The keys the chart does not draw, by their last name.
+    let undrawn: Vec<(usize, &str)> =
+        grid.axes.iter().enumerate().skip(2).map(|(k, a)| (k, a.key.rsplit('.').next().unwrap_or(&a.key))).collect();
+    let label_of = |p: &Point| {
+        (!undrawn.is_empty())
+            .then(|| undrawn.iter().map(|&(k, name)| format!("{name}={}", p.values[k])).collect::<Vec<_>>().join(" "))
+    };
     let series = lines
         .iter()
-        .zip(&best)
-        .map(|(name, values)| Series {
-            name: if grid.axes.len() > 1 { format!("{} = {name}", grid.axes[1].key) } else { by.label().to_string() },
-            values: values.iter().map(|v| v.map(|(_, y)| y)).collect(),
+        .enumerate()
+        .map(|(l, name)| {
+            let chosen: Vec<(Best<'_>, bool)> = (0..xs.len())
+                .map(|x| fit[l][x].map_or((over[l][x], over[l][x].is_some()), |b| (Some(b), false)))
+                .collect();
+            Series {
+                name: if grid.axes.len() > 1 {
+                    format!("{} = {name}", grid.axes[1].key)
+                } else {
+                    by.label().to_string()
+                },
+                values: chosen.iter().map(|(b, _)| b.map(|(_, y, _)| y)).collect(),
+                flagged: chosen.iter().map(|(_, f)| *f).collect(),
+                labels: chosen.iter().map(|(b, _)| b.and_then(|(_, _, p)| label_of(p))).collect(),
+            }
         })
         .collect();
+    let mut notes = Vec::new();
+    if !sets.is_empty() {
+        notes.push(crate::overrides_note(sets));
+    }
+    if !undrawn.is_empty() {
+        let names: Vec<&str> = grid.axes[2..].iter().map(|a| a.key.as_str()).collect();
+        notes.push(format!(
+            "each point is the best over {} (its value written beside it), preferring points that fit in memory",
+            names.join(", ")
+        ));
+    }
     let chart = LineChart {
         title: format!("{title}: {} by {}", by.label(), grid.axes[0].key),
         x_label: grid.axes[0].key.clone(),
         y_label: by.label().to_string(),
         categories: xs.clone(),
         series,
+        flag_meaning: "over memory capacity (no point there fits)".into(),
+        note: notes.join(" · "),
     };
-    line::render(&chart, &Default::default()).map_err(|e| e.to_string())
+    let options = LineOptions { width_px: width_px.unwrap_or(LineOptions::default().width_px), ..Default::default() };
+    line::render(&chart, &options).map_err(|e| e.to_string())
 }
 
 #[cfg(test)]

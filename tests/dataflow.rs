@@ -80,10 +80,18 @@ fn a_split_backward_flows_through_executor_trace_report_and_chart() {
     assert!(text.contains("0,weight,0,0,60,65"), "{text}");
 
     // Chart: the legend and the tooltips name the kind; its bars have their own colour.
-    let svg =
-        gantt::render(&[gantt::Run { trace: &trace, report: &report, label: String::new() }], &Default::default())
-            .unwrap();
-    assert!(svg.lines().any(|l| l.trim() == "weight"), "the legend lists the kind");
+    let svg = gantt::render(
+        &[gantt::Run {
+            trace: &trace,
+            report: &report,
+            label: String::new(),
+            note: String::new(),
+            devices_per_node: None,
+        }],
+        &Default::default(),
+    )
+    .unwrap();
+    assert!(svg.contains("dominant-baseline=\"central\">weight</text>"), "the legend lists the kind");
     assert_eq!(svg.matches("<title>weight of micro-batch").count(), 4);
     assert!(svg.contains("fill=\"#009e73\""), "its own colour");
 }

@@ -47,7 +47,7 @@ fn scenario(c: &Case) -> Scenario {
 fn outputs(trace: &Trace, report: &Report) -> (String, String, Vec<u8>) {
     let mut out = Vec::new();
     csv::write(trace, &mut out).unwrap();
-    let run = gantt::Run { trace, report, label: String::new() };
+    let run = gantt::Run { trace, report, label: String::new(), note: String::new(), devices_per_node: None };
     (json::render(report, &Default::default()).unwrap(), gantt::render(&[run], &Default::default()).unwrap(), out)
 }
 

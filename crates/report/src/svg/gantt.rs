@@ -1,18 +1,22 @@
 //! SVG Gantt chart of one simulated step, or of several stacked on one time
 //! axis.
 //!
-//! `plotters` lays out the frame: title, time axis with units, lane labels,
-//! legend and caption.
-//! The bars and idle marks are then written as plain SVG elements in the
-//! chart's pixel coordinates, because each carries a `<title>` tooltip (op,
-//! micro-batch, stage, start, end), which plotters has no element for.
+//! `plotters` lays out the frame: the plotting area and the time axis with
+//! its ticks and units. Everything else is written as plain SVG in the
+//! chart's pixel coordinates, because each bar carries a `<title>` tooltip
+//! (op, micro-batch, stage, start, end) and the idle marks use fill patterns,
+//! neither of which plotters has an element for.
 //!
-//! One lane per device; one bar per operation, coloured by kind (forward blue,
-//! backward orange: a pair that stays distinct under the common forms of colour
-//! blindness; a weight-gradient pass bluish green), later model chunks drawn
-//! lighter; the micro-batch number inside
-//! a bar when it fits, dropped when it does not; idle gaps hatched, with their
-//! cause as tooltip.
+//! One lane per device (on a cluster of nodes, grouped by node, in bands,
+//! and labelled by stage and cluster device); one bar per operation, coloured
+//! by kind (forward blue, backward orange: a pair that stays distinct under
+//! the common forms of colour blindness; a weight-gradient pass bluish
+//! green), later model chunks drawn lighter; the micro-batch number inside a
+//! bar when it fits, dropped when it does not. Idle gaps are hatched with a
+//! pattern and tint of their own per cause, so a pasted picture keeps the
+//! cause without its tooltip; the legend shows the same swatches. Under each
+//! lane a communication lane shows sends (bytes leaving) and receives (data
+//! in flight towards the device). Title and captions wrap to the width.
 
 use std::fmt::Write as _;
 
@@ -20,14 +24,18 @@ use baton_engine::format_ns;
 use baton_executor::Trace;
 use baton_schedule::OpKind;
 use plotters::prelude::*;
-use plotters::style::text_anchor::{HPos, Pos, VPos};
 
-use super::{draw_err, hex, ink_on, xml_escape, Rgb, MAX_CHART_OPS};
+use super::{draw_err, hex, ink_on, wrap, xml_escape, Rgb, View, MAX_CHART_OPS};
+use crate::analysis::Cause;
 use crate::{Report, ReportError};
 
 const FORWARD: Rgb = (0x2b, 0x6c, 0xb0);
 const BACKWARD: Rgb = (0xe3, 0x8b, 0x2c);
 const WEIGHT: Rgb = (0x00, 0x9e, 0x73);
+/// Sends: a dark slate.
+const SEND: Rgb = (0x3d, 0x48, 0x5a);
+/// Receives: a raspberry, a hue no op kind or chunk shade uses.
+const RECEIVE: Rgb = (0xa0, 0x2c, 0x7a);
 
 /// The colour of each op kind: one place for every kind the schedule knows.
 fn kind_rgb(kind: OpKind) -> Rgb {
@@ -37,15 +45,94 @@ fn kind_rgb(kind: OpKind) -> Rgb {
         OpKind::Weight => WEIGHT,
     }
 }
-const IDLE_INK: &str = "#b8474a";
+
+/// How an idle cause is drawn: the pattern's background tint, its ink, and
+/// its marks.
+struct CauseStyle {
+    tint: &'static str,
+    ink: &'static str,
+    marks: Marks,
+    legend: &'static str,
+}
+
+enum Marks {
+    /// Parallel lines at this angle (0: vertical).
+    Lines(i32),
+    /// Two sets of lines, crossing.
+    Cross,
+    /// A grid of dots.
+    Dots,
+}
+
+/// One place for every idle cause's look.
+fn cause_style(cause: Cause) -> CauseStyle {
+    match cause {
+        Cause::Fill => CauseStyle { tint: "#f0f0f0", ink: "#7a7a7a", marks: Marks::Lines(45), legend: "idle: fill" },
+        Cause::Drain => CauseStyle { tint: "#f0f0f0", ink: "#7a7a7a", marks: Marks::Lines(-45), legend: "idle: drain" },
+        Cause::Activation => CauseStyle {
+            tint: "#e4edf8",
+            ink: "#2b6cb0",
+            marks: Marks::Lines(90),
+            legend: "idle: waiting for an activation",
+        },
+        Cause::Gradient => CauseStyle {
+            tint: "#fcefe0",
+            ink: "#b5651d",
+            marks: Marks::Lines(0),
+            legend: "idle: waiting for a gradient",
+        },
+        Cause::Link => {
+            CauseStyle { tint: "#f7e4ef", ink: "#a02c7a", marks: Marks::Cross, legend: "idle: data still on a link" }
+        }
+        Cause::Send => {
+            CauseStyle { tint: "#e6f1ee", ink: "#2f6f64", marks: Marks::Dots, legend: "idle: own send not yet arrived" }
+        }
+    }
+}
+
+/// Every cause, in the order the legend lists them.
+const CAUSES: [Cause; 6] = [Cause::Fill, Cause::Drain, Cause::Activation, Cause::Gradient, Cause::Link, Cause::Send];
+
+/// The `<pattern>` of `cause`, with id `idle-<cause>`.
+fn cause_pattern(cause: Cause) -> String {
+    let s = cause_style(cause);
+    let (tint, ink) = (s.tint, s.ink);
+    let id = cause.as_str();
+    match s.marks {
+        Marks::Lines(angle) => format!(
+            "<pattern id=\"idle-{id}\" patternUnits=\"userSpaceOnUse\" width=\"6\" height=\"6\" patternTransform=\"rotate({angle})\">\
+             <rect width=\"6\" height=\"6\" fill=\"{tint}\"/><line x1=\"0\" y1=\"0\" x2=\"0\" y2=\"6\" stroke=\"{ink}\" stroke-width=\"1.4\"/></pattern>"
+        ),
+        Marks::Cross => format!(
+            "<pattern id=\"idle-{id}\" patternUnits=\"userSpaceOnUse\" width=\"7\" height=\"7\" patternTransform=\"rotate(45)\">\
+             <rect width=\"7\" height=\"7\" fill=\"{tint}\"/><line x1=\"0\" y1=\"0\" x2=\"0\" y2=\"7\" stroke=\"{ink}\" stroke-width=\"1.1\"/>\
+             <line x1=\"0\" y1=\"0\" x2=\"7\" y2=\"0\" stroke=\"{ink}\" stroke-width=\"1.1\"/></pattern>"
+        ),
+        Marks::Dots => format!(
+            "<pattern id=\"idle-{id}\" patternUnits=\"userSpaceOnUse\" width=\"5\" height=\"5\">\
+             <rect width=\"5\" height=\"5\" fill=\"{tint}\"/><circle cx=\"2.5\" cy=\"2.5\" r=\"1.2\" fill=\"{ink}\"/></pattern>"
+        ),
+    }
+}
+
 const LANE_H: f64 = 28.0;
 const LANE_GAP: f64 = 10.0;
-/// Height of a communication lane (sends above, receives below).
-const COMM_H: f64 = 10.0;
+/// Height of a communication lane: a send row and a receive row.
+const COMM_H: f64 = 16.0;
+const COMM_ROW: f64 = 7.0;
+/// The narrowest send or receive mark, so a short transfer stays visible.
+const MIN_MARK_PX: f64 = 3.0;
 const LABEL_FONT_PX: f64 = 10.0;
+/// Average width of a character, as a fraction of the font size (sans-serif).
+const EM_PER_CHAR: f64 = 0.56;
+const TITLE_PX: f64 = 20.0;
+const TEXT_PX: f64 = 13.0;
+/// Default width: per op on the busiest device, within these bounds.
+const PX_PER_OP: f64 = 18.0;
+const DEFAULT_WIDTH_PX: (f64, f64) = (900.0, 1800.0);
 
 /// The colour of an op of `kind` on chunk `chunk` of `chunks`: later chunks lighter.
-fn bar_rgb(kind: OpKind, chunk: u32, chunks: u32) -> (u8, u8, u8) {
+fn bar_rgb(kind: OpKind, chunk: u32, chunks: u32) -> Rgb {
     let base = kind_rgb(kind);
     if chunks <= 1 {
         return base;
@@ -55,19 +142,21 @@ fn bar_rgb(kind: OpKind, chunk: u32, chunks: u32) -> (u8, u8, u8) {
     (mix(base.0), mix(base.1), mix(base.2))
 }
 
-/// What a chart shows beyond the compute bars, and its title.
+/// What a chart shows beyond the compute bars, its title and its view.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct GanttOptions {
-    /// A thin lane under each device's bars with its sends (bytes leaving)
+    /// A lane under each device's bars with its sends (bytes leaving)
     /// and receives (data in flight towards it).
     pub comm_lanes: bool,
     /// The chart's title; `None`: the first run's report title.
     pub title: Option<String>,
+    /// Width and time window.
+    pub view: View,
 }
 
 impl Default for GanttOptions {
     fn default() -> Self {
-        GanttOptions { comm_lanes: true, title: None }
+        GanttOptions { comm_lanes: true, title: None, view: View::default() }
     }
 }
 
@@ -79,10 +168,68 @@ pub struct Run<'a> {
     pub report: &'a Report,
     /// Prefix of the run's lane labels (empty for a single run).
     pub label: String,
+    /// What the run changed from its file (e.g. `with placement=spread`),
+    /// shown in its caption; empty for none.
+    pub note: String,
+    /// Devices per node on a cluster of nodes: the lanes are then grouped
+    /// by node and labelled by stage and cluster device.
+    pub devices_per_node: Option<u32>,
 }
 
-const SEND: Rgb = (0x3d, 0x48, 0x5a);
-const RECEIVE: Rgb = (0xa9, 0xb6, 0xc8);
+/// How one run's devices become lanes.
+struct Lanes {
+    /// Lane of each pipeline device, counted from the run's first lane.
+    of_device: Vec<usize>,
+    /// Label of each pipeline device.
+    label: Vec<String>,
+    /// Bands of consecutive lanes on one node: (first lane, lanes, node).
+    nodes: Vec<(usize, usize, u32)>,
+}
+
+fn lanes_of(run: &Run<'_>) -> Lanes {
+    let devices = run.trace.ops.len();
+    let cluster: Vec<u32> =
+        (0..devices).map(|d| run.report.devices.get(d).map_or(d as u32, |x| x.cluster_device)).collect();
+    let placed = run.devices_per_node.is_some() || cluster.iter().enumerate().any(|(d, &c)| c != d as u32);
+    let mut order: Vec<usize> = (0..devices).collect();
+    if run.devices_per_node.is_some() {
+        order.sort_by_key(|&d| cluster[d]);
+    }
+    let mut of_device = vec![0; devices];
+    for (lane, &d) in order.iter().enumerate() {
+        of_device[d] = lane;
+    }
+    let p = run.trace.plan.shape.stages.max(1);
+    let chunks = run.trace.plan.shape.chunks.max(1);
+    let prefix = if run.label.is_empty() { String::new() } else { format!("{}: ", run.label) };
+    let label = (0..devices)
+        .map(|d| {
+            if placed {
+                let stages: Vec<String> = (0..chunks).map(|c| (d as u32 + c * p).to_string()).collect();
+                let word = if chunks > 1 { "stages" } else { "stage" };
+                format!("{prefix}{word} {} · dev {}", stages.join("+"), cluster[d])
+            } else {
+                format!("{prefix}device {d}")
+            }
+        })
+        .collect();
+    let mut nodes = Vec::new();
+    if let Some(dpn) = run.devices_per_node.filter(|&n| n > 0) {
+        for (lane, &d) in order.iter().enumerate() {
+            let node = cluster[d] / dpn;
+            match nodes.last_mut() {
+                Some((_, n, last)) if *last == node => *n += 1,
+                _ => nodes.push((lane, 1, node)),
+            }
+        }
+    }
+    Lanes { of_device, label, nodes }
+}
+
+/// Text width in pixels, roughly, at `px` font size.
+fn text_px(text: &str, px: f64) -> f64 {
+    text.chars().count() as f64 * px * EM_PER_CHAR
+}
 
 /// Draws `runs` stacked on one shared time axis (each run's lanes below the
 /// previous run's), so their timelines compare at a glance; one run is the
@@ -90,14 +237,28 @@ const RECEIVE: Rgb = (0xa9, 0xb6, 0xc8);
 pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, ReportError> {
     let title =
         options.title.clone().unwrap_or_else(|| runs.first().map(|r| r.report.title.clone()).unwrap_or_default());
-    let title = title.as_str();
     let comm = options.comm_lanes && runs.iter().any(|r| !r.trace.transfers.is_empty());
-    let total_ops: usize = runs.iter().flat_map(|r| r.trace.ops.iter()).map(Vec::len).sum::<usize>()
-        + if comm { runs.iter().map(|r| 2 * r.trace.transfers.len()).sum::<usize>() } else { 0 };
-    if total_ops > MAX_CHART_OPS {
-        return Err(ReportError::TooLarge { ops: total_ops, limit: MAX_CHART_OPS });
+    let step_ns = runs.iter().map(|r| r.report.step_time_ns).max().unwrap_or(0).max(1);
+    let (ws, we) = options.view.span(step_ns);
+    // An interval [a, b) (from the run's start) within the window?
+    let visible = |a: u64, b: u64| b > ws && a < we || (a == b && a >= ws && a < we);
+    let mut total = 0usize;
+    let mut busiest = 0usize;
+    for r in runs {
+        let t0 = r.trace.start().as_ns();
+        for recs in &r.trace.ops {
+            let n = recs.iter().filter(|o| visible(o.start.as_ns() - t0, o.end.as_ns() - t0)).count();
+            total += n;
+            busiest = busiest.max(n);
+        }
+        if comm {
+            total += 2 * r.trace.transfers.iter().filter(|t| visible(t.start.as_ns() - t0, t.end.as_ns() - t0)).count();
+        }
     }
-    // Lane of each run's device 0.
+    if total > MAX_CHART_OPS {
+        return Err(ReportError::TooLarge { ops: total, limit: MAX_CHART_OPS });
+    }
+    let layouts: Vec<Lanes> = runs.iter().map(lanes_of).collect();
     let mut first_lane = Vec::with_capacity(runs.len());
     let mut lanes = 0usize;
     for r in runs {
@@ -105,133 +266,218 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         lanes += r.trace.ops.len().max(1);
     }
     let lanes = lanes.max(1);
-    let per_device = runs.iter().flat_map(|r| r.trace.ops.iter()).map(Vec::len).max().unwrap_or(0);
-    let width = (220 + per_device * 20).clamp(900, 12_000) as u32;
-    // Title and axis take about 110 px; each lane gets LANE_H plus a gap.
+    let grouped = layouts.iter().any(|l| !l.nodes.is_empty());
+    let longest_label = layouts.iter().flat_map(|l| l.label.iter()).map(|l| text_px(l, TEXT_PX)).fold(60.0, f64::max);
+    let node_w = if grouped { 56.0 } else { 0.0 };
+    let label_w = (longest_label + 18.0 + node_w).ceil() as u32;
+    let width = match options.view.width_px {
+        Some(w) => w,
+        None => {
+            (label_w as f64 + 60.0 + busiest as f64 * PX_PER_OP).clamp(DEFAULT_WIDTH_PX.0, DEFAULT_WIDTH_PX.1) as u32
+        }
+    };
+    let wf = width as f64;
+
+    // Title, wrapped to the width (at most three lines).
+    let title_lines = wrap(&title, ((wf - 24.0) / (TITLE_PX * EM_PER_CHAR)) as usize, 3);
+    let title_h = 14.0 + 26.0 * title_lines.len() as f64;
     let lane_total = if comm { LANE_H + COMM_H + 2.0 + LANE_GAP } else { LANE_H + LANE_GAP };
-    let chart_h = 24.0 + 110.0 + lanes as f64 * lane_total;
-    let legend_h = 50.0 + 22.0 * runs.len() as f64;
-    let height = (chart_h + legend_h).ceil() as u32;
-    let step_ns = runs.iter().map(|r| r.report.step_time_ns).max().unwrap_or(0).max(1);
-    let step_ms = step_ns as f64 / 1e6;
-    let label_w = if runs.iter().any(|r| !r.label.is_empty()) { 150 } else { 90 };
+    let plot_h = 12.0 + lanes as f64 * lane_total + 40.0 + 6.0;
+
+    // Legend entries: op kinds, idle causes present, transfers.
+    let mut legend: Vec<(String, String)> = OpKind::ALL
+        .iter()
+        .filter(|k| runs.iter().any(|r| r.trace.plan.shape.kinds().contains(k)))
+        .map(|&k| (k.as_str().to_string(), format!("fill=\"{}\"", hex(kind_rgb(k)))))
+        .collect();
+    for c in CAUSES {
+        if runs.iter().any(|r| r.report.gaps.iter().any(|g| g.cause == c)) {
+            let s = cause_style(c);
+            legend.push((s.legend.to_string(), format!("fill=\"url(#idle-{})\" stroke=\"{}\"", c.as_str(), s.ink)));
+        }
+    }
+    if comm {
+        legend.push(("send (bytes leaving)".into(), format!("fill=\"{}\"", hex(SEND))));
+        legend.push(("receive (data in flight)".into(), format!("fill=\"{}\"", hex(RECEIVE))));
+    }
+    let margin = 12.0;
+    let mut legend_pos = Vec::with_capacity(legend.len());
+    let (mut lx, mut row) = (margin, 0usize);
+    for (name, _) in &legend {
+        let w = 22.0 + text_px(name, 12.0) + 18.0;
+        if lx + w > wf - margin && lx > margin {
+            lx = margin;
+            row += 1;
+        }
+        legend_pos.push((lx, row));
+        lx += w;
+    }
+    let legend_h = 8.0 + 20.0 * (row + 1) as f64;
+
+    // Captions: one per run, then notes, wrapped.
+    let caption_chars = ((wf - 2.0 * margin) / (TEXT_PX * EM_PER_CHAR)) as usize;
+    let mut captions: Vec<String> = Vec::new();
+    for run in runs {
+        let report = run.report;
+        let chunks_note = if report.chunks > 1 {
+            format!(", {} chunks per device (later chunks lighter)", report.chunks)
+        } else {
+            String::new()
+        };
+        let caption = format!(
+            "{}step time {} · bubble {:.2}% · {} · {} stages · {} micro-batches{} · seed {}{}",
+            if run.label.is_empty() { String::new() } else { format!("{}: ", run.label) },
+            format_ns(report.step_time_ns),
+            report.bubble_fraction * 100.0,
+            report.schedule,
+            report.stages,
+            report.micro_batches,
+            chunks_note,
+            report.seed,
+            if run.note.is_empty() { String::new() } else { format!(" · {}", run.note) }
+        );
+        captions.extend(wrap(&caption, caption_chars, 4));
+    }
+    if let Some(w) = options.view.window {
+        let note =
+            format!("Showing {} to {} from the step's start (--window).", format_ns(w.start_ns), format_ns(w.end_ns));
+        captions.extend(wrap(&note, caption_chars, 2));
+    }
+    if runs.len() > 1 {
+        let shortest = runs.iter().map(|r| r.report.step_time_ns).min().unwrap_or(0).max(1);
+        if step_ns as f64 / shortest as f64 >= 1.2 {
+            let note = format!(
+                "All runs share one time axis: the longest step takes {}, the shortest {}, which ends {:.0}% of the way across.",
+                format_ns(step_ns),
+                format_ns(shortest),
+                100.0 * shortest as f64 / step_ns as f64
+            );
+            captions.extend(wrap(&note, caption_chars, 3));
+        }
+    }
+    let caption_h = 8.0 + 20.0 * captions.len() as f64;
+    let height = (title_h + plot_h + legend_h + caption_h).ceil() as u32;
 
     let mut svg = String::new();
     let (x_range, y_range) = {
         let root = SVGBackend::with_string(&mut svg, (width, height)).into_drawing_area();
         root.fill(&WHITE).map_err(draw_err)?;
-        let (upper, lower) = root.split_vertically(chart_h as u32);
+        let (_, rest) = root.split_vertically(title_h as u32);
+        let (upper, _) = rest.split_vertically(plot_h as u32);
         let mut chart = ChartBuilder::on(&upper)
-            .caption(title, ("sans-serif", 20).into_font())
-            .margin(12)
+            .margin(margin as u32)
             .x_label_area_size(40)
             .y_label_area_size(label_w)
-            .build_cartesian_2d(0f64..step_ms, 0f64..lanes as f64)
+            .build_cartesian_2d(ws as f64 / 1e6..we as f64 / 1e6, 0f64..lanes as f64)
             .map_err(draw_err)?;
         chart
             .configure_mesh()
             .disable_y_mesh()
             .y_labels(0)
             .x_desc("time (ms)")
-            .x_labels(12)
+            .x_labels(((wf - label_w as f64) / 90.0).clamp(4.0, 20.0) as usize)
             .light_line_style(RGBColor(235, 235, 235))
             .label_style(("sans-serif", 12))
             .draw()
             .map_err(draw_err)?;
         let (xr, yr) = chart.plotting_area().get_pixel_range();
-        // Lane labels, left of the plot; a rule between runs.
-        let pitch = (yr.end - yr.start) as f64 / lanes as f64;
-        for (r, run) in runs.iter().enumerate() {
-            for d in 0..run.trace.ops.len() {
-                let y = yr.start as f64 + ((first_lane[r] + d) as f64 + 0.5) * pitch;
-                let text =
-                    if run.label.is_empty() { format!("device {d}") } else { format!("{}: device {d}", run.label) };
-                let style = TextStyle::from(("sans-serif", 13).into_font()).pos(Pos::new(HPos::Right, VPos::Center));
-                root.draw(&Text::new(text, (xr.start - 8, y.round() as i32), style)).map_err(draw_err)?;
-            }
-            if r > 0 {
-                let y = (yr.start as f64 + first_lane[r] as f64 * pitch).round() as i32;
-                root.draw(&PathElement::new(vec![(xr.start - label_w + 10, y), (xr.end, y)], BLACK.mix(0.4)))
-                    .map_err(draw_err)?;
-            }
-        }
-        // Legend and captions.
-        let ly = 14;
-        let mut lx = xr.start;
-        // The kinds the runs' plans run, in kind order.
-        let mut legend: Vec<(&str, Option<Rgb>)> = OpKind::ALL
-            .iter()
-            .filter(|k| runs.iter().any(|r| r.trace.plan.shape.kinds().contains(k)))
-            .map(|&k| (k.as_str(), Some(kind_rgb(k))))
-            .collect();
-        legend.push(("idle (hover for cause)", None));
-        if comm {
-            legend.push(("send (bytes leaving)", Some(SEND)));
-            legend.push(("receive (in flight)", Some(RECEIVE)));
-        }
-        for (name, colour) in legend {
-            let swatch = [(lx, ly), (lx + 16, ly + 12)];
-            match colour {
-                Some((r, g, b)) => lower.draw(&Rectangle::new(swatch, RGBColor(r, g, b).filled())),
-                None => {
-                    lower.draw(&Rectangle::new(swatch, ShapeStyle::from(&RGBColor(0xb8, 0x47, 0x4a)).stroke_width(1)))
-                }
-            }
-            .map_err(draw_err)?;
-            let style = TextStyle::from(("sans-serif", 12).into_font()).pos(Pos::new(HPos::Left, VPos::Center));
-            lower.draw(&Text::new(name.to_string(), (lx + 22, ly + 6), style)).map_err(draw_err)?;
-            lx += 40 + 8 * name.len() as i32;
-        }
-        for (r, run) in runs.iter().enumerate() {
-            let report = run.report;
-            let chunks_note = if report.chunks > 1 {
-                format!(", {} chunks per device (later chunks lighter)", report.chunks)
-            } else {
-                String::new()
-            };
-            let caption = format!(
-                "{}step time {} · bubble {:.2}% · {} · {} stages · {} micro-batches{} · seed {}",
-                if run.label.is_empty() { String::new() } else { format!("{}: ", run.label) },
-                format_ns(report.step_time_ns),
-                report.bubble_fraction * 100.0,
-                report.schedule,
-                report.stages,
-                report.micro_batches,
-                chunks_note,
-                report.seed
-            );
-            let style = TextStyle::from(("sans-serif", 13).into_font()).pos(Pos::new(HPos::Left, VPos::Center));
-            lower.draw(&Text::new(caption, (xr.start, ly + 36 + 22 * r as i32), style)).map_err(draw_err)?;
-        }
         root.present().map_err(draw_err)?;
         ((xr.start as f64, xr.end as f64), (yr.start as f64, yr.end as f64))
     };
 
-    // Bars and idle marks, in pixel coordinates of the plotting area.
-    let px_per_ns = (x_range.1 - x_range.0) / step_ns as f64;
+    let px_per_ns = (x_range.1 - x_range.0) / (we - ws) as f64;
     let pitch = (y_range.1 - y_range.0) / lanes as f64;
     let comm_h = if comm { COMM_H * pitch / lane_total } else { 0.0 };
+    let comm_row = if comm { COMM_ROW * pitch / lane_total } else { 0.0 };
     let lane_h = pitch - LANE_GAP - if comm { comm_h + 2.0 } else { 0.0 };
     let lane_y = |lane: usize| y_range.0 + LANE_GAP / 2.0 + lane as f64 * pitch;
-    let mut body = String::with_capacity(256 * total_ops + 512);
-    body.push_str(concat!(
-        "<defs><pattern id=\"idle-hatch\" patternUnits=\"userSpaceOnUse\" width=\"6\" height=\"6\" patternTransform=\"rotate(45)\">",
-        "<rect width=\"6\" height=\"6\" fill=\"#fbeeee\"/><line x1=\"0\" y1=\"0\" x2=\"0\" y2=\"6\" stroke=\"#b8474a\" stroke-width=\"1.2\"/>",
-        "</pattern></defs>\n<g id=\"idle\">\n"
-    ));
-    for (r, run) in runs.iter().enumerate() {
-        let t0 = run.trace.start().as_ns();
-        let x_of = |ns: u64| x_range.0 + (ns.saturating_sub(t0)) as f64 * px_per_ns;
-        for g in &run.report.gaps {
-            let (x0, x1) = (x_of(g.start_ns), x_of(g.end_ns));
-            let y = lane_y(first_lane[r] + g.device as usize);
+    // The pixel span of [a, b) (from a run's start) clipped to the window.
+    let span = |a: u64, b: u64| -> Option<(f64, f64)> {
+        if !visible(a, b) {
+            return None;
+        }
+        let x = |t: u64| x_range.0 + (t.clamp(ws, we) - ws) as f64 * px_per_ns;
+        Some((x(a), x(b)))
+    };
+
+    let mut body = String::with_capacity(256 * total + 4096);
+    body.push_str("<defs>");
+    for c in CAUSES {
+        body.push_str(&cause_pattern(c));
+    }
+    body.push_str("</defs>\n<g id=\"title\" font-family=\"sans-serif\" text-anchor=\"middle\">\n");
+    for (i, line) in title_lines.iter().enumerate() {
+        let _ = writeln!(
+            body,
+            "<text x=\"{:.1}\" y=\"{:.1}\" font-size=\"{TITLE_PX}\">{}</text>",
+            wf / 2.0,
+            10.0 + 26.0 * (i as f64 + 0.75),
+            xml_escape(line)
+        );
+    }
+    body.push_str("</g>\n<g id=\"lanes\" font-family=\"sans-serif\" font-size=\"13\">\n");
+    for (r, layout) in layouts.iter().enumerate() {
+        for (i, &(first, n, node)) in layout.nodes.iter().enumerate() {
+            let y0 = y_range.0 + (first_lane[r] + first) as f64 * pitch;
+            let h = n as f64 * pitch;
             let _ = writeln!(
                 body,
-                "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"url(#idle-hatch)\" stroke=\"{IDLE_INK}\" stroke-width=\"0.5\"><title>{}idle on device {}, {} to {} ({}): {}</title></rect>",
+                "<rect x=\"{:.1}\" y=\"{y0:.2}\" width=\"{:.1}\" height=\"{h:.2}\" fill=\"{}\" fill-opacity=\"0.55\"/>",
+                margin,
+                x_range.1 - margin,
+                if i % 2 == 0 { "#e8edf4" } else { "#f6f3ea" }
+            );
+            let _ = writeln!(
+                body,
+                "<text x=\"{:.1}\" y=\"{:.2}\" font-size=\"11\" fill=\"#4a5568\" dominant-baseline=\"central\">node {node}</text>",
+                margin + 4.0,
+                y0 + h / 2.0
+            );
+        }
+        for (d, label) in layout.label.iter().enumerate() {
+            let lane = first_lane[r] + layout.of_device[d];
+            let _ = writeln!(
+                body,
+                "<text x=\"{:.1}\" y=\"{:.2}\" text-anchor=\"end\" dominant-baseline=\"central\">{}</text>",
+                x_range.0 - 8.0,
+                lane_y(lane) + lane_h / 2.0,
+                xml_escape(label)
+            );
+            if comm {
+                let _ = writeln!(
+                    body,
+                    "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"#f3f3f3\"/>",
+                    x_range.0,
+                    lane_y(lane) + lane_h + 2.0,
+                    x_range.1 - x_range.0,
+                    comm_h
+                );
+            }
+        }
+        if r > 0 {
+            let y = y_range.0 + first_lane[r] as f64 * pitch;
+            let _ = writeln!(
+                body,
+                "<line x1=\"{margin:.1}\" y1=\"{y:.2}\" x2=\"{:.1}\" y2=\"{y:.2}\" stroke=\"#000000\" stroke-opacity=\"0.4\"/>",
+                x_range.1
+            );
+        }
+    }
+    body.push_str("</g>\n<g id=\"idle\">\n");
+    for (r, run) in runs.iter().enumerate() {
+        let t0 = run.trace.start().as_ns();
+        for g in &run.report.gaps {
+            let Some((x0, x1)) = span(g.start_ns.saturating_sub(t0), g.end_ns.saturating_sub(t0)) else { continue };
+            let lane = first_lane[r] + layouts[r].of_device.get(g.device as usize).copied().unwrap_or(0);
+            let _ = writeln!(
+                body,
+                "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"url(#idle-{})\" stroke=\"{}\" stroke-width=\"0.5\"><title>{}idle on device {}, {} to {} ({}): {}</title></rect>",
                 x0,
-                y + 4.0,
+                lane_y(lane) + 3.0,
                 (x1 - x0).max(0.5),
-                lane_h - 8.0,
+                (lane_h - 6.0).max(1.0),
+                g.cause.as_str(),
+                cause_style(g.cause).ink,
                 if run.label.is_empty() { String::new() } else { format!("{}: ", xml_escape(&run.label)) },
                 g.device,
                 format_ns(g.start_ns),
@@ -245,13 +491,12 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
     for (r, run) in runs.iter().enumerate() {
         let trace = run.trace;
         let t0 = trace.start().as_ns();
-        let x_of = |ns: u64| x_range.0 + (ns.saturating_sub(t0)) as f64 * px_per_ns;
         let chunks = trace.plan.shape.chunks;
-        let p = trace.plan.shape.stages;
+        let p = trace.plan.shape.stages.max(1);
         for (d, recs) in trace.ops.iter().enumerate() {
-            let y = lane_y(first_lane[r] + d);
+            let y = lane_y(first_lane[r] + layouts[r].of_device[d]);
             for rec in recs {
-                let (x0, x1) = (x_of(rec.start.as_ns()), x_of(rec.end.as_ns()));
+                let Some((x0, x1)) = span(rec.start.as_ns() - t0, rec.end.as_ns() - t0) else { continue };
                 let w = (x1 - x0).max(0.5);
                 let rgb = bar_rgb(rec.op.kind, rec.op.stage / p, chunks);
                 let _ = write!(
@@ -292,7 +537,6 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         for (r, run) in runs.iter().enumerate() {
             let trace = run.trace;
             let t0 = trace.start().as_ns();
-            let x_of = |ns: u64| x_range.0 + (ns.saturating_sub(t0)) as f64 * px_per_ns;
             let prefix = if run.label.is_empty() { String::new() } else { format!("{}: ", xml_escape(&run.label)) };
             for t in &trace.transfers {
                 let held = t
@@ -312,20 +556,20 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
                     format_ns(t.end.as_ns()),
                     held
                 );
-                let half = comm_h / 2.0;
-                let send_y = lane_y(first_lane[r] + t.src as usize) + lane_h + 2.0;
-                let recv_y = lane_y(first_lane[r] + t.dst as usize) + lane_h + 2.0 + half;
+                let lane = |d: u32| first_lane[r] + layouts[r].of_device.get(d as usize).copied().unwrap_or(0);
+                let send_y = lane_y(lane(t.src)) + lane_h + 2.0 + (comm_h / 2.0 - comm_row) / 2.0;
+                let recv_y = lane_y(lane(t.dst)) + lane_h + 2.0 + comm_h / 2.0 + (comm_h / 2.0 - comm_row) / 2.0;
                 // Sends: bytes leaving the sender; receives: data in flight to the receiver.
                 let marks = [("send", send_y, t.sent, SEND), ("receive", recv_y, t.end, RECEIVE)];
                 for (side, y, until, colour) in marks {
-                    let (x0, x1) = (x_of(t.start.as_ns()), x_of(until.as_ns()));
+                    let Some((x0, x1)) = span(t.start.as_ns() - t0, until.as_ns() - t0) else { continue };
                     let _ = writeln!(
                         body,
                         "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{side}: {what}</title></rect>",
                         x0,
                         y,
-                        (x1 - x0).max(0.5),
-                        half,
+                        (x1 - x0).max(MIN_MARK_PX),
+                        comm_row,
                         hex(colour)
                     );
                 }
@@ -333,6 +577,30 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         }
         body.push_str("</g>\n");
     }
+    // Legend and captions.
+    let legend_y = title_h + plot_h + 6.0;
+    body.push_str("<g id=\"legend\" font-family=\"sans-serif\" font-size=\"12\">\n");
+    for ((name, fill), (x, row)) in legend.iter().zip(&legend_pos) {
+        let y = legend_y + 20.0 * *row as f64;
+        let _ = writeln!(
+            body,
+            "<rect x=\"{x:.1}\" y=\"{y:.1}\" width=\"16\" height=\"12\" {fill}/><text x=\"{:.1}\" y=\"{:.1}\" dominant-baseline=\"central\">{}</text>",
+            x + 22.0,
+            y + 6.0,
+            xml_escape(name)
+        );
+    }
+    body.push_str("</g>\n<g id=\"captions\" font-family=\"sans-serif\" font-size=\"13\">\n");
+    let caption_y = legend_y + legend_h + 4.0;
+    for (i, line) in captions.iter().enumerate() {
+        let _ = writeln!(
+            body,
+            "<text x=\"{margin:.1}\" y=\"{:.1}\" dominant-baseline=\"central\">{}</text>",
+            caption_y + 20.0 * i as f64 + 6.0,
+            xml_escape(line)
+        );
+    }
+    body.push_str("</g>\n");
     let Some(pos) = svg.rfind("</svg>") else {
         return Err(ReportError::Draw("the SVG backend produced no closing tag".into()));
     };
@@ -344,6 +612,12 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
 mod tests {
     use super::*;
 
+    /// Euclidean distance between two colours.
+    fn distance(a: Rgb, b: Rgb) -> f64 {
+        let d = |x: u8, y: u8| (x as f64 - y as f64).powi(2);
+        (d(a.0, b.0) + d(a.1, b.1) + d(a.2, b.2)).sqrt()
+    }
+
     #[test]
     fn later_chunks_are_lighter_and_ink_contrasts() {
         let a = bar_rgb(OpKind::Forward, 0, 2);
@@ -351,5 +625,41 @@ mod tests {
         assert!(b.0 > a.0 && b.1 > a.1 && b.2 > a.2);
         assert_eq!(ink_on(FORWARD), "#ffffff");
         assert_eq!(ink_on((250, 250, 250)), "#1a1a1a");
+    }
+
+    #[test]
+    fn receives_look_like_no_chunk_shade() {
+        // Every shade of every kind for up to 8 chunks stays far from the
+        // receive and send colours (100 is about a clearly different hue).
+        for kind in OpKind::ALL {
+            for chunks in 1..=8 {
+                for c in 0..chunks {
+                    let shade = bar_rgb(kind, c, chunks);
+                    assert!(distance(shade, RECEIVE) > 100.0, "{kind:?} {c}/{chunks}: {shade:?}");
+                    assert!(distance(shade, SEND) > 80.0, "{kind:?} {c}/{chunks}: {shade:?}");
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn every_cause_has_its_own_look() {
+        let looks: Vec<String> = CAUSES
+            .iter()
+            .map(|&c| {
+                let s = cause_style(c);
+                let marks = match s.marks {
+                    Marks::Lines(a) => format!("lines {a}"),
+                    Marks::Cross => "cross".into(),
+                    Marks::Dots => "dots".into(),
+                };
+                format!("{} {} {marks}", s.tint, s.ink)
+            })
+            .collect();
+        for (i, a) in looks.iter().enumerate() {
+            for b in &looks[i + 1..] {
+                assert_ne!(a, b);
+            }
+        }
     }
 }

@@ -8,7 +8,7 @@
 use baton_executor::Trace;
 use plotters::prelude::*;
 
-use super::{draw_err, MAX_CHART_OPS};
+use super::{draw_err, View, MAX_CHART_OPS};
 use crate::{activation_timeline, format_bytes, MemoryInputs, Report, ReportError};
 
 const STATE: RGBColor = RGBColor(0x7a, 0x86, 0x99);
@@ -27,15 +27,20 @@ pub struct MemoryRun<'a> {
 }
 
 /// How the memory chart is drawn.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[derive(Clone, Debug, PartialEq, Eq)]
 pub struct MemoryOptions {
     /// Height of each device's panel in pixels.
     pub panel_px: u32,
+    /// Width and time window.
+    pub view: View,
+    /// What the run changed from its file (e.g. `with placement=spread`),
+    /// shown under the legend; empty for none.
+    pub note: String,
 }
 
 impl Default for MemoryOptions {
     fn default() -> Self {
-        MemoryOptions { panel_px: 150 }
+        MemoryOptions { panel_px: 150, view: View::default(), note: String::new() }
     }
 }
 
@@ -48,10 +53,14 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
     }
     let lanes = trace.ops.len().max(1);
     let panel_h = options.panel_px;
-    let (width, height) = (1100u32, 60 + panel_h * lanes as u32 + 60);
+    let noted = !options.note.is_empty() || options.view.window.is_some();
+    let (width, height) =
+        (options.view.width_px.unwrap_or(1100), 60 + panel_h * lanes as u32 + if noted { 80 } else { 60 });
     let t0 = trace.start().as_ns();
-    let step_ms = (report.step_time_ns.max(1)) as f64 / 1e6;
-    let ms_at = |t: u64| t.saturating_sub(t0) as f64 / 1e6;
+    let (ws, we) = options.view.span(report.step_time_ns);
+    let (start_ms, end_ms) = (ws as f64 / 1e6, we as f64 / 1e6);
+    // Times outside the window are drawn at its edge.
+    let ms_at = |t: u64| (t.saturating_sub(t0) as f64 / 1e6).clamp(start_ms, end_ms);
     let reserved = memory.reserved_bytes;
 
     // One vertical scale for every panel, so devices compare at a glance.
@@ -82,7 +91,7 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
                 .margin(6)
                 .x_label_area_size(if d + 1 == lanes { 32 } else { 14 })
                 .y_label_area_size(70)
-                .build_cartesian_2d(0f64..step_ms, 0f64..y_max)
+                .build_cartesian_2d(start_ms..end_ms, 0f64..y_max)
                 .map_err(draw_err)?;
             let mut mesh = chart.configure_mesh();
             mesh.y_desc("GiB")
@@ -97,21 +106,21 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
             }
             mesh.draw().map_err(draw_err)?;
             chart
-                .draw_series(std::iter::once(Rectangle::new([(0.0, 0.0), (step_ms, base)], STATE.filled())))
+                .draw_series(std::iter::once(Rectangle::new([(start_ms, 0.0), (end_ms, base)], STATE.filled())))
                 .map_err(draw_err)?;
             if !memory.stash_bytes.is_empty() {
                 let timeline = activation_timeline(trace, &memory.stash_bytes, d);
                 let mut points = Vec::with_capacity(2 * timeline.len() + 2);
                 let mut level = base;
-                points.push((0.0, base));
+                points.push((start_ms, base));
                 for (t, held) in timeline {
                     let x = ms_at(t.as_ns());
                     points.push((x, level));
                     level = base + held as f64 / GIB;
                     points.push((x, level));
                 }
-                points.push((step_ms, level));
-                points.push((step_ms, base));
+                points.push((end_ms, level));
+                points.push((end_ms, base));
                 chart
                     .draw_series(std::iter::once(Polygon::new(points, ACTIVATIONS.mix(0.85).filled())))
                     .map_err(draw_err)?;
@@ -119,7 +128,12 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
             if let Some(c) = dev.memory_capacity_bytes {
                 let y = c as f64 / GIB;
                 chart
-                    .draw_series(DashedLineSeries::new(vec![(0.0, y), (step_ms, y)], 8, 5, CAPACITY.stroke_width(2)))
+                    .draw_series(DashedLineSeries::new(
+                        vec![(start_ms, y), (end_ms, y)],
+                        8,
+                        5,
+                        CAPACITY.stroke_width(2),
+                    ))
                     .map_err(draw_err)?;
             }
         }
@@ -130,6 +144,20 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
             footer.draw(&Rectangle::new([(x, 20), (x + 16, 32)], colour.filled())).map_err(draw_err)?;
             footer.draw(&Text::new(name.to_string(), (x + 22, 20), ("sans-serif", 12))).map_err(draw_err)?;
             x += 60 + 8 * name.len() as i32;
+        }
+        let mut notes = Vec::new();
+        if !options.note.is_empty() {
+            notes.push(options.note.clone());
+        }
+        if let Some(w) = options.view.window {
+            notes.push(format!(
+                "showing {} to {} from the step's start",
+                baton_engine::format_ns(w.start_ns),
+                baton_engine::format_ns(w.end_ns)
+            ));
+        }
+        if !notes.is_empty() {
+            footer.draw(&Text::new(notes.join(" · "), (80, 46), ("sans-serif", 12))).map_err(draw_err)?;
         }
         root.present().map_err(draw_err)?;
     }
