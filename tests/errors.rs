@@ -239,9 +239,16 @@ fn merge_refuses_missing_repeated_and_foreign_parts() {
     let out = baton(&["merge", &a1, &a2, &a3, "--csv", &merged]);
     assert_eq!(out.status.code(), Some(2));
     assert!(!Path::new(&merged).exists());
-    // The parts are plain CSV: one header row, the identifying columns last.
+    // The parts are plain CSV: one header row, the identifying columns last,
+    // every row as long as the header (as a spreadsheet or pandas reads it).
     let header = std::fs::read_to_string(&a1).unwrap().lines().next().unwrap().to_string();
     assert!(header.ends_with(",point,grid,grid_points,shard"), "{header}");
+    let mut reader = csv::Reader::from_path(&a1).unwrap();
+    let width = reader.headers().unwrap().len();
+    let rows: Vec<csv::StringRecord> = reader.records().map(Result::unwrap).collect();
+    assert!(!rows.is_empty() && rows.iter().all(|r| r.len() == width));
+    // 2..16*2 is 2, 4, 8, 16: four points.
+    assert!(rows.iter().all(|r| &r[width - 1] == "1/3" && &r[width - 2] == "4"), "shard 1/3 of 4 points");
 }
 
 #[test]
