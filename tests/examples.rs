@@ -50,21 +50,10 @@ fn joined<'a>(lines: impl Iterator<Item = &'a str>) -> Vec<String> {
 fn comment_examples(yaml: &str) -> Vec<String> {
     let comment: Vec<&str> = yaml.lines().take_while(|l| l.starts_with('#')).map(|l| &l[1..]).collect();
     let mut out = Vec::new();
-    let mut lines = comment.iter().peekable();
+    let mut lines = comment.iter();
     while let Some(line) = lines.next() {
         if line.trim_start().starts_with("baton ") {
-            let mut block = vec![*line];
-            let mut last = *line;
-            while last.trim_end().ends_with('\\') {
-                match lines.next() {
-                    Some(next) => {
-                        block.push(next);
-                        last = next;
-                    }
-                    None => break,
-                }
-            }
-            out.extend(joined(block.into_iter()));
+            out.push(command_from(line, &mut lines.by_ref().copied()));
         }
     }
     for quoted in comment.join(" ").split('`').skip(1).step_by(2) {
@@ -97,20 +86,22 @@ fn readme_examples(readme: &str) -> Vec<String> {
         } else {
             continue;
         };
-        let mut block = vec![command];
-        let mut last = command;
-        while last.trim_end().ends_with('\\') {
-            match lines.next() {
-                Some(next) => {
-                    block.push(next);
-                    last = next;
-                }
-                None => break,
-            }
-        }
-        out.extend(joined(block.into_iter()));
+        out.push(command_from(command, &mut lines));
     }
     out
+}
+
+/// The command that starts at `first`, taking continuation lines (after a
+/// line ending in `\\`) from `rest`, joined into one line.
+fn command_from<'a>(first: &'a str, rest: &mut impl Iterator<Item = &'a str>) -> String {
+    let mut block = vec![first];
+    while block.last().is_some_and(|l| l.trim_end().ends_with('\\')) {
+        match rest.next() {
+            Some(next) => block.push(next),
+            None => break,
+        }
+    }
+    joined(block.into_iter()).concat()
 }
 
 /// A scratch directory holding copies of the scenario directories.
