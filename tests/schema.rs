@@ -146,3 +146,100 @@ fn the_committed_schema_is_current() {
         .expect("docs/scenario.schema.json");
     assert_eq!(committed, text(&baton(&["schema"]).stdout));
 }
+
+/// A random scenario text drawing on every section and optional key.
+fn random_scenario() -> impl proptest::strategy::Strategy<Value = String> {
+    use proptest::prelude::*;
+    let unit_space = prop_oneof![Just(""), Just(" ")];
+    let layer = (1u32..50, proptest::option::of(0u32..100), 0u32..64, any::<bool>(), 1u32..4, unit_space.clone())
+        .prop_map(|(f, b, a, named, repeat, sp)| {
+            let mut l = format!("{{ forward: {f}{sp}ms, activation: {a}{sp}MiB, repeat: {repeat}");
+            if let Some(b) = b {
+                l += &format!(", backward: {b}.5{sp}ms");
+            }
+            if named {
+                l += ", name: block, params: 350M, stash: 2MiB, tied_params: 12";
+            }
+            l + " }"
+        });
+    let layers =
+        proptest::collection::vec(layer, 1..4).prop_map(|ls| format!("  layers:\n    - {}\n", ls.join("\n    - ")));
+    let transformer = (
+        1u32..6,
+        prop_oneof![Just(1024u32), Just(2048)],
+        proptest::option::of(prop_oneof![Just(1u32), Just(4), Just(16)]),
+        any::<bool>(),
+        any::<bool>(),
+        any::<bool>(),
+        proptest::option::of(1u32..5),
+    )
+        .prop_map(|(l, h, kv, gated, flash, untied, bpv)| {
+            let mut t = format!("  transformer: {{ layers: {l}, hidden: {h}, heads: 16, seq_len: 512, vocab: 1000");
+            if let Some(k) = kv {
+                t += &format!(", kv_heads: {k}");
+            }
+            if gated {
+                t += ", gated_ffn: true, ffn_hidden: 2816";
+            }
+            if flash {
+                t += ", attention: flash";
+            }
+            if untied {
+                t += ", tied_embeddings: false";
+            }
+            if let Some(b) = bpv {
+                t += &format!(", bytes_per_value: {b}");
+            }
+            t + " }\n"
+        });
+    let model = prop_oneof![layers, transformer];
+    let cluster = prop_oneof![
+        (1u32..9).prop_map(|d| (d, format!("  devices: {d}\n  link: {{ latency: 5us, bandwidth: 25 GB/s }}\n"))),
+        (1u32..3, 1u32..5).prop_map(|(n, d)| (
+            n * d,
+            format!(
+                "  nodes: {n}\n  devices_per_node: {d}\n  device_link: {{ latency: 1us, bandwidth: 100GB/s }}\n  node_link: {{ latency: 3us, bandwidth: 200Gbit/s, count: 2 }}\n"
+            )
+        )),
+    ];
+    (model, cluster, 0usize..3, 1u32..9, any::<bool>(), any::<bool>(), any::<bool>()).prop_map(
+        |(model, (devices, cluster), k, m, device, training, spread)| {
+            let schedule = ["fill-drain", "1f1b", "interleaved"][k];
+            let stages = devices.min(2);
+            let mut text = format!("title: random\nseed: 7\nmodel:\n{model}cluster:\n{cluster}");
+            if device {
+                text += "  device: { peak: 300TFLOP/s, efficiency: 0.5, memory: 80GiB }\n  jitter: 0.1\n";
+            } else {
+                text += "  device: { peak: 300 TFLOP/s, efficiency: 1 }\n";
+            }
+            text += &format!(
+                "pipeline:\n  stages: {stages}\n  split: even\n  micro_batches: {}\n  schedule: {schedule}\n  chunks: 1\n  micro_batch_size: 1\n  blocking_sends: {device}\n",
+                m * stages
+            );
+            if training {
+                text += "training: { state_bytes_per_param: 12, reserved: 1.5GiB, recompute: full }\n";
+            }
+            if spread {
+                text += "placement: spread\n";
+            }
+            text
+        },
+    )
+}
+
+proptest::proptest! {
+    #![proptest_config(proptest::prelude::ProptestConfig { cases: 200, ..Default::default() })]
+
+    /// Whatever the reader accepts, the schema accepts: an editor never
+    /// flags a scenario that runs.
+    #[test]
+    fn the_schema_accepts_every_scenario_the_reader_accepts(text in random_scenario()) {
+        thread_local!(static VALIDATOR: jsonschema::Validator = validator());
+        // (About 95% of these cases are valid; the rest have fewer layers than stages.)
+        if baton::scenario::parse(&text, "r.yaml", "r", &[]).is_ok() {
+            let doc = as_json(&text);
+            let errs = VALIDATOR.with(|v| errors(v, &doc));
+            proptest::prop_assert!(errs.is_empty(), "{text}\n{errs:?}");
+        }
+    }
+}

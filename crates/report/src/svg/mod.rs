@@ -139,4 +139,26 @@ mod tests {
         assert_eq!(wrap("a b c d e f g h i j", 8, 1), ["a b c d…"]);
         assert_eq!(wrap("", 10, 2), Vec::<String>::new());
     }
+
+    proptest::proptest! {
+        /// No line is longer than asked, there are never more lines than
+        /// asked, and when nothing is cut the words come back in order.
+        #[test]
+        fn wrapped_lines_fit_and_keep_the_words(
+            words in proptest::collection::vec("[a-z]{1,14}", 0..30),
+            max in 8usize..40,
+            lines in 1usize..6,
+        ) {
+            let text = words.join(" ");
+            let out = wrap(&text, max, lines);
+            proptest::prop_assert!(out.len() <= lines);
+            for l in &out {
+                proptest::prop_assert!(l.chars().count() <= max, "{l:?}");
+            }
+            if !out.last().is_some_and(|l| l.ends_with('…')) {
+                proptest::prop_assert_eq!(out.join(" ").split(' ').filter(|w| !w.is_empty()).count(),
+                    words.iter().map(|w| w.chars().count().div_ceil(max)).sum::<usize>());
+            }
+        }
+    }
 }
