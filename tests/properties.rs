@@ -103,6 +103,7 @@ proptest! {
                     OpKind::Forward => e.0 = e.0.min(r.start.as_ns()),
                     OpKind::Backward => e.1 = e.1.max(r.end.as_ns()),
                     OpKind::Weight => prop_assert!(false, "these schedules fuse the backward pass"),
+                    OpKind::Encode | OpKind::Update => prop_assert!(false, "no synchronisation here"),
                 }
             }
             let spans: Vec<(u64, u64)> = held.into_values().collect();

@@ -10,7 +10,10 @@
 //!
 //! Dependencies are derived, not written per algorithm: a transfer sent by a
 //! participant in round `r` depends on every transfer that participant
-//! received in an earlier round carrying any of the same chunks. The data
+//! received in an earlier round carrying any of the same chunks. The one
+//! ordering that is not about data: a binomial tree's parent sends to its
+//! children one after another, the largest subtree first (otherwise the
+//! broadcast would not take its lg g rounds). The data
 //! sent is the participant's own contribution plus what those transfers
 //! brought, so [`Graph::verify`] can replay the contents and check that the
 //! collective delivers what it promises (every member ends with every chunk
@@ -268,7 +271,9 @@ impl Graph {
                         return Err(format!("transfer {t} depends on a later transfer {d}"));
                     }
                     if self.transfers[d].to != tr.from {
-                        return Err(format!("transfer {t} depends on transfer {d}, which its sender did not receive"));
+                        // An ordering constraint between two sends of one
+                        // participant: it carries nothing to this one.
+                        continue;
                     }
                     if let Some(k) = self.chunks_of(d).iter().position(|&x| x == c) {
                         for (a, b) in v.iter_mut().zip(&content[d][k]) {
@@ -364,11 +369,18 @@ impl Builder {
 
     /// A transfer of `chunks` from `from` to `to` in the current round.
     fn send(&mut self, from: u32, to: u32, chunks: impl IntoIterator<Item = u32>) {
+        self.send_after(from, to, chunks, None);
+    }
+
+    /// [`Builder::send`], also waiting for transfer `after` (a send of the
+    /// same participant that must arrive first).
+    fn send_after(&mut self, from: u32, to: u32, chunks: impl IntoIterator<Item = u32>, after: Option<u32>) {
         if from == to {
             return;
         }
         let t = self.transfers.len() as u32;
         self.scratch.clear();
+        self.scratch.extend(after);
         let mut bytes = 0;
         let start = self.chunks.len();
         for c in chunks {
@@ -608,17 +620,22 @@ fn tree(goal: Goal, g: u32, bytes: u64) -> Graph {
         }
         span *= 2;
     }
+    // A parent sends to its children one after another, the largest subtree
+    // first: the binomial tree's rounds (one message at a time per sender).
+    let mut previous: Vec<Option<u32>> = vec![None; g as usize];
     while span > 1 {
         span /= 2;
         b.next_round();
         let mut i = 0;
         while i + span < g {
             let child = i + span;
+            let after = previous[i as usize];
+            previous[i as usize] = Some(b.transfers.len() as u32);
             if gather {
                 let keep = subtree(child, span);
-                b.send(i, child, (0..g).filter(|c| !keep.contains(c)));
+                b.send_after(i, child, (0..g).filter(|c| !keep.contains(c)), after);
             } else {
-                b.send(i, child, 0..1);
+                b.send_after(i, child, 0..1, after);
             }
             i += 2 * span;
         }

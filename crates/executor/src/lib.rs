@@ -21,16 +21,27 @@
 //! [`Deadline::Network`] there. A new source of deadlines (a collective, an
 //! optimizer phase) adds a variant to [`Deadline`].
 //!
+//! With data parallelism ([`SyncConfig`]) the plan runs on every replica at
+//! once (worker `r * p + d` is replica `r`'s pipeline device `d`, topology
+//! device `r * p + d`), and each group of devices holding the same piece sums
+//! its gradients bucket by bucket with a collective from `baton-collective`,
+//! played transfer by transfer on the same network (see the `sync` module).
+//!
 //! The result is a [`Trace`]: when every operation and transfer started and
 //! ended. Statistics and charts are made from it elsewhere.
 //!
 //! It deliberately knows nothing about scenario files, units or reports.
 #![warn(missing_docs)]
 
+use std::collections::VecDeque;
+
 use baton_engine::{Fired, Model, Scheduler, SimDuration, SimTime};
 use baton_link::{LinkStats, Network, Topology, TransferId};
 use baton_schedule::{validate, Edge, Flow, Op, OpKind, Plan, ScheduleError, Shape};
 use thiserror::Error;
+
+mod sync;
+pub use sync::{BucketSpec, CollectiveRecord, Compression, Phase, SyncConfig, SyncTransferRecord, TiedSpec};
 
 /// Time and data of one virtual stage, per micro-batch.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -59,6 +70,7 @@ impl StageCost {
             OpKind::Forward => self.forward,
             OpKind::Backward => self.backward,
             OpKind::Weight => self.weight,
+            OpKind::Encode | OpKind::Update => SimDuration::ZERO,
         }
     }
 }
@@ -158,9 +170,23 @@ pub struct Trace {
     pub events: u64,
     /// Whether sends blocked the sender until delivered.
     pub blocking_sends: bool,
-    // Per `Shape::op_index`: (device, index in ops[device]).
+    /// Data-parallel replicas of the pipeline (1: one pipeline). Worker
+    /// `r * p + d` of `ops` is replica `r`'s pipeline device `d`.
+    pub replicas: u32,
+    /// Gradient collectives, in the order they started.
+    pub collectives: Vec<CollectiveRecord>,
+    /// The point-to-point transfers of the collectives, in the order they
+    /// started.
+    pub sync_transfers: Vec<SyncTransferRecord>,
+    /// When each worker's step ended: its last op, its last collective and
+    /// its update.
+    pub device_end: Vec<SimTime>,
+    /// Per worker: the collective that ended last among those it took part
+    /// in, if any.
+    pub last_collective: Vec<Option<u32>>,
+    // Per replica and `Shape::op_index`: (worker, index in ops[worker]).
     op_index: Vec<(u32, u32)>,
-    // Per `Shape::op_index` of the producer: index in transfers, or NONE.
+    // Per replica and `Shape::op_index` of the producer: index in transfers, or NONE.
     transfer_index: Vec<u32>,
 }
 
@@ -172,9 +198,16 @@ impl Trace {
         self.ops.iter().filter_map(|o| o.first()).map(|r| r.start).min().unwrap_or(SimTime::ZERO)
     }
 
-    /// Last operation end.
+    /// The step's end: the last operation end, or a later end of a
+    /// device's synchronisation.
     pub fn end(&self) -> SimTime {
-        self.ops.iter().filter_map(|o| o.last()).map(|r| r.end).max().unwrap_or(SimTime::ZERO)
+        let ops = self.ops.iter().filter_map(|o| o.last()).map(|r| r.end).max().unwrap_or(SimTime::ZERO);
+        self.device_end.iter().copied().max().map_or(ops, |e| e.max(ops))
+    }
+
+    /// Pipeline devices per replica.
+    pub fn stages(&self) -> u32 {
+        self.plan.shape.stages
     }
 
     /// Step time: last operation end minus first operation start.
@@ -182,29 +215,53 @@ impl Trace {
         self.end().saturating_since(self.start())
     }
 
-    /// The record of `op`, with the device it ran on.
+    /// The record of replica 0's `op`, with the worker it ran on.
     pub fn record(&self, op: Op) -> (u32, &OpRecord) {
-        let (d, i) = self.op_index[self.plan.shape.op_index(op)];
+        self.record_in(0, op)
+    }
+
+    /// The record of replica `replica`'s `op`, with the worker it ran on.
+    pub fn record_in(&self, replica: u32, op: Op) -> (u32, &OpRecord) {
+        let (d, i) = self.op_index[self.slot(replica, op)];
         (d, &self.ops[d as usize][i as usize])
     }
 
-    /// The transfer that carried `op`'s output to another device, if any.
+    fn slot(&self, replica: u32, op: Op) -> usize {
+        replica as usize * self.plan.shape.op_slots() + self.plan.shape.op_index(op)
+    }
+
+    /// The transfer that carried replica 0's `op`'s output to another
+    /// device, if any.
     pub fn outgoing(&self, op: Op) -> Option<&TransferRecord> {
-        let t = self.transfer_index[self.plan.shape.op_index(op)];
+        self.outgoing_in(0, op)
+    }
+
+    /// The transfer that carried replica `replica`'s `op`'s output to
+    /// another device, if any.
+    pub fn outgoing_in(&self, replica: u32, op: Op) -> Option<&TransferRecord> {
+        if op.kind.is_device_work() {
+            return None;
+        }
+        let t = self.transfer_index[self.slot(replica, op)];
         (t != NONE).then(|| &self.transfers[t as usize])
     }
 
-    /// The data from another stage that `op` waited for longest: of its
-    /// inputs that cross a stage boundary, the one available last (`None`
-    /// when it has none).
+    /// The data from another stage that replica 0's `op` waited for longest.
     pub fn dependency(&self, op: Op) -> Option<Dependency> {
+        self.dependency_in(0, op)
+    }
+
+    /// The data from another stage that replica `replica`'s `op` waited for
+    /// longest: of its inputs that cross a stage boundary, the one available
+    /// last (`None` when it has none).
+    pub fn dependency_in(&self, replica: u32, op: Op) -> Option<Dependency> {
         let shape = &self.plan.shape;
         let mut latest: Option<Dependency> = None;
         op.each_input(shape, |input| {
             if !input.flow.crosses_stages() {
                 return;
             }
-            let k = shape.op_index(input.op);
+            let k = self.slot(replica, input.op);
             let (producer_device, i) = self.op_index[k];
             let produced_at = self.ops[producer_device as usize][i as usize].end;
             let t = self.transfer_index[k];
@@ -239,14 +296,21 @@ pub enum ExecError {
         /// Virtual stages.
         expected: usize,
     },
-    /// The topology joins fewer devices than the pipeline has.
-    #[error("the topology joins {devices} devices, but the pipeline has {stages} stages")]
+    /// The topology joins fewer devices than the step uses.
+    #[error("the topology joins {devices} devices, but the step uses {stages}")]
     TopologyDevices {
         /// Devices in the topology.
         devices: u32,
-        /// Pipeline stages.
+        /// Devices the step uses (pipeline stages x replicas, plus dedicated
+        /// servers).
         stages: u32,
     },
+    /// The synchronisation settings do not fit the plan.
+    #[error("gradient synchronisation: {0}")]
+    Sync(String),
+    /// A collective cannot be built for its group.
+    #[error("gradient synchronisation: {0}")]
+    Collective(#[from] baton_collective::CollectiveError),
     /// The compute-time jitter is out of range.
     #[error("jitter must be at least 0 and below 1, found {0}")]
     Jitter(f64),
@@ -268,6 +332,15 @@ pub enum Event {
     OpDone(u32),
     /// The transfer at this index of the trace has arrived.
     Arrival(u32),
+    /// The collective transfer at this index of the trace has arrived.
+    SyncArrival(u32),
+    /// A gradient bucket (global bucket index) has become final on a worker.
+    BucketReady {
+        /// The worker.
+        worker: u32,
+        /// The bucket, numbered across pieces.
+        bucket: u32,
+    },
 }
 
 /// The executor's movable deadlines, one per source that needs one.
@@ -277,6 +350,10 @@ pub enum Deadline {
     Network,
 }
 
+/// Marks an in-flight network transfer as a collective's (its index in
+/// `sync_transfers`) rather than the pipeline's.
+const SYNC_BIT: u32 = 1 << 31;
+
 /// The data crossing between devices: the link network and the records of
 /// what it carried.
 struct Transfers {
@@ -284,22 +361,24 @@ struct Transfers {
     /// When the network's deadline is set for (as last told by settle).
     deadline: Option<SimTime>,
     records: Vec<TransferRecord>,
-    /// Per `Shape::op_index` of the producer: index in `records`, or NONE.
+    /// Per replica and `Shape::op_index` of the producer: index in
+    /// `records`, or NONE.
     index: Vec<u32>,
-    /// Per network transfer id: index in `records`.
+    /// Per network transfer id: index in `records`, or in the collectives'
+    /// transfers with [`SYNC_BIT`] set.
     in_flight: Vec<u32>,
     blocking_sends: bool,
-    /// Per device: sends not yet delivered (only counted when sends block).
+    /// Per worker: sends not yet delivered (only counted when sends block).
     pending_sends: Vec<u32>,
     /// Scratch list of transfers whose last byte has left.
     due: Vec<TransferId>,
 }
 
 impl Transfers {
-    /// Hands `out`'s data from `producer` (on device `src`) to its consumer on
-    /// device `dst`, at `now`: a transfer of the boundary's bytes.
+    /// Hands `out`'s data from `producer` (on worker `src`) to its consumer on
+    /// worker `dst`, at `now`: a transfer of the boundary's bytes.
     #[allow(clippy::too_many_arguments)]
-    fn send(&mut self, now: SimTime, shape: &Shape, costs: &[StageCost], producer: Op, out: Edge, src: u32, dst: u32) {
+    fn send(&mut self, now: SimTime, slot: usize, costs: &[StageCost], producer: Op, out: Edge, src: u32, dst: u32) {
         let boundary = producer.stage.min(out.op.stage);
         let bytes = costs[boundary as usize].send_bytes;
         let rec = self.records.len() as u32;
@@ -318,16 +397,29 @@ impl Transfers {
             end: now,
             bottleneck: None,
         });
-        self.index[shape.op_index(producer)] = rec;
+        self.index[slot] = rec;
         if self.blocking_sends {
             self.pending_sends[src as usize] += 1;
         }
+        self.start(now, src, dst, bytes, rec);
+    }
+
+    /// Starts `bytes` from `src` to `dst` on the network, remembering `tag`.
+    fn start(&mut self, now: SimTime, src: u32, dst: u32, bytes: u64, tag: u32) {
         let t = self.net.start(now, src, dst, bytes).0 as usize;
         if self.in_flight.len() <= t {
             self.in_flight.resize(t + 1, NONE);
         }
-        self.in_flight[t] = rec;
+        self.in_flight[t] = tag;
     }
+}
+
+/// Device work outside the plan waiting for its device, and what follows it.
+#[derive(Clone, Copy, Debug)]
+struct Work {
+    op: Op,
+    duration: SimDuration,
+    then: sync::Then,
 }
 
 struct Executor<'a> {
@@ -335,35 +427,101 @@ struct Executor<'a> {
     /// The plan's shape, kept by value for the inner loop.
     shape: Shape,
     costs: &'a [StageCost],
+    /// Pipeline devices per replica.
+    p: usize,
+    /// Dense op slots per replica.
+    slots: usize,
     next: Vec<usize>,
     busy: Vec<bool>,
-    /// Per `Shape::op_index`: inputs not yet satisfied.
+    /// Per replica and `Shape::op_index`: inputs not yet satisfied.
     waiting: Vec<u8>,
     ops: Vec<Vec<OpRecord>>,
     transfers: Transfers,
-    /// Per device and op: the factor its compute time is scaled by.
+    /// Per worker and op: the factor its compute time is scaled by.
     jitter: Option<Vec<Vec<f64>>>,
+    /// Per worker: device work queued ahead of its next plan op.
+    work: Vec<VecDeque<Work>>,
+    /// Per worker: what follows the device work it is running, if any.
+    running_work: Vec<Option<sync::Then>>,
+    /// Per worker: when its step ended so far.
+    device_end: Vec<SimTime>,
+    sync: Option<sync::State>,
 }
 
 type Sched = Scheduler<Event, Deadline>;
 
 impl Executor<'_> {
-    fn try_start(&mut self, d: usize, sched: &mut Sched) {
-        if self.busy[d] || self.transfers.pending_sends[d] > 0 {
+    fn try_start(&mut self, w: usize, sched: &mut Sched) {
+        if self.busy[w] || self.transfers.pending_sends[w] > 0 {
             return;
         }
-        let Some(&op) = self.plan.per_device[d].get(self.next[d]) else { return };
-        if self.waiting[self.shape.op_index(op)] != 0 {
+        let now = sched.now();
+        if let Some(work) = self.work[w].pop_front() {
+            self.busy[w] = true;
+            self.running_work[w] = Some(work.then);
+            self.ops[w].push(OpRecord { op: work.op, start: now, end: now + work.duration });
+            sched.schedule(now + work.duration, Event::OpDone(w as u32));
+            return;
+        }
+        let (r, d) = (w / self.p, w % self.p);
+        let Some(&op) = self.plan.per_device[d].get(self.next[w]) else { return };
+        if self.waiting[r * self.slots + self.shape.op_index(op)] != 0 {
             return;
         }
         let mut dur = self.costs[op.stage as usize].time(op.kind);
         if let Some(factors) = &self.jitter {
-            dur = SimDuration((dur.as_ns() as f64 * factors[d][self.next[d]]).round() as u64);
+            dur = SimDuration((dur.as_ns() as f64 * factors[w][self.next[w]]).round() as u64);
         }
-        self.busy[d] = true;
+        self.busy[w] = true;
+        self.ops[w].push(OpRecord { op, start: now, end: now + dur });
+        sched.schedule(now + dur, Event::OpDone(w as u32));
+        if self.sync.is_some() {
+            self.sync_op_started(w, self.next[w], now, dur, sched);
+        }
+    }
+
+    fn op_done(&mut self, w: usize, sched: &mut Sched) {
+        let shape = self.shape;
         let now = sched.now();
-        self.ops[d].push(OpRecord { op, start: now, end: now + dur });
-        sched.schedule(now + dur, Event::OpDone(d as u32));
+        self.busy[w] = false;
+        self.device_end[w] = self.device_end[w].max(now);
+        if let Some(then) = self.running_work[w].take() {
+            self.work_done(w, then, sched);
+            self.try_start(w, sched);
+            return;
+        }
+        let (r, d) = (w / self.p, w % self.p);
+        let index = self.next[w];
+        let op = self.plan.per_device[d][index];
+        self.next[w] += 1;
+        let base = r * self.slots;
+        // Outputs on this device are satisfied now; the others are
+        // sent, in output order (two fit without allocating).
+        let (mut near, mut far) = ([None; 2], Vec::new());
+        let mut n = 0;
+        let waiting = &mut self.waiting;
+        op.each_output(&shape, |out| {
+            // Within a stage nothing moves; across stages, only to
+            // another device.
+            let to = if out.flow.crosses_stages() { shape.device_of(out.op.stage) as usize } else { d };
+            if to == d {
+                waiting[base + shape.op_index(out.op)] -= 1;
+            } else if n < near.len() {
+                near[n] = Some((out, to));
+                n += 1;
+            } else {
+                far.push((out, to));
+            }
+        });
+        let slot = base + shape.op_index(op);
+        let first = r * self.p;
+        for (out, to) in near.into_iter().flatten().chain(far) {
+            self.transfers.send(now, slot, self.costs, op, out, w as u32, (first + to) as u32);
+        }
+        if self.sync.is_some() {
+            self.sync_op_done(w, index, sched);
+        }
+        self.try_start(w, sched);
     }
 }
 
@@ -374,35 +532,7 @@ impl Model for Executor<'_> {
     fn handle(&mut self, fired: Fired<Event, Deadline>, sched: &mut Sched) {
         let shape = self.shape;
         match fired {
-            Fired::Event(Event::OpDone(d)) => {
-                let d = d as usize;
-                let op = self.plan.per_device[d][self.next[d]];
-                self.next[d] += 1;
-                self.busy[d] = false;
-                // Outputs on this device are satisfied now; the others are
-                // sent, in output order (two fit without allocating).
-                let (mut near, mut far) = ([None; 2], Vec::new());
-                let mut n = 0;
-                let waiting = &mut self.waiting;
-                op.each_output(&shape, |out| {
-                    // Within a stage nothing moves; across stages, only to
-                    // another device.
-                    let to = if out.flow.crosses_stages() { shape.device_of(out.op.stage) } else { d as u32 };
-                    if to as usize == d {
-                        waiting[shape.op_index(out.op)] -= 1;
-                    } else if n < near.len() {
-                        near[n] = Some((out, to));
-                        n += 1;
-                    } else {
-                        far.push((out, to));
-                    }
-                });
-                let now = sched.now();
-                for (out, to) in near.into_iter().flatten().chain(far) {
-                    self.transfers.send(now, &shape, self.costs, op, out, d as u32, to);
-                }
-                self.try_start(d, sched);
-            }
+            Fired::Event(Event::OpDone(w)) => self.op_done(w as usize, sched),
             Fired::Deadline(Deadline::Network) => {
                 let tr = &mut self.transfers;
                 tr.deadline = None;
@@ -413,10 +543,21 @@ impl Model for Executor<'_> {
                 for &tid in &due {
                     let fin = tr.net.finish(now, tid);
                     let rec = tr.in_flight[tid.0 as usize];
-                    let t = &mut tr.records[rec as usize];
-                    t.sent = now;
-                    t.bottleneck = fin.bottleneck.map(|l| l.0);
-                    sched.schedule(fin.delivered_at, Event::Arrival(rec));
+                    let bottleneck = fin.bottleneck.map(|l| l.0);
+                    if rec & SYNC_BIT != 0 {
+                        let i = rec & !SYNC_BIT;
+                        if let Some(st) = self.sync.as_mut() {
+                            let t = &mut st.transfers[i as usize];
+                            t.sent = now;
+                            t.bottleneck = bottleneck;
+                        }
+                        sched.schedule(fin.delivered_at, Event::SyncArrival(i));
+                    } else {
+                        let t = &mut tr.records[rec as usize];
+                        t.sent = now;
+                        t.bottleneck = bottleneck;
+                        sched.schedule(fin.delivered_at, Event::Arrival(rec));
+                    }
                 }
                 tr.due = due;
             }
@@ -425,16 +566,24 @@ impl Model for Executor<'_> {
                 let t = &mut self.transfers.records[rec as usize];
                 t.end = now;
                 let (consumer, src, dst) = (t.consumer(), t.src, t.dst);
-                self.waiting[shape.op_index(consumer)] -= 1;
+                let r = dst as usize / self.p;
+                self.waiting[r * self.slots + shape.op_index(consumer)] -= 1;
                 self.try_start(dst as usize, sched);
                 if self.transfers.blocking_sends {
                     self.transfers.pending_sends[src as usize] -= 1;
                     self.try_start(src as usize, sched);
                 }
             }
+            Fired::Event(Event::SyncArrival(i)) => self.sync_arrival(i, sched),
+            Fired::Event(Event::BucketReady { worker, bucket }) => self.bucket_ready(worker, bucket, sched),
         }
-        // Hand out bandwidth once this instant's starts and finishes are in,
-        // and keep the network's deadline where it says.
+        // Collectives whose buckets became ready this instant start once
+        // every event of the instant is in (so equal times go in piece and
+        // bucket order); then bandwidth is handed out, and the network's
+        // deadline kept where it says.
+        if sched.peek_time() != Some(sched.now()) && self.sync.is_some() {
+            self.start_ready_collectives(sched);
+        }
         let tr = &mut self.transfers;
         if tr.net.needs_settle() && sched.peek_time() != Some(sched.now()) {
             let next = tr.net.settle(sched.now());
@@ -458,7 +607,7 @@ pub struct RunOptions {
     /// `[1 - jitter, 1 + jitter]`; 0 means every op takes exactly its cost.
     pub jitter: f64,
     /// Seed of the generator the factors are drawn from, in plan order
-    /// (device 0's ops in order, then device 1's, ...), so the draws do not
+    /// (worker 0's ops in order, then worker 1's, ...), so the draws do not
     /// depend on timing.
     pub seed: u64,
     /// A device that sends data to another device waits until the data has
@@ -482,28 +631,47 @@ pub fn simulate_with(
     topology: Topology,
     options: RunOptions,
 ) -> Result<Trace, ExecError> {
+    simulate_step(plan, costs, topology, options, None)
+}
+
+/// [`simulate_with`] for `sync.replicas` replicas of the pipeline whose
+/// gradients are synchronised as `sync` says (`None`: one pipeline, no
+/// synchronisation). Topology device `r * p + d` is replica `r`'s pipeline
+/// device `d`; dedicated parameter servers follow the replicas' devices.
+pub fn simulate_step(
+    plan: Plan,
+    costs: &[StageCost],
+    topology: Topology,
+    options: RunOptions,
+    sync: Option<&SyncConfig>,
+) -> Result<Trace, ExecError> {
     validate(&plan)?;
     if !(0.0..1.0).contains(&options.jitter) {
         return Err(ExecError::Jitter(options.jitter));
+    }
+    let shape = plan.shape;
+    let n_stages = shape.virtual_stages() as usize;
+    let p = shape.stages as usize;
+    let replicas = sync.map_or(1, |s| s.replicas.max(1)) as usize;
+    let workers = p * replicas;
+    if costs.len() != n_stages {
+        return Err(ExecError::CostCount { found: costs.len(), expected: n_stages });
+    }
+    let needed = workers as u32 + sync.map_or(0, |s| s.dedicated_servers());
+    if topology.devices() < needed {
+        return Err(ExecError::TopologyDevices { devices: topology.devices(), stages: needed });
     }
     let jitter = (options.jitter > 0.0).then(|| {
         use rand::RngExt;
         let mut rng = baton_engine::seeded_rng(options.seed);
         let j = options.jitter;
-        plan.per_device.iter().map(|ops| ops.iter().map(|_| rng.random_range(1.0 - j..=1.0 + j)).collect()).collect()
+        (0..workers)
+            .map(|w| plan.per_device[w % p].iter().map(|_| rng.random_range(1.0 - j..=1.0 + j)).collect())
+            .collect()
     });
-    let shape = plan.shape;
-    let n_stages = shape.virtual_stages() as usize;
-    let p = shape.stages as usize;
-    if costs.len() != n_stages {
-        return Err(ExecError::CostCount { found: costs.len(), expected: n_stages });
-    }
-    if topology.devices() < shape.stages {
-        return Err(ExecError::TopologyDevices { devices: topology.devices(), stages: shape.stages });
-    }
     let slots = shape.op_slots();
-    // Each op's inputs, counted in dense-index order.
-    let mut waiting = Vec::with_capacity(slots);
+    // Each op's inputs, counted in dense-index order, for every replica.
+    let mut waiting = Vec::with_capacity(slots * replicas);
     for &kind in shape.kinds() {
         for micro_batch in 0..shape.micro_batches {
             for stage in 0..shape.virtual_stages() {
@@ -513,49 +681,69 @@ pub fn simulate_with(
             }
         }
     }
+    for _ in 1..replicas {
+        waiting.extend_from_within(..slots);
+    }
     let link_names =
         (0..topology.link_count()).map(|l| topology.link_name(baton_link::LinkId(l as u32)).to_string()).collect();
     let link_bytes_per_s =
         (0..topology.link_count()).map(|l| topology.link(baton_link::LinkId(l as u32)).bytes_per_s).collect();
-    let cluster_devices = (0..shape.stages).map(|d| topology.cluster_device(d)).collect();
+    let cluster_devices = (0..workers as u32).map(|d| topology.cluster_device(d)).collect();
+    let sync_state = match sync {
+        Some(cfg) => Some(sync::State::new(cfg, &plan, costs.len())?),
+        None => None,
+    };
     let mut exec = Executor {
         plan: &plan,
         shape,
         costs,
-        next: vec![0; p],
-        busy: vec![false; p],
+        p,
+        slots,
+        next: vec![0; workers],
+        busy: vec![false; workers],
         waiting,
-        ops: plan.per_device.iter().map(|o| Vec::with_capacity(o.len())).collect(),
+        ops: (0..workers).map(|w| Vec::with_capacity(plan.per_device[w % p].len())).collect(),
         transfers: Transfers {
             net: Network::new(topology),
             deadline: None,
-            records: Vec::with_capacity(slots),
-            index: vec![NONE; slots],
+            records: Vec::with_capacity(slots * replicas),
+            index: vec![NONE; slots * replicas],
             in_flight: Vec::new(),
             blocking_sends: options.blocking_sends,
-            pending_sends: vec![0; p],
+            pending_sends: vec![0; workers],
             due: Vec::new(),
         },
         jitter,
+        work: vec![VecDeque::new(); workers],
+        running_work: vec![None; workers],
+        device_end: vec![SimTime::ZERO; workers],
+        sync: sync_state,
     };
-    let mut sched = Scheduler::with_capacity(2 * p + 16);
-    for d in 0..p {
-        exec.try_start(d, &mut sched);
+    let mut sched = Scheduler::with_capacity(2 * workers + 16);
+    for w in 0..workers {
+        exec.try_start(w, &mut sched);
     }
     baton_engine::run(&mut exec, &mut sched);
-    for d in 0..p {
-        if let Some(&op) = plan.per_device[d].get(exec.next[d]) {
-            return Err(ExecError::Stuck { device: d as u32, op });
+    for w in 0..workers {
+        if let Some(&op) = plan.per_device[w % p].get(exec.next[w]) {
+            return Err(ExecError::Stuck { device: w as u32, op });
         }
     }
-    let mut op_index = vec![(0u32, 0u32); slots];
-    for (d, recs) in exec.ops.iter().enumerate() {
+    let (collectives, sync_transfers, last_collective) = match exec.sync.take() {
+        Some(st) => st.finish(workers)?,
+        None => (Vec::new(), Vec::new(), vec![None; workers]),
+    };
+    let mut op_index = vec![(0u32, 0u32); slots * replicas];
+    for (w, recs) in exec.ops.iter().enumerate() {
+        let base = (w / p) * slots;
         for (i, r) in recs.iter().enumerate() {
-            op_index[shape.op_index(r.op)] = (d as u32, i as u32);
+            if !r.op.kind.is_device_work() {
+                op_index[base + shape.op_index(r.op)] = (w as u32, i as u32);
+            }
         }
     }
     let link_stats = exec.transfers.net.stats().to_vec();
-    let Executor { ops, transfers: Transfers { records: transfers, index: transfer_index, .. }, .. } = exec;
+    let Executor { ops, device_end, transfers: Transfers { records: transfers, index: transfer_index, .. }, .. } = exec;
     Ok(Trace {
         plan,
         ops,
@@ -566,6 +754,11 @@ pub fn simulate_with(
         cluster_devices,
         events: sched.delivered(),
         blocking_sends: options.blocking_sends,
+        replicas: replicas as u32,
+        collectives,
+        sync_transfers,
+        device_end,
+        last_collective,
         op_index,
         transfer_index,
     })

@@ -53,6 +53,13 @@ pub enum OpKind {
     /// The weight-gradient part of a split backward pass, which nothing
     /// downstream waits for.
     Weight,
+    /// Device work outside the plan: compressing gradients before a
+    /// collective or decompressing them after it (micro-batch = bucket,
+    /// stage = piece). No plan contains it and no op waits for it.
+    Encode,
+    /// Device work outside the plan: the optimizer update after the device's
+    /// gradients are synchronised. No plan contains it and no op waits for it.
+    Update,
 }
 
 /// What an op does to the activations its stage keeps from a micro-batch's
@@ -69,7 +76,10 @@ pub enum Stash {
 
 impl OpKind {
     /// Every kind, in index order.
-    pub const ALL: [OpKind; 3] = [OpKind::Forward, OpKind::Backward, OpKind::Weight];
+    pub const ALL: [OpKind; 5] = [OpKind::Forward, OpKind::Backward, OpKind::Weight, OpKind::Encode, OpKind::Update];
+
+    /// The kinds a plan can contain (the dense op index covers only these).
+    pub const PLANNED: &'static [OpKind] = &[OpKind::Forward, OpKind::Backward, OpKind::Weight];
 
     /// The kinds of a plan whose backward pass is one op.
     pub const FUSED: &'static [OpKind] = &[OpKind::Forward, OpKind::Backward];
@@ -89,6 +99,8 @@ impl OpKind {
             OpKind::Forward => "forward",
             OpKind::Backward => "backward",
             OpKind::Weight => "weight",
+            OpKind::Encode => "encode",
+            OpKind::Update => "update",
         }
     }
 
@@ -98,6 +110,8 @@ impl OpKind {
             OpKind::Forward => 'F',
             OpKind::Backward => 'B',
             OpKind::Weight => 'W',
+            OpKind::Encode => 'E',
+            OpKind::Update => 'U',
         }
     }
 
@@ -108,8 +122,16 @@ impl OpKind {
         match self {
             OpKind::Forward => Stash::TakeAtStart,
             OpKind::Backward => Stash::FreeAtEnd,
-            OpKind::Weight => Stash::Keep,
+            OpKind::Weight | OpKind::Encode | OpKind::Update => Stash::Keep,
         }
+    }
+
+    /// Whether the kind is device work outside any plan (gradient
+    /// synchronisation's encode and update), which has no place in the dense
+    /// op index and no dataflow edges.
+    #[inline]
+    pub fn is_device_work(self) -> bool {
+        matches!(self, OpKind::Encode | OpKind::Update)
     }
 }
 
@@ -251,6 +273,7 @@ impl Op {
                 }
             }
             OpKind::Weight => f(Edge { op: Op::backward(i, s), flow: Flow::Within }),
+            OpKind::Encode | OpKind::Update => {}
         }
     }
 
@@ -273,7 +296,7 @@ impl Op {
                     f(Edge { op: Op::weight(i, s), flow: Flow::Within });
                 }
             }
-            OpKind::Weight => {}
+            OpKind::Weight | OpKind::Encode | OpKind::Update => {}
         }
     }
 }
@@ -789,7 +812,7 @@ mod tests {
     fn op_index_is_dense_and_distinct() {
         let shape = Shape { split_backward: true, ..Shape::new(2, 3, 2) };
         let mut seen = vec![false; shape.op_slots()];
-        for kind in OpKind::ALL {
+        for &kind in OpKind::PLANNED {
             for i in 0..3 {
                 for s in 0..4 {
                     let k = shape.op_index(Op { kind, micro_batch: i, stage: s });
