@@ -20,7 +20,7 @@ pub use baton_scenario as scenario;
 pub use baton_schedule as schedule;
 
 use baton_engine::SimDuration;
-use baton_executor::{ExecError, RunOptions, StageCost, Trace};
+use baton_executor::{BucketSpec, Compression, ExecError, RunOptions, StageCost, SyncConfig, TiedSpec, Trace};
 use baton_link::{LinkSpec, Topology};
 use baton_report::{Labels, MemoryInputs, Report};
 use baton_scenario::Scenario;
@@ -62,19 +62,47 @@ pub fn stage_costs(s: &Scenario) -> Vec<StageCost> {
         .collect()
 }
 
-/// The scenario's link topology over the devices in use, in stage order
-/// (topology device `i` is the device of stage `i`).
+/// The devices the step uses, in topology order: replica r's stage s at
+/// `r * stages + s`, then any dedicated parameter servers.
+pub fn devices_used(s: &Scenario) -> Vec<u32> {
+    s.placement.iter().chain(&s.server_devices).copied().collect()
+}
+
+/// The scenario's link topology over the devices in use (topology device
+/// `r * stages + s` is the device of replica r's stage s; dedicated servers
+/// follow).
 pub fn topology(s: &Scenario) -> Topology {
     let spec = |l: baton_scenario::LinkParams| LinkSpec { latency_ns: l.latency_ns, bytes_per_s: l.bytes_per_s };
+    let used = devices_used(s);
     match s.cluster.fabric {
-        baton_scenario::Fabric::Flat { link } => Topology::full_mesh_of(&s.placement, spec(link)),
+        baton_scenario::Fabric::Flat { link } => Topology::full_mesh_of(&used, spec(link)),
         baton_scenario::Fabric::TwoLevel { nodes, devices_per_node, device_link, node_link, cards } => {
-            Topology::two_level(nodes, devices_per_node, spec(device_link), spec(node_link), cards, &s.placement)
+            Topology::two_level(nodes, devices_per_node, spec(device_link), spec(node_link), cards, &used)
         }
     }
 }
 
-/// What the memory model needs: stash per piece, model state per device.
+/// Model-state bytes of `params` parameters on one device: with
+/// `training.shard` the state splits into weights (2 B per parameter),
+/// gradients (`gradients.bytes_per_param`) and the optimizer (the rest of
+/// `state_bytes_per_param`); `optimizer` divides the optimizer part by the
+/// replicas, `gradients` the gradients and optimizer parts (Rajbhandari et
+/// al., "ZeRO", SC 2020, sec. 5).
+pub fn device_state_bytes(s: &Scenario, params: u64) -> u64 {
+    let per = s.training.state_bytes_per_param;
+    let d = s.parallel.data.max(1) as u128;
+    let grads = s.gradients.bytes_per_param as u64;
+    let n = params as u128;
+    let total = match s.training.shard {
+        baton_scenario::Shard::None => return baton_model::state_bytes(params, per),
+        baton_scenario::Shard::Optimizer => 2 * n + grads as u128 * n + ((per - 2 - grads) as u128 * n).div_ceil(d),
+        baton_scenario::Shard::Gradients => 2 * n + ((per - 2) as u128 * n).div_ceil(d),
+    };
+    total.min(u64::MAX as u128) as u64
+}
+
+/// What the memory model needs: stash per piece, model state per worker
+/// (every replica holds the same).
 pub fn memory_inputs(s: &Scenario) -> MemoryInputs {
     let pieces = s.pieces();
     let p = s.pipeline.stages as usize;
@@ -82,12 +110,131 @@ pub fn memory_inputs(s: &Scenario) -> MemoryInputs {
     for (k, piece) in pieces.iter().enumerate() {
         params[k % p] += piece.params;
     }
+    let per_device: Vec<u64> = params.iter().map(|&n| device_state_bytes(s, n)).collect();
     MemoryInputs {
         stash_bytes: pieces.iter().map(|x| x.stash_bytes).collect(),
-        state_bytes: params.iter().map(|&n| baton_model::state_bytes(n, s.training.state_bytes_per_param)).collect(),
+        state_bytes: (0..s.parallel.data).flat_map(|_| per_device.iter().copied()).collect(),
         reserved_bytes: s.training.reserved_bytes,
         capacity_bytes: s.cluster.device.memory_bytes,
     }
+}
+
+/// Each piece's gradient buckets: its layers in reverse model order, grouped
+/// until a bucket holds at least `gradients.bucket` bytes (parameters x
+/// `gradients.bytes_per_param`; the last may be smaller), each final when its
+/// layers' share of the piece's backward time has run (last layer first).
+/// A piece without parameters has no bucket; a layer sharing weights with
+/// the first layer counts its copy on any device but the first's. Returns
+/// also, per piece, the bucket holding each of its layers (in model order).
+pub fn gradient_buckets(s: &Scenario) -> (Vec<Vec<BucketSpec>>, Vec<Vec<u32>>) {
+    let bpp = s.gradients.bytes_per_param as u64;
+    let p = s.pipeline.stages as usize;
+    let mut all = Vec::new();
+    let mut layer_bucket = Vec::new();
+    let mut first = 0usize;
+    for (k, &n) in s.pipeline.split.iter().enumerate() {
+        let copy = k % p != 0;
+        let layers = &s.layers[first..first + n as usize];
+        first += n as usize;
+        let total_back: u128 = layers.iter().map(|l| l.backward_ns as u128).sum();
+        let mut buckets: Vec<BucketSpec> = Vec::new();
+        let mut which = vec![0u32; layers.len()];
+        let (mut params, mut back) = (0u128, 0u128);
+        let mut open = false;
+        for (i, l) in layers.iter().enumerate().rev() {
+            params += l.params as u128 + if copy { l.tied_params as u128 } else { 0 };
+            back += l.backward_ns as u128;
+            open = true;
+            which[i] = buckets.len() as u32;
+            if params * bpp as u128 >= s.gradients.bucket_bytes as u128 {
+                buckets.push(bucket(params, back, total_back, bpp));
+                params = 0;
+                open = false;
+            }
+        }
+        if open && params > 0 {
+            buckets.push(bucket(params, back, total_back, bpp));
+        } else if open {
+            // Trailing layers without parameters join the previous bucket.
+            for w in which.iter_mut().filter(|w| **w as usize == buckets.len()) {
+                *w = buckets.len().saturating_sub(1) as u32;
+            }
+        }
+        // Buckets of no parameters have nothing to sum.
+        if buckets.iter().all(|b| b.bytes == 0) {
+            buckets.clear();
+        }
+        all.push(buckets);
+        layer_bucket.push(which);
+    }
+    (all, layer_bucket)
+}
+
+fn bucket(params: u128, back: u128, total_back: u128, bpp: u64) -> BucketSpec {
+    let clamp = |x: u128| x.min(u64::MAX as u128) as u64;
+    let (num, den) = if total_back == 0 { (1, 1) } else { (back, total_back) };
+    // Keep the fraction's parts within u64 without changing its value much.
+    let shift = (128 - den.leading_zeros()).saturating_sub(40);
+    BucketSpec {
+        bytes: clamp(params * bpp as u128),
+        gather_bytes: clamp(params * 2),
+        ready_num: clamp(num >> shift),
+        ready_den: clamp(den >> shift).max(1),
+    }
+}
+
+/// How the scenario's replicas synchronise their gradients, or `None` when
+/// there is nothing to synchronise (one replica, no tied weights across
+/// devices, no update time): then the step is the pipeline alone.
+pub fn sync_config(s: &Scenario) -> Option<SyncConfig> {
+    let d = s.parallel.data;
+    let p = s.pipeline.stages;
+    let (buckets, layer_bucket) = gradient_buckets(s);
+    let g = &s.gradients;
+    // The tied copy: the first layer sharing weights that runs on a device
+    // other than the first layer's.
+    let mut tied = None;
+    let mut first = 0usize;
+    for (k, &n) in s.pipeline.split.iter().enumerate() {
+        for (i, l) in s.layers[first..first + n as usize].iter().enumerate() {
+            if tied.is_none()
+                && l.tied_params > 0
+                && k as u32 % p != 0
+                && !buckets[k].is_empty()
+                && !buckets[0].is_empty()
+            {
+                tied = Some(TiedSpec {
+                    bytes: l.tied_params.saturating_mul(g.bytes_per_param as u64),
+                    first_bucket: layer_bucket[0][0],
+                    piece: k as u32,
+                    piece_bucket: layer_bucket[k][i],
+                });
+            }
+        }
+        first += n as usize;
+    }
+    let sharded = s.training.shard != baton_scenario::Shard::None;
+    if d <= 1 && tied.is_none() && s.training.update_ns == 0 {
+        return None;
+    }
+    let update_ns = if sharded { s.training.update_ns.div_ceil(d.max(1) as u64) } else { s.training.update_ns };
+    Some(SyncConfig {
+        replicas: d,
+        algorithm: g.sync,
+        servers: baton_collective::Servers { count: g.servers, dedicated: g.dedicated_servers },
+        overlap: g.overlap,
+        buckets,
+        bytes_per_param: g.bytes_per_param,
+        compression: g.compression.map(|c| match c.kind {
+            baton_scenario::CompressionKind::Quantize { bits } => Compression::Quantize { bits },
+            baton_scenario::CompressionKind::TopK { keep } => Compression::TopK { keep },
+        }),
+        encode_bytes_per_s: g.compression.map_or(0, |c| c.rate_bytes_per_s),
+        shard: sharded,
+        update: SimDuration(update_ns),
+        tied,
+        nodes: devices_used(s).iter().map(|&x| s.node_of(x)).collect(),
+    })
 }
 
 pub use baton_report::svg::{View, Window};
@@ -261,8 +408,18 @@ pub struct Making {
 pub fn step_elements(s: &Scenario) -> (u64, u64) {
     let shape = s.shape();
     let p = s.pipeline.stages as u64;
+    let d = s.parallel.data as u64;
     let crossing = if p > 1 { shape.virtual_stages() as u64 - 1 } else { 0 };
-    (shape.ops(), 2 * s.pipeline.micro_batches as u64 * crossing)
+    // Collectives: at most 2 d (d - 1 + S) transfers per bucket and phase
+    // (ring, tree, direct and the parameter server all stay within it).
+    let collectives = if d > 1 {
+        let buckets: u64 = gradient_buckets(s).0.iter().map(|b| b.len() as u64).sum();
+        let phases = if s.training.shard == baton_scenario::Shard::None { 1 } else { 2 };
+        buckets * phases * 2 * d * (d - 1 + s.gradients.servers as u64)
+    } else {
+        0
+    };
+    (d * shape.ops(), d * 2 * s.pipeline.micro_batches as u64 * crossing + collectives)
 }
 
 /// An estimate of the memory simulating one step of `s` needs, before it
@@ -286,7 +443,8 @@ pub fn memory_estimate_bytes(s: &Scenario, making: Making) -> u64 {
 pub fn simulate(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
     let variation = RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends };
-    let trace = baton_executor::simulate_with(plan, &stage_costs(s), topology(s), variation)?;
+    let sync = sync_config(s);
+    let trace = baton_executor::simulate_step(plan, &stage_costs(s), topology(s), variation, sync.as_ref())?;
     let report = baton_report::build(&trace, &labels(s));
     Ok(SimulatedStep { trace, report })
 }

@@ -56,16 +56,18 @@ pub enum Compression {
     },
 }
 
-/// The tied embedding's gradient, summed between the devices of a replica's
-/// first and last pieces.
+/// The tied embedding's gradient, summed between the device of a replica's
+/// first piece and the device of the piece holding the tied copy.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct TiedSpec {
     /// Dense gradient bytes of the tied weights.
     pub bytes: u64,
-    /// The bucket of the first piece holding the tied layer.
+    /// The bucket of the first piece holding the first layer.
     pub first_bucket: u32,
-    /// The bucket of the last piece holding the tied layer.
-    pub last_bucket: u32,
+    /// The piece holding the tied copy (usually the last).
+    pub piece: u32,
+    /// The bucket of `piece` holding the tied layer.
+    pub piece_bucket: u32,
 }
 
 /// How a data-parallel step synchronises its gradients.
@@ -316,10 +318,10 @@ impl State {
         }
         bucket_base.push(nb);
         let last_piece = pieces as u32 - 1;
-        let tied = cfg.tied.filter(|_| shape.device_of(0) != shape.device_of(last_piece));
+        let tied = cfg.tied.filter(|t| (t.piece as usize) < pieces && shape.device_of(0) != shape.device_of(t.piece));
         if let Some(t) = tied {
             if t.first_bucket as usize >= cfg.buckets[0].len()
-                || t.last_bucket as usize >= cfg.buckets[pieces - 1].len()
+                || t.piece_bucket as usize >= cfg.buckets[t.piece as usize].len()
             {
                 return Err(ExecError::Sync("the tied layer's bucket does not exist".into()));
             }
@@ -338,7 +340,7 @@ impl State {
             // becomes the first device's own (colocated, one server).
             for r in 0..d {
                 groups.push(Group {
-                    members: vec![r * p + shape.device_of(0), r * p + shape.device_of(last_piece)],
+                    members: vec![r * p + shape.device_of(0), r * p + shape.device_of(tied.map_or(0, |t| t.piece))],
                     pending: BTreeSet::new(),
                     busy: false,
                     algorithm: cfg.algorithm,
@@ -349,7 +351,7 @@ impl State {
         let mut slot_left = vec![NEVER; (2 * nb + d) as usize];
         let is_tied_bucket = |gb: u32| {
             tied.is_some_and(|t| {
-                gb == bucket_base[0] + t.first_bucket || gb == bucket_base[last_piece as usize] + t.last_bucket
+                gb == bucket_base[0] + t.first_bucket || gb == bucket_base[t.piece as usize] + t.piece_bucket
             })
         };
         if d > 1 {
@@ -391,7 +393,7 @@ impl State {
                 let pieces_here = (0..pieces as u32).filter(|&s| shape.device_of(s) == dev);
                 reduce_left[w as usize] = pieces_here.map(|s| cfg.buckets[s as usize].len() as u32).sum();
             }
-            if tied.is_some() && (dev == shape.device_of(0) || dev == shape.device_of(last_piece)) {
+            if tied.is_some_and(|t| dev == shape.device_of(0) || dev == shape.device_of(t.piece)) {
                 reduce_left[w as usize] += 1;
             }
         }
@@ -573,8 +575,7 @@ impl Executor<'_> {
         }
         if let Some(t) = st.cfg.tied {
             let r = w / p;
-            if gb == st.bucket_base[0] + t.first_bucket || gb == st.bucket_base[st.last_piece as usize] + t.last_bucket
-            {
+            if gb == st.bucket_base[0] + t.first_bucket || gb == st.bucket_base[t.piece as usize] + t.piece_bucket {
                 st.satisfy(2 * st.nb + r, now);
             }
         }
@@ -767,7 +768,7 @@ impl Executor<'_> {
             if let Some(t) = st.cfg.tied {
                 if st.d > 1 {
                     let a = st.bucket_base[0] + t.first_bucket;
-                    let b = st.bucket_base[st.last_piece as usize] + t.last_bucket;
+                    let b = st.bucket_base[t.piece as usize] + t.piece_bucket;
                     st.satisfy(a, now);
                     st.satisfy(b, now);
                 }

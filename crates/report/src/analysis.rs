@@ -26,6 +26,8 @@ pub enum Cause {
     Link,
     /// The device's own blocking send had not yet arrived.
     Send,
+    /// Waiting for a gradient collective (or its update) to end.
+    Sync,
 }
 
 impl Cause {
@@ -38,6 +40,7 @@ impl Cause {
             Cause::Gradient => "gradient",
             Cause::Link => "link",
             Cause::Send => "send",
+            Cause::Sync => "sync",
         }
     }
 }
@@ -59,6 +62,36 @@ pub struct GapDetail {
     /// The link that held that transfer back the longest (link gaps), or the
     /// receiver of the device's own blocking send (send gaps).
     pub link: Option<String>,
+    /// The collective waited for (sync gaps).
+    pub collective: Option<SyncWait>,
+}
+
+/// The collective a sync gap waited for.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct SyncWait {
+    /// Its members (devices).
+    pub group: Vec<u32>,
+    /// The piece whose gradient it carried.
+    pub piece: u32,
+    /// The bucket within the piece.
+    pub bucket: u32,
+    /// What it did (`all-reduce`, `reduce-scatter`, ...).
+    pub phase: &'static str,
+    /// Its algorithm's name.
+    pub algorithm: &'static str,
+}
+
+impl SyncWait {
+    fn of(trace: &Trace, c: u32) -> Option<SyncWait> {
+        let c = trace.collectives.get(c as usize)?;
+        Some(SyncWait {
+            group: c.group.clone(),
+            piece: c.piece,
+            bucket: c.bucket,
+            phase: c.phase.as_str(),
+            algorithm: c.algorithm.name(),
+        })
+    }
 }
 
 impl fmt::Display for GapDetail {
@@ -68,6 +101,21 @@ impl fmt::Display for GapDetail {
         match (self.cause, self.producer) {
             (Cause::Fill, _) => write!(f, "pipeline fill before {}", self.op),
             (Cause::Drain, _) => write!(f, "pipeline drain after {}", self.op),
+            (Cause::Sync, _) => match &self.collective {
+                Some(c) => {
+                    let group: Vec<String> = c.group.iter().map(u32::to_string).collect();
+                    write!(
+                        f,
+                        "waiting for the {} {} of piece {} bucket {} among devices {}",
+                        c.algorithm,
+                        c.phase,
+                        c.piece,
+                        c.bucket,
+                        group.join(",")
+                    )
+                }
+                None => write!(f, "waiting for gradient synchronisation"),
+            },
             (Cause::Send, _) => write!(
                 f,
                 "blocked sending the output of {} to device {}",
@@ -131,8 +179,14 @@ pub struct Gap {
 /// One device's totals.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct DeviceReport {
-    /// Pipeline device: the one that runs stage `device` (and its chunks).
+    /// The device: replica `replica`'s pipeline device `stage` (numbered
+    /// `replica x stages + stage`).
     pub device: u32,
+    /// The replica it belongs to.
+    pub replica: u32,
+    /// Its pipeline device within the replica (it runs stage `stage` and its
+    /// chunks).
+    pub stage: u32,
     /// The cluster device it is placed on.
     pub cluster_device: u32,
     /// Time spent computing, in milliseconds.
@@ -155,6 +209,12 @@ pub struct DeviceReport {
     pub state_bytes: u64,
     /// The largest activation stash held at once.
     pub peak_activation_bytes: u64,
+    /// Synchronisation not hidden behind compute: from its last compute op's
+    /// end to its step end, in milliseconds.
+    pub sync_exposed_ms: f64,
+    #[serde(skip)]
+    /// The same in nanoseconds.
+    pub sync_exposed_ns: u64,
     #[serde(skip)]
     /// Time spent computing, in nanoseconds.
     pub busy_ns: u64,
@@ -180,6 +240,43 @@ pub struct LinkReport {
     pub peak_concurrent: u32,
 }
 
+/// The layout of a data-parallel step.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct ParallelReport {
+    /// Replicas.
+    pub data: u32,
+    /// Pipeline stages per replica.
+    pub pipeline: u32,
+    /// Devices the replicas use (dedicated servers not counted).
+    pub devices_used: u32,
+}
+
+/// One gradient collective.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct CollectiveReport {
+    /// Its members (devices), in ring order.
+    pub group: Vec<u32>,
+    /// The piece (virtual stage) whose gradient it carried.
+    pub piece: u32,
+    /// The bucket within the piece.
+    pub bucket: u32,
+    /// What it did: `all-reduce`, `reduce-scatter`, `all-gather` or `tied
+    /// all-reduce`.
+    pub phase: &'static str,
+    /// The algorithm.
+    pub algorithm: &'static str,
+    /// Dense bytes per member.
+    pub bytes: u64,
+    /// Bytes each member sent after compression, aligned with `group`.
+    pub wire_bytes_sent: Vec<u64>,
+    /// Bytes each dedicated server sent (empty without them).
+    pub server_bytes_sent: Vec<u64>,
+    /// When it started, in milliseconds.
+    pub start_ms: f64,
+    /// When it ended, in milliseconds.
+    pub end_ms: f64,
+}
+
 /// Everything a run reports.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct Report {
@@ -203,10 +300,18 @@ pub struct Report {
     pub step_time_ns: u64,
     /// Idle time / step time.
     pub bubble_fraction: f64,
-    /// Samples per second: micro-batches x micro-batch size / step time.
+    /// Samples per second over all replicas: global batch / step time.
     pub samples_per_s: f64,
     /// Samples per micro-batch.
     pub micro_batch_size: u32,
+    /// Samples per step over all replicas: replicas x micro-batches x
+    /// micro-batch size.
+    pub global_batch: u64,
+    /// Replicas, stages and devices.
+    pub parallel: ParallelReport,
+    /// The worst device's synchronisation not hidden behind compute, in
+    /// milliseconds.
+    pub sync_exposed_ms: f64,
     /// Recomputation: `none` or `full`.
     pub recompute: String,
     /// Whether every device's peak memory fits its capacity.
@@ -221,6 +326,8 @@ pub struct Report {
     pub links: Vec<LinkReport>,
     /// Every idle interval, by device then start time.
     pub gaps: Vec<Gap>,
+    /// Every gradient collective, in the order they started.
+    pub collectives: Vec<CollectiveReport>,
 }
 
 impl Report {
@@ -311,9 +418,13 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
     let step_ns = t1.saturating_since(t0).as_ns();
     let mut devices = Vec::with_capacity(trace.ops.len());
     let mut gaps = Vec::new();
+    let p = shape.stages.max(1);
     for (d, recs) in trace.ops.iter().enumerate() {
         let device = d as u32;
         let busy_ns: u64 = recs.iter().map(|r| r.end.saturating_since(r.start).as_ns()).sum();
+        let last_compute = recs.iter().rev().find(|r| !r.op.kind.is_device_work()).map_or(t0, |r| r.end);
+        let device_end = trace.device_end.get(d).copied().unwrap_or(t0).max(recs.last().map_or(t0, |r| r.end));
+        let sync_exposed_ns = device_end.saturating_since(last_compute).as_ns();
         let idle_ns = step_ns - busy_ns.min(step_ns);
         let mem = &labels.memory;
         let peak_activation_bytes = if mem.stash_bytes.is_empty() {
@@ -325,6 +436,8 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         let peak_memory_bytes = state_bytes.saturating_add(mem.reserved_bytes).saturating_add(peak_activation_bytes);
         devices.push(DeviceReport {
             device,
+            replica: device / p,
+            stage: device % p,
             cluster_device: trace.cluster_devices.get(d).copied().unwrap_or(device),
             busy_ms: ms(busy_ns),
             idle_ms: ms(idle_ns),
@@ -336,12 +449,32 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
             fits: mem.capacity_bytes.is_none_or(|c| peak_memory_bytes <= c),
             state_bytes,
             peak_activation_bytes,
+            sync_exposed_ms: ms(sync_exposed_ns),
+            sync_exposed_ns,
             busy_ns,
             idle_ns,
         });
         device_gaps(trace, d, t0, t1, &mut gaps);
     }
     let total_idle: u64 = devices.iter().map(|d| d.idle_ns).sum();
+    let global_batch =
+        trace.replicas.max(1) as u64 * shape.micro_batches as u64 * labels.micro_batch_size.max(1) as u64;
+    let collectives = trace
+        .collectives
+        .iter()
+        .map(|c| CollectiveReport {
+            group: c.group.clone(),
+            piece: c.piece,
+            bucket: c.bucket,
+            phase: c.phase.as_str(),
+            algorithm: c.algorithm.name(),
+            bytes: c.bytes,
+            wire_bytes_sent: c.wire_bytes_sent.clone(),
+            server_bytes_sent: c.server_bytes_sent.clone(),
+            start_ms: ms(c.start.saturating_since(t0).as_ns()),
+            end_ms: ms(c.end.saturating_since(t0).as_ns()),
+        })
+        .collect();
     let denom = step_ns as f64 * devices.len() as f64;
     Report {
         title: labels.title.clone(),
@@ -354,12 +487,15 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         step_time_ms: ms(step_ns),
         step_time_ns: step_ns,
         bubble_fraction: if denom == 0.0 { 0.0 } else { total_idle as f64 / denom },
-        samples_per_s: if step_ns == 0 {
-            0.0
-        } else {
-            shape.micro_batches as f64 * labels.micro_batch_size.max(1) as f64 / (step_ns as f64 / 1e9)
-        },
+        samples_per_s: if step_ns == 0 { 0.0 } else { global_batch as f64 / (step_ns as f64 / 1e9) },
         micro_batch_size: labels.micro_batch_size.max(1),
+        global_batch,
+        parallel: ParallelReport {
+            data: trace.replicas.max(1),
+            pipeline: shape.stages,
+            devices_used: trace.ops.len() as u32,
+        },
+        sync_exposed_ms: ms(devices.iter().map(|d| d.sync_exposed_ns).max().unwrap_or(0)),
         recompute: if labels.recompute.is_empty() { "none".into() } else { labels.recompute.clone() },
         fits: devices.iter().all(|d| d.fits),
         ops: trace.ops.iter().map(Vec::len).sum(),
@@ -381,6 +517,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
             })
             .collect(),
         gaps,
+        collectives,
     }
 }
 
@@ -447,21 +584,42 @@ fn push_gap(gaps: &mut Vec<Gap>, device: u32, start: SimTime, end: SimTime, deta
 
 fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec<Gap>) {
     let device = d as u32;
+    let replica = device / trace.plan.shape.stages.max(1);
     let recs = &trace.ops[d];
     let (Some(first), Some(last)) = (recs.first(), recs.last()) else {
         return;
     };
-    let plain = |cause, op| GapDetail { cause, flow: None, op, producer: None, route: None, link: None };
+    let plain =
+        |cause, op| GapDetail { cause, flow: None, op, producer: None, route: None, link: None, collective: None };
+    let last_sync = || trace.last_collective.get(d).copied().flatten().and_then(|c| SyncWait::of(trace, c));
     push_gap(gaps, device, t0, first.start, plain(Cause::Fill, first.op));
     for w in recs.windows(2) {
         let (a, b) = (&w[0], &w[1]);
         if b.start <= a.end {
             continue;
         }
+        // Device work (encode, update) waits for a collective.
+        if b.op.kind.is_device_work() {
+            let collective = match b.op.kind {
+                baton_schedule::OpKind::Encode => trace
+                    .collectives
+                    .iter()
+                    .position(|c| {
+                        c.piece == b.op.stage
+                            && c.bucket == b.op.micro_batch
+                            && c.group.contains(&device)
+                            && c.end >= b.start
+                    })
+                    .and_then(|c| SyncWait::of(trace, c as u32)),
+                _ => last_sync(),
+            };
+            push_gap(gaps, device, a.end, b.start, GapDetail { collective, ..plain(Cause::Sync, b.op) });
+            continue;
+        }
         let mut from = a.end;
         // A blocking send keeps the device until its data has arrived.
-        if trace.blocking_sends {
-            if let Some(t) = trace.outgoing(a.op).filter(|t| t.end > a.end) {
+        if trace.blocking_sends && !a.op.kind.is_device_work() {
+            if let Some(t) = trace.outgoing_in(replica, a.op).filter(|t| t.end > a.end) {
                 let until = t.end.min(b.start);
                 let detail = GapDetail { route: Some((t.src, t.dst)), ..plain(Cause::Send, a.op) };
                 push_gap(gaps, device, from, until, detail);
@@ -470,7 +628,7 @@ fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec
         }
         // Only an op that needs data from another stage can find its device
         // free but itself not ready, so a dependency always exists here.
-        let Some(dep) = trace.dependency(b.op) else { continue };
+        let Some(dep) = trace.dependency_in(replica, b.op) else { continue };
         let cause = match dep.flow {
             Flow::Activation => Cause::Activation,
             Flow::Gradient => Cause::Gradient,
@@ -487,18 +645,21 @@ fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec
                 device,
                 from,
                 waiting_until,
-                GapDetail { cause, flow, op: b.op, producer, route, link: None },
+                GapDetail { cause, flow, op: b.op, producer, route, link: None, collective: None },
             );
         }
         let link_from = dep.produced_at.max(from);
         if b.start > link_from {
             // The link's name is only looked up for a gap that is there.
             let link = transfer.and_then(|t| t.bottleneck).and_then(|l| trace.link_names.get(l as usize).cloned());
-            let detail = GapDetail { cause: Cause::Link, flow, op: b.op, producer, route, link };
+            let detail = GapDetail { cause: Cause::Link, flow, op: b.op, producer, route, link, collective: None };
             push_gap(gaps, device, link_from, b.start, detail);
         }
     }
-    push_gap(gaps, device, last.end, t1, plain(Cause::Drain, last.op));
+    // After its last op a device may still wait for its collectives.
+    let end = trace.device_end.get(d).copied().unwrap_or(last.end).max(last.end);
+    push_gap(gaps, device, last.end, end, GapDetail { collective: last_sync(), ..plain(Cause::Sync, last.op) });
+    push_gap(gaps, device, end, t1, plain(Cause::Drain, last.op));
 }
 
 /// The `n` longest gaps, longest first (ties: by device, then start).

@@ -98,6 +98,8 @@ pub enum Type {
     Split,
     /// `placement`: `packed`, `spread` or a list of device ids.
     Placement,
+    /// A list of distinct names from this set.
+    Names(&'static [&'static str]),
 }
 
 const MAX_DEVICES: i64 = crate::MAX_DEVICES as i64;
@@ -128,7 +130,53 @@ pub const TOP: &[Key] = &[
     required("cluster", Type::OneOf(CLUSTER, &[&["devices", "link"], &["nodes", "devices_per_node", "device_link", "node_link"]]), "The accelerators and how they are connected: devices and link, or nodes, devices_per_node, device_link and node_link."),
     required("pipeline", Type::Section(PIPELINE), "How the model is cut into stages and scheduled."),
     key("training", Type::Section(TRAINING), "Memory accounting of training."),
-    with_default("placement", Type::Placement, Default::Text("packed"), "Where each stage runs: packed (stage s on device s), spread (stages dealt out over the nodes in turn) or a list naming a distinct device for each stage."),
+    key("parallel", Type::Section(PARALLEL), "Data parallelism: replicas of the pipeline and how they are numbered onto devices."),
+    key("gradients", Type::Section(GRADIENTS), "How the replicas' gradients are summed at the end of the step."),
+    with_default("placement", Type::Placement, Default::Text("packed"), "Where each stage runs: packed (numbered by parallel.order), spread (stages dealt out over the nodes in turn; one replica only) or a list naming a distinct device for each stage of each replica, replica 0's stages first."),
+];
+
+/// `parallel`.
+pub const PARALLEL: &[Key] = &[
+    with_default("data", whole(1, MAX_DEVICES), Default::Whole(1), "d: replicas of the pipeline, each running its own micro-batches; their gradients are summed every step."),
+    key(
+        "order",
+        Type::Names(&["data", "pipeline"]),
+        "How replicas and stages are numbered onto devices with placement: packed, fastest-varying first; [data, pipeline] (the default) puts a stage's replicas side by side.",
+    ),
+];
+
+/// `gradients`.
+pub const GRADIENTS: &[Key] = &[
+    with_default(
+        "sync",
+        Type::Choice(&["ring", "halving-doubling", "tree", "hierarchical", "parameter-server", "direct"]),
+        Default::Text("ring"),
+        "The algorithm that sums a bucket's gradient over the replicas holding it.",
+    ),
+    with_default("bucket", Type::Quantity(Unit::Size), Default::Text("25MB"), "Gradients are synchronised in buckets of at least this size, last layer first."),
+    with_default("overlap", Type::Bool, Default::Bool(true), "true: a bucket starts as soon as the last backward has produced it; false: after the device's last backward."),
+    with_default("bytes_per_param", whole(1, 64), Default::Whole(2), "Gradient element size on the wire before compression."),
+    with_default("servers", whole(1, MAX_DEVICES), Default::Whole(1), "parameter-server only: the number of servers S."),
+    with_default(
+        "server_devices",
+        Type::Choice(&["colocated", "dedicated"]),
+        Default::Text("colocated"),
+        "colocated: server k is replica k's device (S at most parallel.data); dedicated: S devices of their own, the lowest-numbered devices no replica uses.",
+    ),
+    key("compression", Type::Section(COMPRESSION), "Gradient compression on the wire (changes convergence, which is not modelled)."),
+];
+
+/// `gradients.compression`.
+pub const COMPRESSION: &[Key] = &[
+    with_default("kind", Type::Choice(&["none", "quantize", "top-k"]), Default::Text("none"), "none, quantize (bits per element) or top-k (a fraction of elements kept, each with a 4-byte index, exchanged as an all-gather)."),
+    with_default("bits", whole(1, 64), Default::Whole(8), "quantize: bits per element on the wire."),
+    with_default(
+        "keep",
+        Type::Number { min: 0.0, min_exclusive: true, max: 1.0, max_exclusive: false },
+        Default::Number(0.001),
+        "top-k: fraction of elements kept.",
+    ),
+    key("rate", Type::Quantity(Unit::Bandwidth), "Encode and decode speed in dense gradient bytes per second; each occupies the device (required with quantize or top-k)."),
 ];
 
 /// `model`.
@@ -284,6 +332,13 @@ pub const TRAINING: &[Key] = &[
         Default::Text("none"),
         "full: keep only each piece's input and run its forward again before its backward.",
     ),
+    with_default(
+        "shard",
+        Type::Choice(&["none", "optimizer", "gradients"]),
+        Default::Text("none"),
+        "ZeRO stages: optimizer splits the optimizer state over the replicas, gradients also the gradients; either syncs by reduce-scatter, update, all-gather.",
+    ),
+    with_default("update", Type::Quantity(Unit::Duration), Default::Text("0ms"), "Optimizer update time per device, after its gradients are synchronised (divided by parallel.data when sharded)."),
 ];
 
 /// The names of `keys`, in order.
@@ -366,6 +421,9 @@ fn type_json(ty: &Type) -> Map<String, Value> {
                 { "const": "even" },
                 { "type": "array", "minItems": 1, "items": { "type": "integer", "minimum": 1 } }
             ]
+        }),
+        Type::Names(names) => json!({
+            "type": "array", "minItems": 1, "uniqueItems": true, "items": { "type": "string", "enum": names }
         }),
         Type::Placement => json!({
             "oneOf": [

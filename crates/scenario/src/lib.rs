@@ -34,6 +34,7 @@ pub use node::{Node, Origin, Value};
 pub use pieces::{Piece, PieceCosts};
 
 /// One layer of the model, after `repeat` is expanded.
+pub use baton_collective::Algorithm;
 pub use baton_model::LayerCost;
 pub use baton_model::{Attention, Speed, Transformer};
 
@@ -90,11 +91,127 @@ pub struct Training {
     pub reserved_bytes: u64,
     /// Recomputation: `none` or `full`.
     pub recompute: Recompute,
+    /// Model state split over the data-parallel replicas (ZeRO stages 1, 2).
+    pub shard: Shard,
+    /// Optimizer update time per device after its gradients are synchronised
+    /// (as written: not yet divided by the replicas when sharded).
+    pub update_ns: u64,
 }
 
 impl Default for Training {
     fn default() -> Self {
-        Training { state_bytes_per_param: 16, reserved_bytes: 0, recompute: Recompute::None }
+        Training {
+            state_bytes_per_param: 16,
+            reserved_bytes: 0,
+            recompute: Recompute::None,
+            shard: Shard::None,
+            update_ns: 0,
+        }
+    }
+}
+
+/// What `training.shard` splits over the replicas (Rajbhandari et al.,
+/// "ZeRO", SC 2020, sec. 5).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Shard {
+    /// Every replica keeps all its model state.
+    None,
+    /// The optimizer state (ZeRO stage 1).
+    Optimizer,
+    /// The optimizer state and the gradients (ZeRO stage 2).
+    Gradients,
+}
+
+impl Shard {
+    /// The name scenario files use.
+    pub fn name(self) -> &'static str {
+        match self {
+            Shard::None => "none",
+            Shard::Optimizer => "optimizer",
+            Shard::Gradients => "gradients",
+        }
+    }
+}
+
+/// An axis of the device layout.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Axis {
+    /// Data-parallel replicas.
+    Data,
+    /// Pipeline stages.
+    Pipeline,
+}
+
+/// The `parallel` section.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Parallel {
+    /// d: replicas of the pipeline.
+    pub data: u32,
+    /// How a packed placement numbers (replica, stage) onto devices,
+    /// fastest-varying first.
+    pub order: Vec<Axis>,
+}
+
+impl Default for Parallel {
+    fn default() -> Self {
+        Parallel { data: 1, order: vec![Axis::Data, Axis::Pipeline] }
+    }
+}
+
+/// Gradient compression on the wire.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum CompressionKind {
+    /// `bits` per element.
+    Quantize {
+        /// Bits per element on the wire.
+        bits: u32,
+    },
+    /// The `keep` fraction of elements, each with a 4-byte index.
+    TopK {
+        /// Fraction kept.
+        keep: f64,
+    },
+}
+
+/// `gradients.compression` when its kind is not `none`.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct GradientCompression {
+    /// What is sent.
+    pub kind: CompressionKind,
+    /// Encode (and decode) speed in dense bytes per second.
+    pub rate_bytes_per_s: u64,
+}
+
+/// The `gradients` section.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Gradients {
+    /// The algorithm.
+    pub sync: Algorithm,
+    /// Least bucket size in bytes.
+    pub bucket_bytes: u64,
+    /// Whether buckets start inside the last backward.
+    pub overlap: bool,
+    /// Gradient element size before compression.
+    pub bytes_per_param: u32,
+    /// Parameter servers S.
+    pub servers: u32,
+    /// Whether the servers have devices of their own.
+    pub dedicated_servers: bool,
+    /// Compression, if any.
+    pub compression: Option<GradientCompression>,
+}
+
+impl Default for Gradients {
+    fn default() -> Self {
+        Gradients {
+            sync: Algorithm::Ring,
+            bucket_bytes: 25_000_000,
+            overlap: true,
+            bytes_per_param: 2,
+            servers: 1,
+            dedicated_servers: false,
+            compression: None,
+        }
     }
 }
 
@@ -183,8 +300,17 @@ pub struct Scenario {
     pub pipeline: Pipeline,
     /// Model state, reserve and recomputation.
     pub training: Training,
-    /// The device each pipeline stage runs on (`placement`), one per stage.
+    /// The device each pipeline stage of each replica runs on
+    /// (`placement`): entry `r * stages + s` is replica r's stage s.
     pub placement: Vec<u32>,
+    /// Data-parallel replicas and their numbering.
+    pub parallel: Parallel,
+    /// How the replicas' gradients are synchronised.
+    pub gradients: Gradients,
+    /// Devices of the dedicated parameter servers (empty unless
+    /// `server_devices: dedicated` with the parameter-server algorithm and
+    /// more than one replica).
+    pub server_devices: Vec<u32>,
 }
 
 impl Scenario {
@@ -209,9 +335,23 @@ impl Scenario {
         self.piece_costs().pieces_of(split)
     }
 
-    /// Samples per step: micro-batches x micro-batch size.
+    /// Samples per step over all replicas: replicas x micro-batches x
+    /// micro-batch size.
     pub fn samples_per_step(&self) -> u64 {
-        self.pipeline.micro_batches as u64 * self.pipeline.micro_batch_size as u64
+        self.parallel.data as u64 * self.pipeline.micro_batches as u64 * self.pipeline.micro_batch_size as u64
+    }
+
+    /// Devices the replicas' stages use.
+    pub fn workers(&self) -> u32 {
+        self.parallel.data * self.pipeline.stages
+    }
+
+    /// The node a cluster device sits in (0 for a flat cluster).
+    pub fn node_of(&self, device: u32) -> u32 {
+        match self.cluster.fabric {
+            Fabric::TwoLevel { devices_per_node, .. } => device / devices_per_node.max(1),
+            Fabric::Flat { .. } => 0,
+        }
     }
 }
 
@@ -674,13 +814,31 @@ fn from_tree(
     let (source, layers) = top.req("model", |m| read_model(m, &cluster, micro_batch_size))?;
     let training = top.opt("training", read_training)?.unwrap_or_default();
     let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster))?;
+    let parallel = top.opt("parallel", |p| read_parallel(p, &cluster, pipeline.stages))?.unwrap_or_default();
+    let gradients = top.opt("gradients", read_gradients)?.unwrap_or_default();
     let placement = match top.get("placement") {
-        None => (0..pipeline.stages).collect(),
-        Some((path, node)) => {
-            read_placement(Field { cx: &cx, path: &path, node, def: top.def("placement") }, &cluster, pipeline.stages)?
-        }
+        None => packed(&parallel, pipeline.stages),
+        Some((path, node)) => read_placement(
+            Field { cx: &cx, path: &path, node, def: top.def("placement") },
+            &cluster,
+            pipeline.stages,
+            &parallel,
+        )?,
     };
-    let scenario = Scenario { title, seed, source, layers, cluster, pipeline, training, placement };
+    let mut scenario = Scenario {
+        title,
+        seed,
+        source,
+        layers,
+        cluster,
+        pipeline,
+        training,
+        placement,
+        parallel,
+        gradients,
+        server_devices: Vec::new(),
+    };
+    check_sync(&top, &mut scenario)?;
     if let Some(bound) = step_bound_ns(&scenario).filter(|&b| b > MAX_STEP_NS) {
         let origin = top
             .get("pipeline")
@@ -728,9 +886,19 @@ fn step_bound_ns(s: &Scenario) -> Option<u128> {
 /// `packed` puts stage s on device s; `spread` deals stages out over the
 /// nodes in turn (stage s on node s mod nodes, in that node's next free
 /// slot); a list names a distinct device for each stage.
-fn read_placement(a: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u32>, ScenarioError> {
+fn read_placement(
+    a: Field<'_>,
+    cluster: &Cluster,
+    stages: u32,
+    parallel: &Parallel,
+) -> Result<Vec<u32>, ScenarioError> {
+    let d = parallel.data;
+    let workers = stages * d;
     match &a.node.value {
-        Value::Str(s) if s == "packed" => Ok((0..stages).collect()),
+        Value::Str(s) if s == "packed" => Ok(packed(parallel, stages)),
+        Value::Str(s) if s == "spread" && d > 1 => Err(a.err(format!(
+            "spread places one pipeline; with parallel.data = {d} use packed (numbered by parallel.order) or a list of {workers} device ids"
+        ))),
         Value::Str(s) if s == "spread" => {
             let (nodes, dpn) = match cluster.fabric {
                 Fabric::TwoLevel { nodes, devices_per_node, .. } => (nodes, devices_per_node),
@@ -739,6 +907,12 @@ fn read_placement(a: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u3
             Ok((0..stages).map(|s| (s % nodes) * dpn + s / nodes).collect())
         }
         Value::Seq(items) => {
+            if items.len() as u32 != workers && d > 1 {
+                return Err(a.err(format!(
+                    "names {} devices, but {d} replicas x {stages} stages need {workers} (replica 0's stages first)",
+                    items.len()
+                )));
+            }
             if items.len() as u32 != stages {
                 return Err(
                     a.err(format!("names {} devices, but there are {stages} stages (one device each)", items.len()))
@@ -752,7 +926,12 @@ fn read_placement(a: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u3
                     at.err(format!("must name a device from 0 to {}, found {}", cluster.devices - 1, item.shown()))
                 })? as u32;
                 if let Some(j) = out.iter().position(|&x| x == d) {
-                    return Err(at.err(format!("device {d} is already given to stage {j}")));
+                    let whose = if workers > stages {
+                        format!("replica {}'s stage {}", j as u32 / stages, j as u32 % stages)
+                    } else {
+                        format!("stage {j}")
+                    };
+                    return Err(at.err(format!("device {d} is already given to {whose}")));
                 }
                 out.push(d);
             }
@@ -760,6 +939,231 @@ fn read_placement(a: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Vec<u3
         }
         _ => Err(a.err(format!("expected packed, spread or a list of device ids, found {}", a.node.shown()))),
     }
+}
+
+/// `packed`: replica r's stage s on the device numbered by `parallel.order`,
+/// fastest-varying axis first.
+fn packed(parallel: &Parallel, stages: u32) -> Vec<u32> {
+    let d = parallel.data;
+    let data_first = parallel.order.first() != Some(&Axis::Pipeline);
+    (0..d).flat_map(|r| (0..stages).map(move |s| if data_first { s * d + r } else { r * stages + s })).collect()
+}
+
+fn read_parallel(p: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Parallel, ScenarioError> {
+    let m = p.map(keys::PARALLEL)?;
+    let data = m
+        .opt("data", |a| {
+            let d = a.whole()? as u32;
+            let need = d as u64 * stages as u64;
+            if need > cluster.devices as u64 {
+                return Err(a.err(format!(
+                    "{d} replicas x {stages} stages need {need} devices, but the cluster has {}",
+                    cluster.devices
+                )));
+            }
+            Ok(d)
+        })?
+        .unwrap_or(1);
+    let order = m
+        .opt("order", |a| {
+            let Value::Seq(items) = &a.node.value else {
+                return Err(a.err(format!("expected a list such as [data, pipeline], found {}", a.node.shown())));
+            };
+            let mut out = Vec::new();
+            for (i, item) in items.iter().enumerate() {
+                let path = format!("{}.{i}", a.path);
+                let at = Field { cx: a.cx, path: &path, node: item, def: None };
+                let axis = match at.str()? {
+                    "data" => Axis::Data,
+                    "pipeline" => Axis::Pipeline,
+                    other => return Err(at.err(format!("unknown axis `{other}`; expected data or pipeline"))),
+                };
+                if out.contains(&axis) {
+                    return Err(at.err(format!("names {} twice", at.str()?)));
+                }
+                out.push(axis);
+            }
+            for axis in [Axis::Data, Axis::Pipeline] {
+                if !out.contains(&axis) {
+                    out.push(axis);
+                }
+            }
+            Ok(out)
+        })?
+        .unwrap_or_else(|| Parallel::default().order);
+    Ok(Parallel { data, order })
+}
+
+fn read_gradients(g: Field<'_>) -> Result<Gradients, ScenarioError> {
+    let m = g.map(keys::GRADIENTS)?;
+    let d = Gradients::default();
+    let sync = m
+        .opt("sync", |a| {
+            let name = a.str()?;
+            Algorithm::from_name(name).ok_or_else(|| {
+                let names: Vec<&str> = Algorithm::ALL.iter().map(|a| a.name()).collect();
+                a.err(format!("unknown algorithm `{name}`; expected one of {}", names.join(", ")))
+            })
+        })?
+        .unwrap_or(d.sync);
+    let bucket_bytes = m.opt("bucket", |a| positive(&a, a.bytes()?))?.unwrap_or(d.bucket_bytes);
+    let overlap = m.opt("overlap", |a| a.boolean())?.unwrap_or(d.overlap);
+    let bytes_per_param = m.opt("bytes_per_param", |a| a.whole().map(|v| v as u32))?.unwrap_or(d.bytes_per_param);
+    let servers = m.opt("servers", |a| a.whole().map(|v| v as u32))?.unwrap_or(d.servers);
+    let dedicated_servers = m
+        .opt("server_devices", |a| match a.str()? {
+            "colocated" => Ok(false),
+            "dedicated" => Ok(true),
+            other => Err(a.err(format!("unknown server_devices `{other}`; expected colocated or dedicated"))),
+        })?
+        .unwrap_or(d.dedicated_servers);
+    let compression = m
+        .opt("compression", |c| {
+            let c_at = c;
+            let c = c.map(keys::COMPRESSION)?;
+            let kind = c.opt("kind", |a| Ok(a.str()?.to_string()))?.unwrap_or_else(|| "none".into());
+            let kind = match kind.as_str() {
+                "none" => return Ok(None),
+                "quantize" => {
+                    CompressionKind::Quantize { bits: c.opt("bits", |a| a.whole().map(|v| v as u32))?.unwrap_or(8) }
+                }
+                "top-k" => CompressionKind::TopK {
+                    keep: c
+                        .opt("keep", |a| {
+                            let v = a.number()?;
+                            if v > 0.0 && v <= 1.0 {
+                                Ok(v)
+                            } else {
+                                Err(a.err(format!("must be more than 0 and at most 1, found {v}")))
+                            }
+                        })?
+                        .unwrap_or(0.001),
+                },
+                other => {
+                    return Err(c.cx.err(
+                        &join(c.path, "kind"),
+                        &c.get("kind").map(|(_, n)| n.origin.clone()).unwrap_or_else(|| c.origin.clone()),
+                        format!("unknown compression `{other}`; expected none, quantize or top-k"),
+                    ))
+                }
+            };
+            let rate_bytes_per_s = c.opt("rate", |a| positive(&a, a.bytes_per_s()?))?.ok_or_else(|| {
+                c_at.err("needs rate: the encode and decode speed in dense bytes per second, e.g. rate: 200GB/s")
+            })?;
+            Ok(Some(GradientCompression { kind, rate_bytes_per_s }))
+        })?
+        .flatten();
+    Ok(Gradients { sync, bucket_bytes, overlap, bytes_per_param, servers, dedicated_servers, compression })
+}
+
+/// Checks of the synchronisation settings against the layout, naming the key
+/// they concern; picks the dedicated servers' devices.
+fn check_sync(top: &Section<'_>, s: &mut Scenario) -> Result<(), ScenarioError> {
+    let key_err = |section: &str, key: &str, message: String| -> ScenarioError {
+        let origin = top
+            .get(section)
+            .and_then(|(_, n)| match &n.value {
+                Value::Map(e) => e.iter().find(|(k, _, _)| k == key).map(|(_, _, n)| n.origin.clone()),
+                _ => None,
+            })
+            .or_else(|| top.get(section).map(|(_, n)| n.origin.clone()))
+            .unwrap_or(Origin::Default);
+        top.cx.err(&format!("{section}.{key}"), &origin, message)
+    };
+    let d = s.parallel.data;
+    let g = &s.gradients;
+    let shard = s.training.shard;
+    if shard != Shard::None {
+        let need = 2 + g.bytes_per_param as u64;
+        if s.training.state_bytes_per_param < need {
+            return Err(key_err(
+                "training",
+                "state_bytes_per_param",
+                format!(
+                    "is {}, but sharding splits it into weights (2 B), gradients (gradients.bytes_per_param = {}) and optimizer state, at least {need} in all",
+                    s.training.state_bytes_per_param, g.bytes_per_param
+                ),
+            ));
+        }
+        if !g.sync.has_halves() {
+            return Err(key_err(
+                "training",
+                "shard",
+                format!(
+                    "{} has no reduce-scatter and all-gather halves for sharded state; use ring, halving-doubling, hierarchical or direct",
+                    g.sync.name()
+                ),
+            ));
+        }
+        if matches!(g.compression, Some(GradientCompression { kind: CompressionKind::TopK { .. }, .. })) {
+            return Err(key_err(
+                "training",
+                "shard",
+                "sharded state is reduce-scattered, which top-k gradients (exchanged as an all-gather) cannot be; use quantize or none".into(),
+            ));
+        }
+    }
+    if d <= 1 {
+        return Ok(());
+    }
+    match g.sync {
+        Algorithm::HalvingDoubling if !d.is_power_of_two() => {
+            return Err(key_err(
+                "gradients",
+                "sync",
+                format!("halving-doubling pairs replicas by powers of two, but parallel.data is {d}"),
+            ))
+        }
+        Algorithm::ParameterServer if !g.dedicated_servers && g.servers > d => {
+            return Err(key_err(
+                "gradients",
+                "servers",
+                format!("{} colocated servers need as many replicas, but parallel.data is {d}; use server_devices: dedicated or fewer servers", g.servers),
+            ))
+        }
+        Algorithm::Hierarchical => {
+            let p = s.pipeline.stages;
+            for stage in 0..p {
+                let mut counts: Vec<(u32, u32)> = Vec::new();
+                for r in 0..d {
+                    let node = s.node_of(s.placement[(r * p + stage) as usize]);
+                    match counts.iter_mut().find(|(n, _)| *n == node) {
+                        Some(c) => c.1 += 1,
+                        None => counts.push((node, 1)),
+                    }
+                }
+                if let Some(&(node, n)) = counts.iter().find(|c| c.1 != counts[0].1) {
+                    return Err(key_err(
+                        "gradients",
+                        "sync",
+                        format!(
+                            "hierarchical needs the same number of stage {stage}'s replicas on every node, but node {} holds {} and node {node} holds {n}",
+                            counts[0].0, counts[0].1
+                        ),
+                    ));
+                }
+            }
+        }
+        _ => {}
+    }
+    if g.sync == Algorithm::ParameterServer && g.dedicated_servers {
+        let used = &s.placement;
+        let free: Vec<u32> = (0..s.cluster.devices).filter(|x| !used.contains(x)).take(g.servers as usize).collect();
+        if (free.len() as u32) < g.servers {
+            return Err(key_err(
+                "gradients",
+                "servers",
+                format!(
+                    "{} dedicated servers need devices no replica uses, but only {} of the cluster's {} are free",
+                    g.servers,
+                    free.len(),
+                    s.cluster.devices
+                ),
+            ));
+        }
+        s.server_devices = free;
+    }
+    Ok(())
 }
 
 fn positive<T: PartialOrd + Default>(a: &Field<'_>, v: T) -> Result<T, ScenarioError> {
@@ -843,6 +1247,15 @@ fn read_training(t: Field<'_>) -> Result<Training, ScenarioError> {
                 other => Err(a.err(format!("unknown recompute `{other}`; expected none or full"))),
             })?
             .unwrap_or(d.recompute),
+        shard: t
+            .opt("shard", |a| match a.str()? {
+                "none" => Ok(Shard::None),
+                "optimizer" => Ok(Shard::Optimizer),
+                "gradients" => Ok(Shard::Gradients),
+                other => Err(a.err(format!("unknown shard `{other}`; expected none, optimizer or gradients"))),
+            })?
+            .unwrap_or(d.shard),
+        update_ns: t.opt("update", |a| a.duration_ns())?.unwrap_or(d.update_ns),
     })
 }
 

@@ -68,6 +68,8 @@ enum Marks {
     Cross,
     /// A grid of dots.
     Dots,
+    /// Horizontal and vertical lines: a square grid.
+    Grid,
 }
 
 /// One place for every idle cause's look.
@@ -93,11 +95,18 @@ fn cause_style(cause: Cause) -> CauseStyle {
         Cause::Send => {
             CauseStyle { tint: "#e6f1ee", ink: "#2f6f64", marks: Marks::Dots, legend: "idle: own send not yet arrived" }
         }
+        Cause::Sync => CauseStyle {
+            tint: "#f6f3dc",
+            ink: "#8a7a12",
+            marks: Marks::Grid,
+            legend: "idle: waiting for gradient synchronisation",
+        },
     }
 }
 
 /// Every cause, in the order the legend lists them.
-const CAUSES: [Cause; 6] = [Cause::Fill, Cause::Drain, Cause::Activation, Cause::Gradient, Cause::Link, Cause::Send];
+const CAUSES: [Cause; 7] =
+    [Cause::Fill, Cause::Drain, Cause::Activation, Cause::Gradient, Cause::Link, Cause::Send, Cause::Sync];
 
 /// The `<pattern>` of `cause`, with id `idle-<cause>`.
 fn cause_pattern(cause: Cause) -> String {
@@ -113,6 +122,11 @@ fn cause_pattern(cause: Cause) -> String {
             "<pattern id=\"idle-{id}\" patternUnits=\"userSpaceOnUse\" width=\"7\" height=\"7\" patternTransform=\"rotate(45)\">\
              <rect width=\"7\" height=\"7\" fill=\"{tint}\"/><line x1=\"0\" y1=\"0\" x2=\"0\" y2=\"7\" stroke=\"{ink}\" stroke-width=\"1.1\"/>\
              <line x1=\"0\" y1=\"0\" x2=\"7\" y2=\"0\" stroke=\"{ink}\" stroke-width=\"1.1\"/></pattern>"
+        ),
+        Marks::Grid => format!(
+            "<pattern id=\"idle-{id}\" patternUnits=\"userSpaceOnUse\" width=\"6\" height=\"6\">\
+             <rect width=\"6\" height=\"6\" fill=\"{tint}\"/><line x1=\"0\" y1=\"0\" x2=\"0\" y2=\"6\" stroke=\"{ink}\" stroke-width=\"1\"/>\
+             <line x1=\"0\" y1=\"0\" x2=\"6\" y2=\"0\" stroke=\"{ink}\" stroke-width=\"1\"/></pattern>"
         ),
         Marks::Dots => format!(
             "<pattern id=\"idle-{id}\" patternUnits=\"userSpaceOnUse\" width=\"5\" height=\"5\">\
@@ -666,6 +680,7 @@ mod tests {
                     Marks::Lines(a) => format!("lines {a}"),
                     Marks::Cross => "cross".into(),
                     Marks::Dots => "dots".into(),
+                    Marks::Grid => "grid".into(),
                 };
                 format!("{} {} {marks}", s.tint, s.ink)
             })
