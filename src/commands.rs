@@ -187,6 +187,8 @@ pub struct RunRequest<'a> {
     pub max_memory: u64,
     /// The charts' width and time window.
     pub view: View,
+    /// The devices the Gantt chart shows (`None`: its default).
+    pub devices: Option<Vec<u32>>,
 }
 
 /// `baton run`: outputs `--svg`, `--memory-svg`, `--layers-csv`, `--trace`, `--json`.
@@ -199,11 +201,24 @@ pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandErr
     };
     check_memory(&scenario, making, 1, r.max_memory)?;
     check_view(&r.view, &["--svg", "--memory-svg"], outputs, None)?;
+    if let Some(list) = &r.devices {
+        if !outputs.wants("--svg") {
+            return Err(CommandError::Chart("--devices picks the Gantt chart's devices; add --svg PATH".into()));
+        }
+        let n = scenario.workers();
+        if let Some(&d) = list.iter().find(|&&d| d >= n) {
+            return Err(CommandError::Chart(format!(
+                "--devices names device {d}, but the step has {n} devices (0 to {})",
+                n - 1
+            )));
+        }
+    }
     let outcome = crate::simulate(&scenario)?;
     let (trace, report) = (&outcome.trace, &outcome.report);
     check_view(&r.view, &["--svg", "--memory-svg"], outputs, Some(report.step_time_ns))?;
     if outputs.wants("--svg") {
-        let options = gantt::GanttOptions { comm_lanes: r.comm_lanes, title: None, view: r.view };
+        let options =
+            gantt::GanttOptions { comm_lanes: r.comm_lanes, title: None, view: r.view, devices: r.devices.clone() };
         let run = gantt::Run {
             trace,
             report,

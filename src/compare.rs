@@ -140,7 +140,7 @@ impl Comparison {
                 entries.iter().map(|e| format!("{} {}", e.label, e.report.title)).collect::<Vec<_>>().join(" / ")
             )
         };
-        gantt::render(&runs, &GanttOptions { comm_lanes, title: Some(title), view })
+        gantt::render(&runs, &GanttOptions { comm_lanes, title: Some(title), view, devices: None })
     }
 
     /// The reports as a JSON array.

@@ -270,6 +270,34 @@ pub fn parse_window(text: &str) -> Result<Window, String> {
     Ok(Window { start_ns, end_ns })
 }
 
+/// Reads `--devices LIST`: device numbers and inclusive ranges separated by
+/// commas, e.g. `0-7,12`; returned sorted, without repeats.
+pub fn parse_devices(text: &str) -> Result<Vec<u32>, String> {
+    let mut out = Vec::new();
+    for part in text.split(',') {
+        let part = part.trim();
+        let number = |t: &str| {
+            t.trim().parse::<u32>().map_err(|_| format!("`{t}` in `{text}` is not a device number; write e.g. 0-7,12"))
+        };
+        match part.split_once('-') {
+            Some((a, b)) => {
+                let (a, b) = (number(a)?, number(b)?);
+                if a > b {
+                    return Err(format!("the range `{part}` ends before it starts"));
+                }
+                if b - a > 1 << 20 {
+                    return Err(format!("the range `{part}` is too long"));
+                }
+                out.extend(a..=b);
+            }
+            None => out.push(number(part)?),
+        }
+    }
+    out.sort_unstable();
+    out.dedup();
+    Ok(out)
+}
+
 /// Devices per node when the scenario's cluster is made of nodes.
 pub fn devices_per_node(s: &Scenario) -> Option<u32> {
     match s.cluster.fabric {

@@ -263,6 +263,10 @@ struct RunArgs {
     /// receives, e.g. --svg timeline.svg --no-comm-lanes.
     #[arg(long)]
     no_comm_lanes: bool,
+    /// Chart only these devices (numbers and ranges; above 64 devices the
+    /// chart shows replica 0's unless told), e.g. --svg timeline.svg --devices 0-7,12.
+    #[arg(long, value_name = "LIST", value_parser = baton::parse_devices)]
+    devices: Option<Vec<u32>>,
     /// Refuse (exit 2) a run whose estimated memory is over SIZE (default
     /// 16GiB on every machine), e.g. --max-memory 4GiB.
     #[arg(long, value_name = "SIZE", default_value = "16GiB", value_parser = parse_size)]
@@ -296,6 +300,7 @@ fn main() -> ExitCode {
                 strict: a.strict,
                 max_memory: a.max_memory,
                 view: a.chart.view(),
+                devices: a.devices.clone(),
             };
             finish(commands::run(&r, &mut o), o)
         }),

@@ -320,6 +320,8 @@ pub struct Report {
     pub ops: usize,
     /// Transfers between devices.
     pub transfers: usize,
+    /// Point-to-point transfers of the gradient collectives.
+    pub sync_transfers: usize,
     /// One entry per pipeline device.
     pub devices: Vec<DeviceReport>,
     /// Every directed link that carried data, in topology order.
@@ -500,6 +502,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         fits: devices.iter().all(|d| d.fits),
         ops: trace.ops.iter().map(Vec::len).sum(),
         transfers: trace.transfers.len(),
+        sync_transfers: trace.sync_transfers.len(),
         devices,
         links: trace
             .link_stats

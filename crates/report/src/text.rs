@@ -48,40 +48,92 @@ pub fn render(report: &Report, options: &TextOptions) -> String {
         report.seed,
         if report.jitter > 0.0 { format!(", compute jitter +-{}%", report.jitter * 100.0) } else { String::new() }
     );
+    let replicas = report.parallel.data;
+    if replicas > 1 {
+        let _ = writeln!(
+            s,
+            "layout {} replicas x {} stages = {} devices, gradients by {}",
+            replicas,
+            report.parallel.pipeline,
+            report.parallel.devices_used,
+            report.collectives.iter().find(|c| c.phase != "tied all-reduce").map_or("nothing", |c| c.algorithm)
+        );
+    }
     let _ = writeln!(s);
     let _ = writeln!(s, "step time        {}", format_ns(report.step_time_ns));
     let _ = writeln!(s, "bubble fraction  {:.2}% (idle / (devices x step time))", report.bubble_fraction * 100.0);
-    let _ = writeln!(
-        s,
-        "throughput       {:.2} samples/s ({} micro-batches x {} samples / step time)",
-        report.samples_per_s, report.micro_batches, report.micro_batch_size
-    );
-    let _ = writeln!(s, "simulated        {} ops, {} transfers", report.ops, report.transfers);
+    if replicas > 1 {
+        let _ = writeln!(
+            s,
+            "throughput       {:.2} samples/s (global batch {} = {} replicas x {} micro-batches x {} samples, / step time)",
+            report.samples_per_s, report.global_batch, replicas, report.micro_batches, report.micro_batch_size
+        );
+    } else {
+        let _ = writeln!(
+            s,
+            "throughput       {:.2} samples/s ({} micro-batches x {} samples / step time)",
+            report.samples_per_s, report.micro_batches, report.micro_batch_size
+        );
+    }
+    let synced = !report.collectives.is_empty();
+    if synced {
+        let sync_transfers: usize = report.sync_transfers;
+        let _ = writeln!(
+            s,
+            "simulated        {} ops, {} transfers, {} collective{} ({} transfers)",
+            report.ops,
+            report.transfers,
+            report.collectives.len(),
+            if report.collectives.len() == 1 { "" } else { "s" },
+            sync_transfers
+        );
+        let worst = report.devices.iter().max_by_key(|d| (d.sync_exposed_ns, std::cmp::Reverse(d.device)));
+        if let Some(w) = worst {
+            let _ = writeln!(
+                s,
+                "sync exposed     {} at worst (device {}): synchronisation after its last compute op",
+                format_ns(w.sync_exposed_ns),
+                w.device
+            );
+        }
+    } else {
+        let _ = writeln!(s, "simulated        {} ops, {} transfers", report.ops, report.transfers);
+    }
     let _ = writeln!(s);
     let placed = report.devices.iter().any(|d| d.cluster_device != d.device);
     let _ = writeln!(
         s,
-        "{:>6}  {:>12}  {:>12}  {:>8}  {:>16}  {:>25}{}",
+        "{:>6}  {:>12}  {:>12}  {:>8}  {:>16}  {:>25}{}{}",
         "device",
         "busy",
         "idle",
         "bubble",
         "peak activations",
         "peak mem / capacity",
+        if synced { format!("  {:>12}", "sync exposed") } else { String::new() },
         if placed { "  placed on" } else { "" }
     );
     for d in &report.devices {
         let capacity = d.memory_capacity_bytes.map_or_else(|| "unlimited".to_string(), format_bytes);
         let _ = writeln!(
             s,
-            "{:>6}  {:>12}  {:>12}  {:>7.2}%  {:>16}  {:>25}{}",
+            "{:>6}  {:>12}  {:>12}  {:>7.2}%  {:>16}  {:>25}{}{}",
             d.device,
             format_ns(d.busy_ns),
             format_ns(d.idle_ns),
             d.bubble_fraction * 100.0,
             d.peak_activations,
             format!("{} / {}", format_bytes(d.peak_memory_bytes), capacity),
-            if placed { format!("  cluster device {}", d.cluster_device) } else { String::new() }
+            if synced { format!("  {:>12}", format_ns(d.sync_exposed_ns)) } else { String::new() },
+            if placed {
+                if replicas > 1 {
+                    format!("  cluster device {} (replica {}, stage {})", d.cluster_device, d.replica, d.stage)
+                } else {
+                    format!("  cluster device {}", d.cluster_device)
+                }
+            } else {
+                String::new()
+            }
         );
         if !d.fits {
             s.pop();

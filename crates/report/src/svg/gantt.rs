@@ -40,6 +40,10 @@ const UPDATE: Rgb = (0x4f, 0x6d, 0x6a);
 const SEND: Rgb = (0x3d, 0x48, 0x5a);
 /// Receives: a raspberry, a hue no op kind or chunk shade uses.
 const RECEIVE: Rgb = (0xa0, 0x2c, 0x7a);
+/// A collective's sends: a deep gold.
+const SYNC_SEND: Rgb = (0xb8, 0x86, 0x0b);
+/// A collective's receives: a violet.
+const SYNC_RECEIVE: Rgb = (0x6a, 0x4c, 0x9c);
 
 /// The colour of each op kind: one place for every kind the schedule knows.
 fn kind_rgb(kind: OpKind) -> Rgb {
@@ -172,11 +176,41 @@ pub struct GanttOptions {
     pub title: Option<String>,
     /// Width and time window.
     pub view: View,
+    /// The devices to chart (`None`: all of them, or replica 0's alone when
+    /// a run has more than [`MAX_CHART_DEVICES`]).
+    pub devices: Option<Vec<u32>>,
 }
 
 impl Default for GanttOptions {
     fn default() -> Self {
-        GanttOptions { comm_lanes: true, title: None, view: View::default() }
+        GanttOptions { comm_lanes: true, title: None, view: View::default(), devices: None }
+    }
+}
+
+/// Above this many devices a chart shows replica 0's devices unless told
+/// which to show.
+pub const MAX_CHART_DEVICES: usize = 64;
+
+/// Which of a run's devices a chart shows, and a note when it leaves some out.
+fn shown_devices(run: &Run<'_>, chosen: Option<&[u32]>) -> (Vec<bool>, Option<String>) {
+    let n = run.trace.ops.len();
+    match chosen {
+        Some(list) => {
+            let shown: Vec<bool> = (0..n as u32).map(|d| list.contains(&d)).collect();
+            let k = shown.iter().filter(|&&x| x).count();
+            let note = (k < n).then(|| format!("Showing {k} of {n} devices (--devices)."));
+            (shown, note)
+        }
+        None if n > MAX_CHART_DEVICES => {
+            let p = run.trace.plan.shape.stages as usize;
+            let shown = (0..n).map(|d| d < p).collect();
+            let note = format!(
+                "Showing replica 0's {p} devices of {n} (more than {MAX_CHART_DEVICES}); --devices picks others, e.g. --devices 0-7,{}.",
+                n - 1
+            );
+            (shown, Some(note))
+        }
+        None => (vec![true; n], None),
     }
 }
 
@@ -198,36 +232,42 @@ pub struct Run<'a> {
 
 /// How one run's devices become lanes.
 struct Lanes {
-    /// Lane of each pipeline device, counted from the run's first lane.
-    of_device: Vec<usize>,
+    /// Lane of each device, counted from the run's first lane (`None`: not
+    /// shown).
+    of_device: Vec<Option<usize>>,
+    /// Lanes shown.
+    count: usize,
     /// Label of each pipeline device.
     label: Vec<String>,
     /// Bands of consecutive lanes on one node: (first lane, lanes, node).
     nodes: Vec<(usize, usize, u32)>,
 }
 
-fn lanes_of(run: &Run<'_>) -> Lanes {
+fn lanes_of(run: &Run<'_>, shown: &[bool]) -> Lanes {
     let devices = run.trace.ops.len();
     let cluster: Vec<u32> =
         (0..devices).map(|d| run.report.devices.get(d).map_or(d as u32, |x| x.cluster_device)).collect();
     let placed = run.devices_per_node.is_some() || cluster.iter().enumerate().any(|(d, &c)| c != d as u32);
-    let mut order: Vec<usize> = (0..devices).collect();
+    let mut order: Vec<usize> = (0..devices).filter(|&d| shown.get(d).copied().unwrap_or(true)).collect();
     if run.devices_per_node.is_some() {
         order.sort_by_key(|&d| cluster[d]);
     }
-    let mut of_device = vec![0; devices];
+    let mut of_device = vec![None; devices];
     for (lane, &d) in order.iter().enumerate() {
-        of_device[d] = lane;
+        of_device[d] = Some(lane);
     }
+    let replicas = run.trace.replicas > 1;
     let p = run.trace.plan.shape.stages.max(1);
     let chunks = run.trace.plan.shape.chunks.max(1);
     let prefix = if run.label.is_empty() { String::new() } else { format!("{}: ", run.label) };
     let label = (0..devices)
         .map(|d| {
+            let stage = d as u32 % p;
+            let replica = if replicas { format!("r{} ", d as u32 / p) } else { String::new() };
             if placed {
-                let stages: Vec<String> = (0..chunks).map(|c| (d as u32 + c * p).to_string()).collect();
+                let stages: Vec<String> = (0..chunks).map(|c| (stage + c * p).to_string()).collect();
                 let word = if chunks > 1 { "stages" } else { "stage" };
-                format!("{prefix}{word} {} · dev {}", stages.join("+"), cluster[d])
+                format!("{prefix}{replica}{word} {} · dev {}", stages.join("+"), cluster[d])
             } else {
                 format!("{prefix}device {d}")
             }
@@ -243,7 +283,7 @@ fn lanes_of(run: &Run<'_>) -> Lanes {
             }
         }
     }
-    Lanes { of_device, label, nodes }
+    Lanes { count: order.len(), of_device, label, nodes }
 }
 
 /// Text width in pixels, roughly, at `px` font size.
@@ -257,33 +297,42 @@ fn text_px(text: &str, px: f64) -> f64 {
 pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, ReportError> {
     let title =
         options.title.clone().unwrap_or_else(|| runs.first().map(|r| r.report.title.clone()).unwrap_or_default());
-    let comm = options.comm_lanes && runs.iter().any(|r| !r.trace.transfers.is_empty());
+    let comm =
+        options.comm_lanes && runs.iter().any(|r| !r.trace.transfers.is_empty() || !r.trace.sync_transfers.is_empty());
+    let shown: Vec<(Vec<bool>, Option<String>)> =
+        runs.iter().map(|r| shown_devices(r, options.devices.as_deref())).collect();
+    let is_shown = |r: usize, d: u32| shown[r].0.get(d as usize).copied().unwrap_or(false);
     let step_ns = runs.iter().map(|r| r.report.step_time_ns).max().unwrap_or(0).max(1);
     let (ws, we) = options.view.span(step_ns);
     // An interval [a, b) (from the run's start) within the window?
     let visible = |a: u64, b: u64| b > ws && a < we || (a == b && a >= ws && a < we);
     let mut total = 0usize;
     let mut busiest = 0usize;
-    for r in runs {
+    for (i, r) in runs.iter().enumerate() {
         let t0 = r.trace.start().as_ns();
-        for recs in &r.trace.ops {
+        for (d, recs) in r.trace.ops.iter().enumerate() {
+            if !is_shown(i, d as u32) {
+                continue;
+            }
             let n = recs.iter().filter(|o| visible(o.start.as_ns() - t0, o.end.as_ns() - t0)).count();
             total += n;
             busiest = busiest.max(n);
         }
         if comm {
             total += 2 * r.trace.transfers.iter().filter(|t| visible(t.start.as_ns() - t0, t.end.as_ns() - t0)).count();
+            total +=
+                2 * r.trace.sync_transfers.iter().filter(|t| visible(t.start.as_ns() - t0, t.end.as_ns() - t0)).count();
         }
     }
     if total > MAX_CHART_OPS {
         return Err(ReportError::TooLarge { ops: total, limit: MAX_CHART_OPS });
     }
-    let layouts: Vec<Lanes> = runs.iter().map(lanes_of).collect();
+    let layouts: Vec<Lanes> = runs.iter().zip(&shown).map(|(r, s)| lanes_of(r, &s.0)).collect();
     let mut first_lane = Vec::with_capacity(runs.len());
     let mut lanes = 0usize;
-    for r in runs {
+    for l in &layouts {
         first_lane.push(lanes);
-        lanes += r.trace.ops.len().max(1);
+        lanes += l.count.max(1);
     }
     let lanes = lanes.max(1);
     let grouped = layouts.iter().any(|l| !l.nodes.is_empty());
@@ -325,8 +374,14 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         }
     }
     if comm {
-        legend.push(("send (bytes leaving)".into(), format!("fill=\"{}\"", hex(SEND))));
-        legend.push(("receive (data in flight)".into(), format!("fill=\"{}\"", hex(RECEIVE))));
+        if runs.iter().any(|r| !r.trace.transfers.is_empty()) {
+            legend.push(("send (bytes leaving)".into(), format!("fill=\"{}\"", hex(SEND))));
+            legend.push(("receive (data in flight)".into(), format!("fill=\"{}\"", hex(RECEIVE))));
+        }
+        if runs.iter().any(|r| !r.trace.sync_transfers.is_empty()) {
+            legend.push(("gradient sync send".into(), format!("fill=\"{}\"", hex(SYNC_SEND))));
+            legend.push(("gradient sync receive".into(), format!("fill=\"{}\"", hex(SYNC_RECEIVE))));
+        }
     }
     let margin = 12.0;
     let mut legend_pos = Vec::with_capacity(legend.len());
@@ -352,8 +407,14 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         } else {
             String::new()
         };
+        let replicas = if report.parallel.data > 1 {
+            let sync = report.collectives.iter().find(|c| c.phase != "tied all-reduce").map_or("", |c| c.algorithm);
+            format!(" · {} replicas, gradients by {sync}", report.parallel.data)
+        } else {
+            String::new()
+        };
         let caption = format!(
-            "{}step time {} · bubble {:.2}% · {} · {} stages · {} micro-batches{} · seed {}{}",
+            "{}step time {} · bubble {:.2}% · {} · {} stages · {} micro-batches{}{} · seed {}{}",
             if run.label.is_empty() { String::new() } else { format!("{}: ", run.label) },
             format_ns(report.step_time_ns),
             report.bubble_fraction * 100.0,
@@ -361,10 +422,16 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
             report.stages,
             report.micro_batches,
             chunks_note,
+            replicas,
             report.seed,
             if run.note.is_empty() { String::new() } else { format!(" · {}", run.note) }
         );
         captions.extend(wrap(&caption, caption_chars, 4));
+    }
+    for (_, note) in &shown {
+        if let Some(note) = note {
+            captions.extend(wrap(note, caption_chars, 2));
+        }
     }
     if let Some(w) = options.view.window {
         let note =
@@ -463,7 +530,8 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
             );
         }
         for (d, label) in layout.label.iter().enumerate() {
-            let lane = first_lane[r] + layout.of_device[d];
+            let Some(lane) = layout.of_device[d] else { continue };
+            let lane = first_lane[r] + lane;
             let _ = writeln!(
                 body,
                 "<text x=\"{:.1}\" y=\"{:.2}\" text-anchor=\"end\" dominant-baseline=\"central\">{}</text>",
@@ -496,7 +564,8 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         let t0 = run.trace.start().as_ns();
         for g in &run.report.gaps {
             let Some((x0, x1)) = span(g.start_ns.saturating_sub(t0), g.end_ns.saturating_sub(t0)) else { continue };
-            let lane = first_lane[r] + layouts[r].of_device.get(g.device as usize).copied().unwrap_or(0);
+            let Some(lane) = layouts[r].of_device.get(g.device as usize).copied().flatten() else { continue };
+            let lane = first_lane[r] + lane;
             let _ = writeln!(
                 body,
                 "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"url(#idle-{})\" stroke=\"{}\" stroke-width=\"0.5\"><title>{}idle on device {}, {} to {} ({}): {}</title></rect>",
@@ -522,7 +591,8 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         let chunks = trace.plan.shape.chunks;
         let p = trace.plan.shape.stages.max(1);
         for (d, recs) in trace.ops.iter().enumerate() {
-            let y = lane_y(first_lane[r] + layouts[r].of_device[d]);
+            let Some(lane) = layouts[r].of_device[d] else { continue };
+            let y = lane_y(first_lane[r] + lane);
             for rec in recs {
                 let Some((x0, x1)) = span(rec.start.as_ns() - t0, rec.end.as_ns() - t0) else { continue };
                 let w = (x1 - x0).max(0.5);
@@ -584,12 +654,55 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
                     format_ns(t.end.as_ns()),
                     held
                 );
-                let lane = |d: u32| first_lane[r] + layouts[r].of_device.get(d as usize).copied().unwrap_or(0);
-                let send_y = lane_y(lane(t.src)) + lane_h + 2.0 + (comm_h / 2.0 - comm_row) / 2.0;
-                let recv_y = lane_y(lane(t.dst)) + lane_h + 2.0 + comm_h / 2.0 + (comm_h / 2.0 - comm_row) / 2.0;
+                let lane = |d: u32| layouts[r].of_device.get(d as usize).copied().flatten().map(|l| first_lane[r] + l);
+                let send_y = lane(t.src).map(|l| lane_y(l) + lane_h + 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
+                let recv_y =
+                    lane(t.dst).map(|l| lane_y(l) + lane_h + 2.0 + comm_h / 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
                 // Sends: bytes leaving the sender; receives: data in flight to the receiver.
                 let marks = [("send", send_y, t.sent, SEND), ("receive", recv_y, t.end, RECEIVE)];
                 for (side, y, until, colour) in marks {
+                    let Some(y) = y else { continue };
+                    let Some((x0, x1)) = span(t.start.as_ns() - t0, until.as_ns() - t0) else { continue };
+                    let _ = writeln!(
+                        body,
+                        "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{side}: {what}</title></rect>",
+                        x0,
+                        y,
+                        (x1 - x0).max(MIN_MARK_PX),
+                        comm_row,
+                        hex(colour)
+                    );
+                }
+            }
+            for t in &trace.sync_transfers {
+                let c = &trace.collectives[t.collective as usize];
+                let held = t
+                    .bottleneck
+                    .and_then(|l| trace.link_names.get(l as usize))
+                    .map(|n| format!("; held back most on {}", xml_escape(n)))
+                    .unwrap_or_default();
+                let what = format!(
+                    "{} {} of piece {} bucket {}, round {}: device {} to device {}, {} bytes: sending {} to {}, arrived {}{}",
+                    c.algorithm.name(),
+                    c.phase.as_str(),
+                    c.piece,
+                    c.bucket,
+                    t.round,
+                    t.src,
+                    t.dst,
+                    t.bytes,
+                    format_ns(t.start.as_ns()),
+                    format_ns(t.sent.as_ns()),
+                    format_ns(t.end.as_ns()),
+                    held
+                );
+                let lane = |d: u32| layouts[r].of_device.get(d as usize).copied().flatten().map(|l| first_lane[r] + l);
+                let send_y = lane(t.src).map(|l| lane_y(l) + lane_h + 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
+                let recv_y =
+                    lane(t.dst).map(|l| lane_y(l) + lane_h + 2.0 + comm_h / 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
+                let marks = [("sync send", send_y, t.sent, SYNC_SEND), ("sync receive", recv_y, t.end, SYNC_RECEIVE)];
+                for (side, y, until, colour) in marks {
+                    let Some(y) = y else { continue };
                     let Some((x0, x1)) = span(t.start.as_ns() - t0, until.as_ns() - t0) else { continue };
                     let _ = writeln!(
                         body,
