@@ -325,3 +325,31 @@ fn compare_shows_differences_and_stacks_charts() {
     assert_eq!(reports.len(), 2);
     assert_eq!(baton(&["compare", DEMO]).status.code(), Some(2), "one scenario and no variant");
 }
+
+#[test]
+fn data_parallel_sweeps_do_not_depend_on_the_thread_count() {
+    // Replicas, algorithms and jitter varied: --jobs 1 and --jobs 2 give
+    // byte-identical results.
+    let dir = tempfile::tempdir().unwrap();
+    let mut outputs = Vec::new();
+    for jobs in ["1", "2"] {
+        let json = dir.path().join(format!("r{jobs}.json"));
+        let out = baton(&[
+            "sweep",
+            "scenarios/replicas.yaml",
+            "--vary",
+            "gradients.sync=ring,hierarchical,tree,direct",
+            "--vary",
+            "parallel.data=1,2,4",
+            "--set",
+            "cluster.jitter=0.1",
+            "--jobs",
+            jobs,
+            "--json",
+            json.to_str().unwrap(),
+        ]);
+        ok(&out);
+        outputs.push(std::fs::read(&json).unwrap());
+    }
+    assert!(outputs[0] == outputs[1], "--jobs 1 and --jobs 2 differ");
+}
