@@ -6,7 +6,7 @@
 mod common;
 
 use baton::scenario::{parse, Scenario};
-use common::{baton, json, text};
+use common::{baton, text};
 
 fn scenario(text: &str) -> Scenario {
     parse(text, "check.yaml", "check", &[]).unwrap_or_else(|e| panic!("{e}"))
