@@ -82,23 +82,47 @@ pub fn topology(s: &Scenario) -> Topology {
     }
 }
 
-/// Model-state bytes of `params` parameters on one device: with
+/// How model state is priced per parameter on one device: `replicated`
+/// bytes kept whole plus `sharded` bytes split over `replicas`. With
 /// `training.shard` the state splits into weights (2 B per parameter),
 /// gradients (`gradients.bytes_per_param`) and the optimizer (the rest of
-/// `state_bytes_per_param`); `optimizer` divides the optimizer part by the
-/// replicas, `gradients` the gradients and optimizer parts (Rajbhandari et
-/// al., "ZeRO", SC 2020, sec. 5).
+/// `state_bytes_per_param`); `optimizer` shards the optimizer part,
+/// `gradients` the gradients and optimizer parts (Rajbhandari et al., "ZeRO",
+/// SC 2020, sec. 5).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct StatePrice {
+    /// Bytes per parameter every replica keeps.
+    pub replicated: u64,
+    /// Bytes per parameter split over the replicas.
+    pub sharded: u64,
+    /// Replicas the sharded part is split over.
+    pub replicas: u64,
+}
+
+impl StatePrice {
+    /// The scenario's price.
+    pub fn of(s: &Scenario) -> StatePrice {
+        let per = s.training.state_bytes_per_param;
+        let grads = s.gradients.bytes_per_param as u64;
+        let replicas = s.parallel.data.max(1) as u64;
+        let (replicated, sharded) = match s.training.shard {
+            baton_scenario::Shard::None => (per, 0),
+            baton_scenario::Shard::Optimizer => (2 + grads, per.saturating_sub(2 + grads)),
+            baton_scenario::Shard::Gradients => (2, per.saturating_sub(2)),
+        };
+        StatePrice { replicated, sharded, replicas }
+    }
+
+    /// Bytes of `params` parameters' state on one device (the sharded part
+    /// rounded up).
+    pub fn bytes(&self, params: u128) -> u128 {
+        params * self.replicated as u128 + (params * self.sharded as u128).div_ceil(self.replicas.max(1) as u128)
+    }
+}
+
+/// Model-state bytes of `params` parameters on one device ([`StatePrice`]).
 pub fn device_state_bytes(s: &Scenario, params: u64) -> u64 {
-    let per = s.training.state_bytes_per_param;
-    let d = s.parallel.data.max(1) as u128;
-    let grads = s.gradients.bytes_per_param as u64;
-    let n = params as u128;
-    let total = match s.training.shard {
-        baton_scenario::Shard::None => return baton_model::state_bytes(params, per),
-        baton_scenario::Shard::Optimizer => 2 * n + grads as u128 * n + ((per - 2 - grads) as u128 * n).div_ceil(d),
-        baton_scenario::Shard::Gradients => 2 * n + ((per - 2) as u128 * n).div_ceil(d),
-    };
-    total.min(u64::MAX as u128) as u64
+    StatePrice::of(s).bytes(params as u128).min(u64::MAX as u128) as u64
 }
 
 /// What the memory model needs: stash per piece, model state per worker

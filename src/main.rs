@@ -35,9 +35,10 @@ enum Command {
         baton run scenarios/unbalanced-split.yaml\n  \
         baton run scenarios/unbalanced-split.yaml --svg timeline.svg --trace trace.csv\n  \
         baton run scenarios/interleaved.yaml --json report.json --set pipeline.micro_batches=16\n  \
-        baton run scenarios/interleaved.yaml --json - | jq .step_time_ms\n\n\
+        baton run scenarios/interleaved.yaml --json - | jq .step_time_ms\n  \
         baton run scenarios/heavy-head.yaml --memory-svg memory.svg --strict\n  \
-        baton run scenarios/heavy-head.yaml --show-layers --layers-csv layers.csv\n\n\
+        baton run scenarios/heavy-head.yaml --show-layers --layers-csv layers.csv\n  \
+        baton run scenarios/replicas.yaml --svg replicas.svg --devices 0-7\n\n\
         Exit status: 0 success, 2 invalid scenario or usage, 3 over memory capacity with --strict, 1 anything else.", outputs_note!()))]
     Run(RunArgs),
     /// Find the split of the layers into stages that minimises the bottleneck
@@ -55,7 +56,8 @@ enum Command {
         baton sweep scenarios/unbalanced-split.yaml --vary pipeline.micro_batches=4..64*2 --vary pipeline.schedule=fill-drain,1f1b\n  \
         baton sweep scenarios/unbalanced-split.yaml --vary 'pipeline.split=[3,3,3,3];[4,3,3,2];[4,4,2,2]' --csv splits.csv\n  \
         baton sweep scenarios/interleaved.yaml --vary pipeline.chunks=1..4 --vary pipeline.micro_batches=4..32*2 --rank-by throughput --svg sweep.svg\n  \
-        baton sweep scenarios/heavy-head.yaml --vary pipeline.micro_batches=8..128*2 --shard 2/4 --csv part2.csv\n\n\
+        baton sweep scenarios/heavy-head.yaml --vary pipeline.micro_batches=8..128*2 --shard 2/4 --csv part2.csv\n  \
+        baton sweep scenarios/replicas.yaml --vary gradients.sync=ring,hierarchical,parameter-server --vary parallel.data=1,2,4\n\n\
         Values: V1,V2 (or ; between bracketed lists), a..b for every whole number from a to b,\n\
         a..b*f for a, a*f, a*f^2, ... up to b. Invalid points are skipped with their reason.\n\
         Exit status: 0 done, 2 invalid scenario, --vary or usage, 1 anything else.", outputs_note!()))]
@@ -69,7 +71,8 @@ enum Command {
     #[command(after_help = concat!("Examples:\n  \
         baton split scenarios/heavy-head.yaml --apply heavy-head-split.yaml\n  \
         baton compare scenarios/heavy-head.yaml heavy-head-split.yaml --svg both.svg\n  \
-        baton compare scenarios/interleaved.yaml --set pipeline.schedule=1f1b --set pipeline.chunks=1\n\n\
+        baton compare scenarios/interleaved.yaml --set pipeline.schedule=1f1b --set pipeline.chunks=1\n  \
+        baton compare scenarios/replicas.yaml --set gradients.overlap=false\n\n\
         With one scenario, --set makes the variant it is compared with; with several, --set applies to all.", outputs_note!()))]
     Compare(CompareArgs),
     /// Print a JSON Schema (draft 2020-12) of the scenario format, for editors
@@ -265,14 +268,22 @@ struct RunArgs {
     no_comm_lanes: bool,
     /// Chart only these devices (numbers and ranges; above 64 devices the
     /// chart shows replica 0's unless told), e.g. --svg timeline.svg --devices 0-7,12.
-    #[arg(long, value_name = "LIST", value_parser = baton::parse_devices)]
-    devices: Option<Vec<u32>>,
+    #[arg(long, value_name = "LIST", value_parser = parse_device_list)]
+    devices: Option<DeviceList>,
     /// Refuse (exit 2) a run whose estimated memory is over SIZE (default
     /// 16GiB on every machine), e.g. --max-memory 4GiB.
     #[arg(long, value_name = "SIZE", default_value = "16GiB", value_parser = parse_size)]
     max_memory: u64,
     #[command(flatten)]
     chart: ChartArgs,
+}
+
+/// `--devices`: device numbers (one value, so clap keeps it whole).
+#[derive(Clone, Debug)]
+struct DeviceList(Vec<u32>);
+
+fn parse_device_list(text: &str) -> Result<DeviceList, String> {
+    baton::parse_devices(text).map(DeviceList)
 }
 
 fn main() -> ExitCode {
@@ -300,7 +311,7 @@ fn main() -> ExitCode {
                 strict: a.strict,
                 max_memory: a.max_memory,
                 view: a.chart.view(),
-                devices: a.devices.clone(),
+                devices: a.devices.as_ref().map(|l| l.0.clone()),
             };
             finish(commands::run(&r, &mut o), o)
         }),

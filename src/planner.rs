@@ -32,7 +32,7 @@ pub const MAX_SEARCH_SIMULATIONS: usize = 2_000;
 pub struct ScenarioPieces {
     costs: PieceCosts,
     in_flight: Vec<u64>,
-    bytes_per_param: u64,
+    state: crate::StatePrice,
 }
 
 impl Pieces for ScenarioPieces {
@@ -43,7 +43,7 @@ impl Pieces for ScenarioPieces {
         self.costs.time_ns(a, b)
     }
     fn bytes(&self, k: usize, a: usize, b: usize) -> u128 {
-        let state = self.costs.params(k, a, b) * self.bytes_per_param as u128;
+        let state = self.state.bytes(self.costs.params(k, a, b));
         state + self.in_flight[k] as u128 * self.costs.stash_bytes(a, b)
     }
     fn position_independent(&self) -> bool {
@@ -74,7 +74,7 @@ pub fn inputs(s: &Scenario) -> Result<SplitInputs, SimulateError> {
         pieces: ScenarioPieces {
             costs: s.piece_costs(),
             in_flight: baton_schedule::peak_stashes(&plan),
-            bytes_per_param: s.training.state_bytes_per_param,
+            state: crate::StatePrice::of(s),
         },
         devices: s.pipeline.stages as usize,
         chunks: s.pipeline.chunks as usize,
@@ -493,15 +493,17 @@ pub fn report(s: &Scenario, plan: &SplitPlan) -> Result<SplitReport, PlanError> 
         bottleneck_ms: ms(bottleneck_ns),
         bubble_fraction: best.bubble_fraction,
         chunks: s.pipeline.chunks,
+        // Every replica runs the same split: replica 0's devices stand for all.
         devices: best
             .devices
             .iter()
+            .filter(|d| d.replica == 0)
             .map(|d| SplitDevice {
                 device: d.device,
                 fits: d.fits,
                 memory_capacity_bytes: d.memory_capacity_bytes,
                 peak_memory_bytes: d.peak_memory_bytes,
-                time_per_micro_batch_ms: ms(eval.device_ns[d.device as usize]),
+                time_per_micro_batch_ms: ms(eval.device_ns[d.stage as usize]),
             })
             .collect(),
         fits,

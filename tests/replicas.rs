@@ -323,3 +323,68 @@ fn packed_numbering_follows_parallel_order() {
     // [pipeline, data]: a replica's stages side by side (device = r p + s).
     assert_eq!(with(", order: [pipeline, data]"), vec![0, 1, 2, 3, 4, 5]);
 }
+
+#[test]
+fn split_sweep_and_compare_take_the_new_keys() {
+    // split prices every replica's state alike and reports replica 0's
+    // devices; its proposal is simulated with the synchronisation.
+    let out = baton(&["split", "scenarios/replicas.yaml", "--json", "-"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let v = common::json(&out);
+    assert_eq!(v["devices"].as_array().unwrap().len(), 4);
+    let run = baton(&["run", "scenarios/replicas.yaml", "--json", "-"]);
+    let r = common::json(&run);
+    assert!(v["baseline_step_time_ms"].as_f64() == r["step_time_ms"].as_f64());
+    // sweep over the algorithm and the replicas; compare with a variant.
+    let out = baton(&[
+        "sweep",
+        "scenarios/replicas.yaml",
+        "--vary",
+        "gradients.sync=ring,hierarchical",
+        "--vary",
+        "parallel.data=1,2,4",
+        "--json",
+        "-",
+    ]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let out = baton(&["compare", "scenarios/replicas.yaml", "--set", "gradients.sync=hierarchical"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    // Global batch and layout in the JSON.
+    assert_eq!(r["global_batch"], 32);
+    assert_eq!(r["parallel"]["data"], 4);
+    assert_eq!(r["parallel"]["devices_used"], 16);
+    assert_eq!(r["devices"][5]["replica"], 1);
+    assert_eq!(r["devices"][5]["stage"], 1);
+}
+
+#[test]
+fn charts_show_a_subset_or_replica_zero_above_64_devices() {
+    let dir = tempfile::tempdir().unwrap();
+    let svg = dir.path().join("c.svg");
+    let out = baton(&["run", "scenarios/replicas.yaml", "--svg", svg.to_str().unwrap(), "--devices", "0-3,12"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let chart = std::fs::read_to_string(&svg).unwrap();
+    assert!(chart.contains("Showing 5 of 16 devices"));
+    assert!(chart.contains("r3 stage 0") && !chart.contains("r1 stage 0"));
+    assert!(chart.contains("gradient sync send") && chart.contains("ring all-reduce of piece"));
+    // 20 replicas x 4 stages: the chart shows replica 0 and says so.
+    let out = baton(&[
+        "run",
+        "scenarios/replicas.yaml",
+        "--set",
+        "parallel.data=20",
+        "--set",
+        "cluster.devices_per_node=40",
+        "--svg",
+        svg.to_str().unwrap(),
+    ]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let chart = std::fs::read_to_string(&svg).unwrap();
+    assert!(chart.contains("Showing replica 0 only: 4 of 80 devices"));
+    // A device that does not exist is refused, exit 2, nothing written.
+    let other = dir.path().join("none.svg");
+    let out = baton(&["run", "scenarios/replicas.yaml", "--svg", other.to_str().unwrap(), "--devices", "16"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("--devices names device 16"));
+    assert!(!other.exists());
+}

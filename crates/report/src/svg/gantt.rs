@@ -205,8 +205,8 @@ fn shown_devices(run: &Run<'_>, chosen: Option<&[u32]>) -> (Vec<bool>, Option<St
             let p = run.trace.plan.shape.stages as usize;
             let shown = (0..n).map(|d| d < p).collect();
             let note = format!(
-                "Showing replica 0's {p} devices of {n} (more than {MAX_CHART_DEVICES}); --devices picks others, e.g. --devices 0-7,{}.",
-                n - 1
+                "Showing replica 0 only: {p} of {n} devices (more than {MAX_CHART_DEVICES}); --devices picks others, e.g. --devices 0-{}.",
+                2 * p - 1
             );
             (shown, Some(note))
         }
