@@ -16,3 +16,4 @@ $baton sweep scenarios/choose-m.yaml --vary pipeline.micro_batches=8..128*2 \
   --vary pipeline.schedule=fill-drain,1f1b,interleaved --vary pipeline.chunks=1,2 --svg docs/choose-m-sweep.svg >/dev/null
 $baton run scenarios/two-boxes.yaml --svg docs/two-boxes-packed.svg >/dev/null
 $baton run scenarios/two-boxes.yaml --set placement=spread --svg docs/two-boxes-spread.svg >/dev/null
+$baton run scenarios/replicas.yaml --svg docs/replicas.svg >/dev/null
