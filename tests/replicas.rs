@@ -388,3 +388,23 @@ fn charts_show_a_subset_or_replica_zero_above_64_devices() {
     assert!(text(&out.stderr).contains("--devices names device 16"));
     assert!(!other.exists());
 }
+
+#[test]
+fn a_bad_layout_exits_2_naming_the_key_and_writes_nothing() {
+    let dir = tempfile::tempdir().unwrap();
+    let json_path = dir.path().join("r.json");
+    let out = baton(&[
+        "run",
+        "scenarios/replicas.yaml",
+        "--set",
+        "gradients.sync=halving-doubling",
+        "--set",
+        "parallel.data=3",
+        "--json",
+        json_path.to_str().unwrap(),
+    ]);
+    assert_eq!(out.status.code(), Some(2));
+    let err = text(&out.stderr);
+    assert!(err.contains("gradients.sync") && err.contains("parallel.data is 3"), "{err}");
+    assert!(!json_path.exists());
+}

@@ -202,8 +202,8 @@ fn random_scenario() -> impl proptest::strategy::Strategy<Value = String> {
             )
         )),
     ];
-    (model, cluster, 0usize..3, 1u32..9, any::<bool>(), any::<bool>(), any::<bool>()).prop_map(
-        |(model, (devices, cluster), k, m, device, training, spread)| {
+    (model, cluster, 0usize..3, 1u32..9, any::<bool>(), any::<bool>(), any::<bool>(), 0usize..4).prop_map(
+        |(model, (devices, cluster), k, m, device, training, spread, dp)| {
             let schedule = ["fill-drain", "1f1b", "interleaved"][k];
             let stages = devices.min(2);
             let mut text = format!("title: random\nseed: 7\nmodel:\n{model}cluster:\n{cluster}");
@@ -217,11 +217,22 @@ fn random_scenario() -> impl proptest::strategy::Strategy<Value = String> {
                 m * stages
             );
             if training {
-                text += "training: { state_bytes_per_param: 12, reserved: 1.5GiB, recompute: full }\n";
+                text += "training: { state_bytes_per_param: 12, reserved: 1.5GiB, recompute: full, shard: optimizer, update: 2ms }\n";
             }
             if spread {
                 text += "placement: spread\n";
             }
+            let data = if devices >= 2 * stages { 2 } else { 1 };
+            text += match dp {
+                1 => format!("parallel: {{ data: {data}, order: [pipeline, data] }}\ngradients: {{ sync: ring, bucket: 10 MB, overlap: false }}\n"),
+                2 => format!(
+                    "parallel: {{ data: {data} }}\ngradients: {{ sync: direct, bytes_per_param: 4, servers: 1, server_devices: dedicated, \
+                     compression: {{ kind: quantize, bits: 4, rate: 100 GB/s }} }}\n"
+                ),
+                3 => "parallel:\n  data: 1\ngradients:\n  sync: tree\n  compression: { kind: top-k, keep: 0.01, rate: 1TB/s }\n".to_string(),
+                _ => String::new(),
+            }
+            .as_str();
             text
         },
     )

@@ -319,9 +319,12 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
             busiest = busiest.max(n);
         }
         if comm {
-            total += 2 * r.trace.transfers.iter().filter(|t| visible(t.start.as_ns() - t0, t.end.as_ns() - t0)).count();
-            total +=
-                2 * r.trace.sync_transfers.iter().filter(|t| visible(t.start.as_ns() - t0, t.end.as_ns() - t0)).count();
+            // A transfer draws a mark under each shown end.
+            let marks = |src: u32, dst: u32| usize::from(is_shown(i, src)) + usize::from(is_shown(i, dst));
+            let pipeline = r.trace.transfers.iter().filter(|t| visible(t.start.as_ns() - t0, t.end.as_ns() - t0));
+            total += pipeline.map(|t| marks(t.src, t.dst)).sum::<usize>();
+            let sync = r.trace.sync_transfers.iter().filter(|t| visible(t.start.as_ns() - t0, t.end.as_ns() - t0));
+            total += sync.map(|t| marks(t.src, t.dst)).sum::<usize>();
         }
     }
     if total > MAX_CHART_OPS {

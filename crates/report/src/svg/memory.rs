@@ -47,13 +47,16 @@ impl Default for MemoryOptions {
 /// Draws the memory chart; returns the SVG document.
 pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, ReportError> {
     let MemoryRun { trace, report, memory } = *run;
-    let total_ops: usize = trace.ops.iter().map(Vec::len).sum();
+    // Every replica holds the same state and the same activations (at its
+    // own times): replica 0's devices stand for all.
+    let replicas = trace.replicas.max(1);
+    let lanes = if replicas > 1 { trace.plan.shape.stages as usize } else { trace.ops.len() }.max(1);
+    let total_ops: usize = trace.ops.iter().take(lanes).map(Vec::len).sum();
     if total_ops > MAX_CHART_OPS {
         return Err(ReportError::TooLarge { ops: total_ops, limit: MAX_CHART_OPS });
     }
-    let lanes = trace.ops.len().max(1);
     let panel_h = options.panel_px;
-    let noted = !options.note.is_empty() || options.view.window.is_some();
+    let noted = !options.note.is_empty() || options.view.window.is_some() || replicas > 1;
     let (width, height) =
         (options.view.width_px.unwrap_or(1100), 60 + panel_h * lanes as u32 + if noted { 80 } else { 60 });
     let t0 = trace.start().as_ns();
@@ -146,6 +149,9 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
             x += 60 + 8 * name.len() as i32;
         }
         let mut notes = Vec::new();
+        if replicas > 1 {
+            notes.push(format!("replica 0 of {replicas} shown (every replica holds the same)"));
+        }
         if !options.note.is_empty() {
             notes.push(options.note.clone());
         }
