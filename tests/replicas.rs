@@ -408,3 +408,14 @@ fn a_bad_layout_exits_2_naming_the_key_and_writes_nothing() {
     assert!(err.contains("gradients.sync") && err.contains("parallel.data is 3"), "{err}");
     assert!(!json_path.exists());
 }
+
+#[test]
+fn the_memory_chart_of_replicas_shows_replica_zero() {
+    let dir = tempfile::tempdir().unwrap();
+    let svg = dir.path().join("m.svg");
+    let out = baton(&["run", "scenarios/replicas.yaml", "--memory-svg", svg.to_str().unwrap()]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let chart = std::fs::read_to_string(&svg).unwrap();
+    assert!(chart.contains("replica 0 of 4 shown"));
+    assert!(chart.contains("device 3:") && !chart.contains("device 4:"));
+}
