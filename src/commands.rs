@@ -66,7 +66,7 @@ pub enum CommandError {
     /// The run would need more memory than `--max-memory` allows (exit 2).
     #[error(
         "this run needs about {} ({ops} operations and {transfers} transfers at about {per} B each, with its outputs), \
-         more than --max-memory {} allows; simulate fewer micro-batches or stages, or raise --max-memory",
+         more than --max-memory {} allows; simulate fewer micro-batches, stages or replicas, or raise --max-memory",
         baton_report::format_bytes(*.estimate),
         baton_report::format_bytes(*.limit)
     )]

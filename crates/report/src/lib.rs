@@ -73,7 +73,7 @@ pub enum ReportError {
     #[error("cannot draw the chart: {0}")]
     Draw(String),
     /// Too many operations to chart.
-    #[error("{ops} operations are too many to chart (at most {limit}); chart fewer micro-batches or stages")]
+    #[error("{ops} operations are too many to chart (at most {limit}); chart fewer micro-batches or stages, a --window or fewer --devices")]
     TooLarge {
         /// Operations (and transfer marks) the chart would draw.
         ops: usize,
