@@ -20,7 +20,9 @@ pub use baton_scenario as scenario;
 pub use baton_schedule as schedule;
 
 use baton_engine::SimDuration;
-use baton_executor::{BucketSpec, Compression, ExecError, RunOptions, StageCost, SyncConfig, TiedSpec, Trace};
+use baton_executor::{
+    BucketSpec, Compression, ExecError, RunOptions, Segment, StageCost, SyncConfig, TensorConfig, TiedSpec, Trace,
+};
 use baton_link::{LinkSpec, Topology};
 use baton_report::{Labels, MemoryInputs, Report};
 use baton_scenario::Scenario;
@@ -135,9 +137,12 @@ pub fn memory_inputs(s: &Scenario) -> MemoryInputs {
         params[k % p] += piece.params;
     }
     let per_device: Vec<u64> = params.iter().map(|&n| device_state_bytes(s, n)).collect();
+    let t = s.parallel.tensor.max(1) as usize;
     MemoryInputs {
         stash_bytes: pieces.iter().map(|x| x.stash_bytes).collect(),
-        state_bytes: (0..s.parallel.data).flat_map(|_| per_device.iter().copied()).collect(),
+        state_bytes: (0..s.parallel.data)
+            .flat_map(|_| per_device.iter().flat_map(|&b| std::iter::repeat_n(b, t)))
+            .collect(),
         reserved_bytes: s.training.reserved_bytes,
         capacity_bytes: s.cluster.device.memory_bytes,
     }
@@ -156,9 +161,10 @@ pub fn gradient_buckets(s: &Scenario) -> (Vec<Vec<BucketSpec>>, Vec<Vec<u32>>) {
     let mut all = Vec::new();
     let mut layer_bucket = Vec::new();
     let mut first = 0usize;
+    let tensor = s.parallel.tensor > 1;
     for (k, &n) in s.pipeline.split.iter().enumerate() {
         let copy = k % p != 0;
-        let layers = &s.layers[first..first + n as usize];
+        let layers = &s.tensor_layers[first..first + n as usize];
         first += n as usize;
         let total_back: u128 = layers.iter().map(|l| l.backward_ns as u128).sum();
         let mut buckets: Vec<BucketSpec> = Vec::new();
@@ -184,6 +190,15 @@ pub fn gradient_buckets(s: &Scenario) -> (Vec<Vec<BucketSpec>>, Vec<Vec<u32>>) {
                 *w = buckets.len().saturating_sub(1) as u32;
             }
         }
+        // With tensor groups a bucket is final when the backward segments of
+        // its layers have run: after the segment that ends the last of them
+        // the backward reaches (the one nearest the model's input).
+        if tensor {
+            let (_, done) = piece_segments(s, k);
+            for (b, spec) in buckets.iter_mut().enumerate() {
+                spec.ready_segment = (0..layers.len()).filter(|&i| which[i] as usize == b).map(|i| done[i]).max();
+            }
+        }
         // Buckets of no parameters have nothing to sum.
         if buckets.iter().all(|b| b.bytes == 0) {
             buckets.clear();
@@ -204,7 +219,81 @@ fn bucket(params: u128, back: u128, total_back: u128, bpp: u64) -> BucketSpec {
         gather_bytes: clamp(params * 2),
         ready_num: clamp(num >> shift),
         ready_den: clamp(den >> shift).max(1),
+        ready_segment: None,
     }
+}
+
+/// Segments appended with adjacent compute merged and empty compute left out.
+#[derive(Default)]
+struct Segments(Vec<Segment>);
+
+impl Segments {
+    fn compute(&mut self, ns: u64) {
+        if ns == 0 {
+            return;
+        }
+        match self.0.last_mut() {
+            Some(Segment::Compute(d)) => d.0 += ns,
+            _ => self.0.push(Segment::Compute(SimDuration(ns))),
+        }
+    }
+    fn all_reduce(&mut self, bytes: u64) {
+        self.0.push(Segment::AllReduce(bytes));
+    }
+    /// Index of the last segment (0 when none).
+    fn last(&self) -> u32 {
+        self.0.len().saturating_sub(1) as u32
+    }
+    /// A layer's pass: its first part, an all-reduce, the rest, an
+    /// all-reduce (compute only when it has no tensor traffic).
+    fn layer(&mut self, ns: u64, split: (u64, u64), bytes: u64) {
+        if bytes == 0 {
+            self.compute(ns);
+            return;
+        }
+        let first = (ns as u128 * split.0 as u128 / split.1.max(1) as u128) as u64;
+        self.compute(first);
+        self.all_reduce(bytes);
+        self.compute(ns - first.min(ns));
+        self.all_reduce(bytes);
+    }
+}
+
+/// Piece `k`'s ops as segments on one device of its tensor group (forward,
+/// backward, weight), and for each of its layers the backward segment after
+/// which that layer's backward is done. Forward: each layer's first part
+/// (its `forward_split` share), an all-reduce of `tensor_bytes`, the rest,
+/// an all-reduce; the backward runs the layers in reverse with their
+/// `backward_split`; with full recomputation the backward first runs the
+/// forward again, all-reduces included.
+pub fn piece_segments(s: &Scenario, k: usize) -> ([Vec<Segment>; 3], Vec<u32>) {
+    let first: usize = s.pipeline.split[..k].iter().map(|&n| n as usize).sum();
+    let layers = &s.tensor_layers[first..first + s.pipeline.split[k] as usize];
+    let mut forward = Segments::default();
+    for l in layers {
+        forward.layer(l.forward_ns, l.forward_split, l.tensor_bytes);
+    }
+    let mut backward = Segments::default();
+    if s.training.recompute == baton_scenario::Recompute::Full {
+        for l in layers {
+            backward.layer(l.forward_ns, l.forward_split, l.tensor_bytes);
+        }
+    }
+    let mut done = vec![0; layers.len()];
+    for (i, l) in layers.iter().enumerate().rev() {
+        backward.layer(l.backward_ns, l.backward_split, l.tensor_bytes);
+        done[i] = backward.last();
+    }
+    ([forward.0, backward.0, Vec::new()], done)
+}
+
+/// The scenario's tensor groups as segments, or `None` with one device per
+/// stage.
+pub fn tensor_config(s: &Scenario) -> Option<TensorConfig> {
+    (s.parallel.tensor > 1).then(|| TensorConfig {
+        ranks: s.parallel.tensor,
+        segments: (0..s.pipeline.split.len()).map(|k| piece_segments(s, k).0).collect(),
+    })
 }
 
 /// How the scenario's replicas synchronise their gradients, or `None` when
@@ -241,7 +330,10 @@ pub fn sync_config(s: &Scenario) -> Option<SyncConfig> {
     if d <= 1 && tied.is_none() && s.training.update_ns == 0 {
         return None;
     }
-    let update_ns = if sharded { s.training.update_ns.div_ceil(d.max(1) as u64) } else { s.training.update_ns };
+    // Each device updates its share: 1/t of the stage's parameters, and 1/d
+    // of those when the state is sharded.
+    let share = s.parallel.tensor.max(1) as u64 * if sharded { d.max(1) as u64 } else { 1 };
+    let update_ns = s.training.update_ns.div_ceil(share);
     Some(SyncConfig {
         replicas: d,
         algorithm: g.sync,
@@ -423,7 +515,22 @@ pub fn labels(s: &Scenario) -> Labels {
         micro_batch_size: s.pipeline.micro_batch_size,
         recompute: s.training.recompute.name().to_string(),
         memory: memory_inputs(s),
+        flops: model_flops_per_step(s).zip(s.cluster.device.peak_flop_per_s.map(|p| p as f64)),
+        sequence: s.parallel.sequence,
     }
+}
+
+/// Model FLOPs of one step over all replicas, for the transformer form:
+/// three times the forward FLOPs of every transformer layer and the logit
+/// layer (the backward does twice the forward's; recomputation, including
+/// flash attention's, is not counted; Chowdhery et al., "PaLM", 2022,
+/// appendix B), for `replicas x micro-batches` micro-batches of
+/// `micro_batch_size` sequences. `None` for a model given by its layers.
+pub fn model_flops_per_step(s: &Scenario) -> Option<f64> {
+    let baton_scenario::ModelSource::Transformer(t) = &s.source else { return None };
+    let b = s.pipeline.micro_batch_size as u64;
+    let forward = t.layers as f64 * t.layer_forward_flops(b) + t.logit_forward_flops(b);
+    Some(3.0 * forward * s.parallel.data as f64 * s.pipeline.micro_batches as f64)
 }
 
 /// What one simulated step holds in memory per operation or transfer: its
@@ -462,8 +569,21 @@ pub fn step_elements(s: &Scenario) -> (u64, u64) {
     let p = s.pipeline.stages as u64;
     let d = s.parallel.data as u64;
     let crossing = if p > 1 { shape.virtual_stages() as u64 - 1 } else { 0 };
-    let pipeline = (2 * s.pipeline.micro_batches as u64).saturating_mul(crossing).saturating_mul(d);
-    (shape.ops().saturating_mul(d), pipeline.saturating_add(collective_transfers(s)))
+    let t = s.parallel.tensor.max(1) as u64;
+    let pipeline = (2 * s.pipeline.micro_batches as u64).saturating_mul(crossing).saturating_mul(d * t);
+    // Tensor all-reduces: a ring of t moves 2 (t - 1) t transfers each.
+    let tensor = if t > 1 {
+        let per_micro_batch: u64 = (0..s.pipeline.split.len())
+            .map(|k| {
+                let segments = piece_segments(s, k).0;
+                segments.iter().flatten().filter(|x| matches!(x, Segment::AllReduce(_))).count() as u64
+            })
+            .sum();
+        per_micro_batch.saturating_mul(s.pipeline.micro_batches as u64).saturating_mul(d * 2 * (t - 1) * t)
+    } else {
+        0
+    };
+    (shape.ops().saturating_mul(d * t), pipeline.saturating_add(collective_transfers(s)).saturating_add(tensor))
 }
 
 /// An upper bound on the point-to-point transfers of the step's gradient
@@ -476,7 +596,8 @@ pub fn collective_transfers(s: &Scenario) -> u64 {
     }
     let buckets: u64 = gradient_buckets(s).0.iter().map(|b| b.len() as u64).sum();
     let phases = if s.training.shard == baton_scenario::Shard::None { 1 } else { 2 };
-    buckets.saturating_mul(phases).saturating_mul(2 * d * (d - 1 + s.gradients.servers as u64))
+    let t = s.parallel.tensor.max(1) as u64;
+    buckets.saturating_mul(phases).saturating_mul(2 * d * (d - 1 + s.gradients.servers as u64) * t)
 }
 
 /// Extra bytes per collective transfer beyond [`BYTES_PER_ELEMENT`]: its
@@ -505,7 +626,15 @@ pub fn simulate(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
     let variation = RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends };
     let sync = sync_config(s);
-    let trace = baton_executor::simulate_step(plan, &stage_costs(s), topology(s), variation, sync.as_ref())?;
+    let tensor = tensor_config(s);
+    let trace = baton_executor::simulate_parallel(
+        plan,
+        &stage_costs(s),
+        topology(s),
+        variation,
+        sync.as_ref(),
+        tensor.as_ref(),
+    )?;
     let report = baton_report::build(&trace, &labels(s));
     Ok(SimulatedStep { trace, report })
 }

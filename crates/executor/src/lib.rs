@@ -41,7 +41,9 @@ use baton_schedule::{validate, Edge, Flow, Op, OpKind, Plan, ScheduleError, Shap
 use thiserror::Error;
 
 mod sync;
+mod tensor;
 pub use sync::{BucketSpec, CollectiveRecord, Compression, Phase, SyncConfig, SyncTransferRecord, TiedSpec};
+pub use tensor::{Segment, TensorConfig, TensorTransferRecord};
 
 /// Time and data of one virtual stage, per micro-batch.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -184,6 +186,15 @@ pub struct Trace {
     /// Per worker: the collective that ended last among those it took part
     /// in, if any.
     pub last_collective: Vec<Option<u32>>,
+    /// Devices per tensor-parallel group (1: none). Device `g * tensor + k`
+    /// is rank `k` of group `g`, and group `g = r * p + d` is replica `r`'s
+    /// pipeline device `d`; `ops`, `device_end` and `last_collective` are
+    /// per device (a group's ranks run the same ops at the same times).
+    pub tensor: u32,
+    /// The point-to-point transfers of the tensor-parallel all-reduces.
+    pub tensor_transfers: Vec<TensorTransferRecord>,
+    /// Per device: time spent in tensor-parallel all-reduces.
+    pub tensor_comm_ns: Vec<u64>,
     // Per replica and `Shape::op_index`: (worker, index in ops[worker]).
     op_index: Vec<(u32, u32)>,
     // Per replica and `Shape::op_index` of the producer: index in transfers, or NONE.
@@ -226,6 +237,11 @@ impl Trace {
         (d, &self.ops[d as usize][i as usize])
     }
 
+    /// The device that ran rank 0 of replica `replica`'s pipeline device `d`.
+    pub fn device_of(&self, replica: u32, d: u32) -> u32 {
+        (replica * self.plan.shape.stages + d) * self.tensor.max(1)
+    }
+
     fn slot(&self, replica: u32, op: Op) -> usize {
         replica as usize * self.plan.shape.op_slots() + self.plan.shape.op_index(op)
     }
@@ -266,7 +282,12 @@ impl Trace {
             let produced_at = self.ops[producer_device as usize][i as usize].end;
             let t = self.transfer_index[k];
             let transfer = (t != NONE).then_some(t as usize);
-            let available_at = transfer.map_or(produced_at, |t| self.transfers[t].end);
+            // A tensor group's ranks each send their share: the data is
+            // there when the last share is.
+            let shares = self.tensor.max(1) as usize;
+            let available_at = transfer.map_or(produced_at, |t| {
+                self.transfers[t..t + shares].iter().map(|r| r.end).max().unwrap_or(produced_at)
+            });
             if latest.is_none_or(|l| available_at > l.available_at) {
                 latest = Some(Dependency {
                     flow: input.flow,
@@ -334,6 +355,10 @@ pub enum Event {
     Arrival(u32),
     /// The collective transfer at this index of the trace has arrived.
     SyncArrival(u32),
+    /// A compute segment of a tensor-parallel op has ended on this worker.
+    SegmentDone(u32),
+    /// The tensor-parallel transfer at this index of the trace has arrived.
+    TensorArrival(u32),
     /// A gradient bucket (global bucket index) has become final on a worker.
     BucketReady {
         /// The worker.
@@ -353,6 +378,8 @@ pub enum Deadline {
 /// Marks an in-flight network transfer as a collective's (its index in
 /// `sync_transfers`) rather than the pipeline's.
 const SYNC_BIT: u32 = 1 << 31;
+/// Marks an in-flight network transfer as a tensor-parallel all-reduce's.
+const TENSOR_BIT: u32 = 1 << 30;
 
 /// The data crossing between devices: the link network and the records of
 /// what it carried.
@@ -377,31 +404,46 @@ struct Transfers {
 impl Transfers {
     /// Hands `out`'s data from `producer` (on worker `src`) to its consumer on
     /// worker `dst`, at `now`: a transfer of the boundary's bytes.
+    /// With tensor groups of `t`, rank k of worker `src` sends its share to
+    /// rank k of worker `dst`: `t` transfers, recorded one after another.
     #[allow(clippy::too_many_arguments)]
-    fn send(&mut self, now: SimTime, slot: usize, costs: &[StageCost], producer: Op, out: Edge, src: u32, dst: u32) {
+    fn send(
+        &mut self,
+        now: SimTime,
+        slot: usize,
+        costs: &[StageCost],
+        producer: Op,
+        out: Edge,
+        src: u32,
+        dst: u32,
+        t: u32,
+    ) {
         let boundary = producer.stage.min(out.op.stage);
         let bytes = costs[boundary as usize].send_bytes;
-        let rec = self.records.len() as u32;
-        self.records.push(TransferRecord {
-            flow: out.flow,
-            micro_batch: producer.micro_batch,
-            from_stage: producer.stage,
-            to_stage: out.op.stage,
-            producer_kind: producer.kind,
-            consumer_kind: out.op.kind,
-            src,
-            dst,
-            bytes,
-            start: now,
-            sent: now,
-            end: now,
-            bottleneck: None,
-        });
-        self.index[slot] = rec;
+        self.index[slot] = self.records.len() as u32;
         if self.blocking_sends {
-            self.pending_sends[src as usize] += 1;
+            self.pending_sends[src as usize] += t;
         }
-        self.start(now, src, dst, bytes, rec);
+        for k in 0..t {
+            let (from, to) = (src * t + k, dst * t + k);
+            let rec = self.records.len() as u32;
+            self.records.push(TransferRecord {
+                flow: out.flow,
+                micro_batch: producer.micro_batch,
+                from_stage: producer.stage,
+                to_stage: out.op.stage,
+                producer_kind: producer.kind,
+                consumer_kind: out.op.kind,
+                src: from,
+                dst: to,
+                bytes,
+                start: now,
+                sent: now,
+                end: now,
+                bottleneck: None,
+            });
+            self.start(now, from, to, bytes, rec);
+        }
     }
 
     /// Starts `bytes` from `src` to `dst` on the network, remembering `tag`.
@@ -433,8 +475,9 @@ struct Executor<'a> {
     slots: usize,
     next: Vec<usize>,
     busy: Vec<bool>,
-    /// Per replica and `Shape::op_index`: inputs not yet satisfied.
-    waiting: Vec<u8>,
+    /// Per replica and `Shape::op_index`: inputs not yet satisfied (an input
+    /// from another stage counts once per tensor rank sending a share).
+    waiting: Vec<u16>,
     ops: Vec<Vec<OpRecord>>,
     transfers: Transfers,
     /// Per worker and op: the factor its compute time is scaled by.
@@ -446,6 +489,9 @@ struct Executor<'a> {
     /// Per worker: when its step ended so far.
     device_end: Vec<SimTime>,
     sync: Option<sync::State>,
+    /// Devices per tensor group.
+    t: usize,
+    tensor: Option<tensor::State>,
 }
 
 type Sched = Scheduler<Event, Deadline>;
@@ -468,15 +514,26 @@ impl Executor<'_> {
         if self.waiting[r * self.slots + self.shape.op_index(op)] != 0 {
             return;
         }
+        let factor = self.jitter.as_ref().map_or(1.0, |f| f[w][self.next[w]]);
+        if self.tensor.as_ref().is_some_and(|t| t.segments(op).is_some()) {
+            self.busy[w] = true;
+            self.ops[w].push(OpRecord { op, start: now, end: now });
+            if self.sync.is_some() {
+                self.sync_op_started(w, self.next[w], now, None, sched);
+                // (buckets follow the segments: see sync_segment_done)
+            }
+            self.start_segments(w, op, factor, sched);
+            return;
+        }
         let mut dur = self.costs[op.stage as usize].time(op.kind);
-        if let Some(factors) = &self.jitter {
-            dur = SimDuration((dur.as_ns() as f64 * factors[w][self.next[w]]).round() as u64);
+        if self.jitter.is_some() {
+            dur = SimDuration((dur.as_ns() as f64 * factor).round() as u64);
         }
         self.busy[w] = true;
         self.ops[w].push(OpRecord { op, start: now, end: now + dur });
         sched.schedule(now + dur, Event::OpDone(w as u32));
         if self.sync.is_some() {
-            self.sync_op_started(w, self.next[w], now, dur, sched);
+            self.sync_op_started(w, self.next[w], now, Some(dur), sched);
         }
     }
 
@@ -499,13 +556,15 @@ impl Executor<'_> {
         // sent, in output order (two fit without allocating).
         let (mut near, mut far) = ([None; 2], Vec::new());
         let mut n = 0;
+        let t = self.t;
         let waiting = &mut self.waiting;
         op.each_output(&shape, |out| {
             // Within a stage nothing moves; across stages, only to
             // another device.
-            let to = if out.flow.crosses_stages() { shape.device_of(out.op.stage) as usize } else { d };
+            let crosses = out.flow.crosses_stages();
+            let to = if crosses { shape.device_of(out.op.stage) as usize } else { d };
             if to == d {
-                waiting[base + shape.op_index(out.op)] -= 1;
+                waiting[base + shape.op_index(out.op)] -= if crosses { t as u16 } else { 1 };
             } else if n < near.len() {
                 near[n] = Some((out, to));
                 n += 1;
@@ -516,7 +575,7 @@ impl Executor<'_> {
         let slot = base + shape.op_index(op);
         let first = r * self.p;
         for (out, to) in near.into_iter().flatten().chain(far) {
-            self.transfers.send(now, slot, self.costs, op, out, w as u32, (first + to) as u32);
+            self.transfers.send(now, slot, self.costs, op, out, w as u32, (first + to) as u32, t as u32);
         }
         if self.sync.is_some() {
             self.sync_op_done(w, index, sched);
@@ -544,7 +603,15 @@ impl Model for Executor<'_> {
                     let fin = tr.net.finish(now, tid);
                     let rec = tr.in_flight[tid.0 as usize];
                     let bottleneck = fin.bottleneck.map(|l| l.0);
-                    if rec & SYNC_BIT != 0 {
+                    if rec & TENSOR_BIT != 0 && rec & SYNC_BIT == 0 {
+                        let i = rec & !TENSOR_BIT;
+                        if let Some(st) = self.tensor.as_mut() {
+                            let t = &mut st.records[i as usize];
+                            t.sent = now;
+                            t.bottleneck = bottleneck;
+                        }
+                        sched.schedule(fin.delivered_at, Event::TensorArrival(i));
+                    } else if rec & SYNC_BIT != 0 {
                         let i = rec & !SYNC_BIT;
                         if let Some(st) = self.sync.as_mut() {
                             let t = &mut st.transfers[i as usize];
@@ -565,16 +632,18 @@ impl Model for Executor<'_> {
                 let now = sched.now();
                 let t = &mut self.transfers.records[rec as usize];
                 t.end = now;
-                let (consumer, src, dst) = (t.consumer(), t.src, t.dst);
-                let r = dst as usize / self.p;
+                let (consumer, src, dst) = (t.consumer(), t.src as usize / self.t, t.dst as usize / self.t);
+                let r = dst / self.p;
                 self.waiting[r * self.slots + shape.op_index(consumer)] -= 1;
-                self.try_start(dst as usize, sched);
+                self.try_start(dst, sched);
                 if self.transfers.blocking_sends {
-                    self.transfers.pending_sends[src as usize] -= 1;
-                    self.try_start(src as usize, sched);
+                    self.transfers.pending_sends[src] -= 1;
+                    self.try_start(src, sched);
                 }
             }
             Fired::Event(Event::SyncArrival(i)) => self.sync_arrival(i, sched),
+            Fired::Event(Event::SegmentDone(w)) => self.segment_done(w as usize, sched),
+            Fired::Event(Event::TensorArrival(i)) => self.tensor_arrival(i, sched),
             Fired::Event(Event::BucketReady { worker, bucket }) => self.bucket_ready(worker, bucket, sched),
         }
         // Collectives whose buckets became ready this instant start once
@@ -645,7 +714,31 @@ pub fn simulate_step(
     options: RunOptions,
     sync: Option<&SyncConfig>,
 ) -> Result<Trace, ExecError> {
+    simulate_parallel(plan, costs, topology, options, sync, None)
+}
+
+/// [`simulate_step`] with each stage run by a tensor-parallel group of
+/// `tensor.ranks` devices (`None` or one rank: one device per stage).
+/// Topology device `(r * p + d) * t + k` is rank `k` of replica `r`'s
+/// pipeline device `d`; dedicated servers follow.
+pub fn simulate_parallel(
+    plan: Plan,
+    costs: &[StageCost],
+    topology: Topology,
+    options: RunOptions,
+    sync: Option<&SyncConfig>,
+    tensor: Option<&TensorConfig>,
+) -> Result<Trace, ExecError> {
     validate(&plan)?;
+    let t = tensor.map_or(1, |c| c.ranks.max(1)) as usize;
+    if t > 4096 {
+        return Err(ExecError::Sync(format!("{t} devices per tensor group is more than 4096")));
+    }
+    if let Some(c) = tensor {
+        if c.segments.len() != costs.len() {
+            return Err(ExecError::CostCount { found: c.segments.len(), expected: costs.len() });
+        }
+    }
     if !(0.0..1.0).contains(&options.jitter) {
         return Err(ExecError::Jitter(options.jitter));
     }
@@ -657,7 +750,7 @@ pub fn simulate_step(
     if costs.len() != n_stages {
         return Err(ExecError::CostCount { found: costs.len(), expected: n_stages });
     }
-    let needed = workers as u32 + sync.map_or(0, |s| s.dedicated_servers());
+    let needed = (workers * t) as u32 + sync.map_or(0, |s| s.dedicated_servers());
     if topology.devices() < needed {
         return Err(ExecError::TopologyDevices { devices: topology.devices(), stages: needed });
     }
@@ -675,8 +768,9 @@ pub fn simulate_step(
     for &kind in shape.kinds() {
         for micro_batch in 0..shape.micro_batches {
             for stage in 0..shape.virtual_stages() {
-                let mut n = 0u8;
-                Op { kind, micro_batch, stage }.each_input(&shape, |_| n += 1);
+                let mut n = 0u16;
+                Op { kind, micro_batch, stage }
+                    .each_input(&shape, |e| n += if e.flow.crosses_stages() { t as u16 } else { 1 });
                 waiting.push(n);
             }
         }
@@ -688,9 +782,9 @@ pub fn simulate_step(
         (0..topology.link_count()).map(|l| topology.link_name(baton_link::LinkId(l as u32)).to_string()).collect();
     let link_bytes_per_s =
         (0..topology.link_count()).map(|l| topology.link(baton_link::LinkId(l as u32)).bytes_per_s).collect();
-    let cluster_devices = (0..workers as u32).map(|d| topology.cluster_device(d)).collect();
+    let cluster_devices = (0..(workers * t) as u32).map(|d| topology.cluster_device(d)).collect();
     let sync_state = match sync {
-        Some(cfg) => Some(sync::State::new(cfg, &plan, costs.len())?),
+        Some(cfg) => Some(sync::State::new(cfg, &plan, costs.len(), t as u32)?),
         None => None,
     };
     let mut exec = Executor {
@@ -718,6 +812,8 @@ pub fn simulate_step(
         running_work: vec![None; workers],
         device_end: vec![SimTime::ZERO; workers],
         sync: sync_state,
+        t,
+        tensor: tensor.filter(|_| t > 1).map(|c| tensor::State::new(c.clone(), workers)),
     };
     let mut sched = Scheduler::with_capacity(2 * workers + 16);
     for w in 0..workers {
@@ -738,12 +834,27 @@ pub fn simulate_step(
         let base = (w / p) * slots;
         for (i, r) in recs.iter().enumerate() {
             if !r.op.kind.is_device_work() {
-                op_index[base + shape.op_index(r.op)] = (w as u32, i as u32);
+                op_index[base + shape.op_index(r.op)] = ((w * t) as u32, i as u32);
             }
         }
     }
     let link_stats = exec.transfers.net.stats().to_vec();
+    let (tensor_transfers, comm) = match exec.tensor.take() {
+        Some(st) => (st.records, st.comm_ns),
+        None => (Vec::new(), vec![0; workers]),
+    };
     let Executor { ops, device_end, transfers: Transfers { records: transfers, index: transfer_index, .. }, .. } = exec;
+    // Every rank of a group ran the group's ops at the same times.
+    fn spread<T: Clone>(v: Vec<T>, t: usize) -> Vec<T> {
+        if t == 1 {
+            return v;
+        }
+        v.into_iter().flat_map(|x| std::iter::repeat_n(x, t)).collect()
+    }
+    let ops = spread(ops, t);
+    let device_end = spread(device_end, t);
+    let last_collective = spread(last_collective, t);
+    let tensor_comm_ns = spread(comm, t);
     Ok(Trace {
         plan,
         ops,
@@ -759,6 +870,9 @@ pub fn simulate_step(
         sync_transfers,
         device_end,
         last_collective,
+        tensor: t as u32,
+        tensor_transfers,
+        tensor_comm_ns,
         op_index,
         transfer_index,
     })

@@ -38,6 +38,10 @@ pub struct BucketSpec {
     pub ready_num: u64,
     /// See `ready_num` (positive).
     pub ready_den: u64,
+    /// With tensor parallelism: the segment of the piece's last gradient op
+    /// after which the bucket is final (its layers' backward segments have
+    /// run); `None` without.
+    pub ready_segment: Option<u32>,
 }
 
 /// How gradients are compressed on the wire.
@@ -146,8 +150,11 @@ pub struct CollectiveRecord {
     /// Its group's index (groups 0..p: the replicas' devices of pipeline
     /// device d; then one tied pair per replica).
     pub group_index: u32,
-    /// The members (workers), in ring order.
+    /// The members (workers: tensor groups), in ring order.
     pub group: Vec<u32>,
+    /// Devices per tensor group: the collective ran once per rank `k`,
+    /// among devices `member * ranks + k`.
+    pub ranks: u32,
     /// Dedicated servers' topology devices.
     pub servers: Vec<u32>,
     /// The piece (virtual stage) whose gradient it carries.
@@ -160,9 +167,11 @@ pub struct CollectiveRecord {
     pub algorithm: Algorithm,
     /// Dense bytes per member.
     pub bytes: u64,
-    /// Bytes each member sent, after compression, aligned with `group`.
+    /// Bytes each member's device sent (per rank), after compression,
+    /// aligned with `group`.
     pub wire_bytes_sent: Vec<u64>,
-    /// Bytes each dedicated server sent, aligned with `servers`.
+    /// Bytes each dedicated server sent (for every rank), aligned with
+    /// `servers`.
     pub server_bytes_sent: Vec<u64>,
     /// Logical rounds of its transfers.
     pub rounds: u32,
@@ -207,16 +216,16 @@ pub(crate) enum Then {
 }
 
 /// A collective graph with what playing it needs.
-struct Prepared {
-    graph: Graph,
+pub(crate) struct Prepared {
+    pub(crate) graph: Graph,
     /// Per transfer: the transfers that wait for it.
-    dependents: Vec<Vec<u32>>,
+    pub(crate) dependents: Vec<Vec<u32>>,
     /// Per participant: the transfers it sends.
     by_sender: Vec<Vec<u32>>,
 }
 
 impl Prepared {
-    fn new(graph: Graph) -> Self {
+    pub(crate) fn new(graph: Graph) -> Self {
         let n = graph.transfers().len();
         let mut dependents = vec![Vec::new(); n];
         let mut by_sender = vec![Vec::new(); graph.participants as usize];
@@ -230,11 +239,16 @@ impl Prepared {
     }
 }
 
+/// A running collective: one copy of its graph per tensor rank, side by
+/// side (the ranks of a group each sum their share of the gradient with the
+/// same ranks of the other replicas); transfer `offset[c] + i` is transfer
+/// `i` of copy `c`.
 struct Running {
-    prepared: Rc<Prepared>,
-    /// Participant -> topology device.
-    devices: Vec<u32>,
-    /// Per graph transfer: what it still waits for.
+    copies: Vec<Rc<Prepared>>,
+    offset: Vec<u32>,
+    /// Per copy: participant -> topology device.
+    devices: Vec<Vec<u32>>,
+    /// Per transfer (over all copies): what it still waits for.
     remaining: Vec<u32>,
     /// Transfers not yet arrived.
     left: u32,
@@ -262,6 +276,8 @@ pub(crate) struct State {
     cfg: SyncConfig,
     d: u32,
     p: u32,
+    /// Devices per tensor group: each collective runs once per rank.
+    t: u32,
     last_piece: u32,
     /// First global bucket of each piece (one extra entry at the end).
     bucket_base: Vec<u32>,
@@ -275,6 +291,8 @@ pub(crate) struct State {
     grad_final: Vec<Vec<(usize, u32)>>,
     /// Per worker: position in `grad_final`.
     cursor: Vec<usize>,
+    /// Per worker: the piece whose last gradient op it runs as segments.
+    segmented: Vec<Option<u32>>,
     /// Per worker: reducing collectives (tied, all-reduce, reduce-scatter)
     /// not yet ended.
     reduce_left: Vec<u32>,
@@ -293,7 +311,7 @@ pub(crate) struct State {
 const NEVER: u32 = u32::MAX;
 
 impl State {
-    pub(crate) fn new(cfg: &SyncConfig, plan: &Plan, pieces: usize) -> Result<State, ExecError> {
+    pub(crate) fn new(cfg: &SyncConfig, plan: &Plan, pieces: usize, t: u32) -> Result<State, ExecError> {
         let shape = plan.shape;
         let p = shape.stages;
         let d = cfg.replicas.max(1);
@@ -307,7 +325,7 @@ impl State {
             return Err(ExecError::Sync("compression needs a positive encode rate".into()));
         }
         let workers = (p * d) as usize;
-        if cfg.nodes.len() < workers + cfg.dedicated_servers() as usize {
+        if cfg.nodes.len() < workers * t as usize + cfg.dedicated_servers() as usize {
             return Err(ExecError::Sync("a node is needed for every device".into()));
         }
         let mut bucket_base = Vec::with_capacity(pieces + 1);
@@ -401,6 +419,7 @@ impl State {
             cfg: SyncConfig { tied, ..cfg.clone() },
             d,
             p,
+            t,
             last_piece,
             bucket_base,
             nb,
@@ -408,6 +427,7 @@ impl State {
             slot_left,
             grad_final,
             cursor: vec![0; workers],
+            segmented: vec![None; workers],
             reduce_left,
             compute_done: vec![false; workers],
             update_started: vec![false; workers],
@@ -430,7 +450,9 @@ impl State {
                 &[Goal::AllReduce]
             };
             for &goal in goals {
-                state.graph(g, goal, 0)?;
+                for rank in 0..t {
+                    state.graph(g, goal, 0, rank)?;
+                }
                 // Only the check was wanted: keep no empty graph around.
                 state.cache.clear();
             }
@@ -442,15 +464,16 @@ impl State {
         (self.bucket_base.partition_point(|&b| b <= gb) - 1) as u32
     }
 
-    fn graph(&mut self, g: usize, goal: Goal, bytes: u64) -> Result<Rc<Prepared>, ExecError> {
+    fn graph(&mut self, g: usize, goal: Goal, bytes: u64, rank: u32) -> Result<Rc<Prepared>, ExecError> {
         let group = &self.groups[g];
+        let t = self.t;
         // Nodes relabelled by first appearance, so equal shapes share a graph.
         let mut seen: Vec<u32> = Vec::new();
         let nodes: Vec<u32> = group
             .members
             .iter()
             .map(|&m| {
-                let n = self.cfg.nodes[m as usize];
+                let n = self.cfg.nodes[(m * t + rank) as usize];
                 match seen.iter().position(|&x| x == n) {
                     Some(i) => i as u32,
                     None => {
@@ -521,7 +544,7 @@ impl Executor<'_> {
         w: usize,
         index: usize,
         now: SimTime,
-        dur: SimDuration,
+        dur: Option<SimDuration>,
         sched: &mut Sched,
     ) {
         let p = self.p;
@@ -531,11 +554,34 @@ impl Executor<'_> {
         if i != index || !st.cfg.overlap {
             return;
         }
+        // A tensor-parallel op has no time known in advance: its buckets
+        // become final as its segments end (sync_segment_done).
+        let Some(dur) = dur else {
+            st.segmented[w] = Some(piece);
+            return;
+        };
         let base = st.bucket_base[piece as usize];
         for (b, spec) in st.cfg.buckets[piece as usize].iter().enumerate() {
             let share = (u128::from(dur.as_ns()) * u128::from(spec.ready_num)).div_ceil(u128::from(spec.ready_den));
             let at = now + SimDuration(share as u64);
             sched.schedule(at, Event::BucketReady { worker: w as u32, bucket: base + b as u32 });
+        }
+    }
+
+    /// Segment `segment` of worker `w`'s tensor-parallel op has ended: the
+    /// buckets final after it, if the op is its piece's last gradient op.
+    pub(crate) fn sync_segment_done(&mut self, w: usize, segment: u32, sched: &mut Sched) {
+        let st = self.state();
+        let Some(piece) = st.segmented[w] else { return };
+        let base = st.bucket_base[piece as usize];
+        let ready: Vec<u32> = st.cfg.buckets[piece as usize]
+            .iter()
+            .enumerate()
+            .filter(|(_, b)| b.ready_segment == Some(segment))
+            .map(|(b, _)| base + b as u32)
+            .collect();
+        for gb in ready {
+            self.bucket_ready(w as u32, gb, sched);
         }
     }
 
@@ -547,6 +593,7 @@ impl Executor<'_> {
         let list = &st.grad_final[w % p];
         if let Some(&(i, _)) = list.get(st.cursor[w]) {
             if i == index {
+                st.segmented[w] = None;
                 st.cursor[w] += 1;
                 // Without overlap every bucket of the worker is ready when its
                 // last gradient op ends.
@@ -624,46 +671,58 @@ impl Executor<'_> {
             }
             (_, None) => (Goal::AllReduce, dense),
         };
-        let prepared = match st.graph(g, goal, wire) {
-            Ok(p) => p,
-            Err(e) => {
-                st.fault.get_or_insert(e);
-                return;
+        let t = st.t;
+        let mut copies = Vec::with_capacity(t as usize);
+        for rank in 0..t {
+            match st.graph(g, goal, wire, rank) {
+                Ok(p) => copies.push(p),
+                Err(e) => {
+                    st.fault.get_or_insert(e);
+                    return;
+                }
             }
-        };
-        let graph = &prepared.graph;
-        let servers_first = st.d * st.p;
-        let devices: Vec<u32> =
-            members.iter().copied().chain((0..graph.participants - graph.members).map(|k| servers_first + k)).collect();
+        }
+        let graph = &copies[0].graph;
+        let servers_first = st.d * st.p * t;
+        let extra = graph.participants - graph.members;
+        let devices: Vec<Vec<u32>> = (0..t)
+            .map(|c| members.iter().map(|&m| m * t + c).chain((0..extra).map(|k| servers_first + k)).collect())
+            .collect();
         let sent = graph.sent_bytes();
         let coll = st.records.len() as u32;
         st.records.push(CollectiveRecord {
             group_index: g as u32,
             group: members.clone(),
-            servers: devices[members.len()..].to_vec(),
+            ranks: t,
+            servers: devices[0][members.len()..].to_vec(),
             piece,
             bucket,
             phase,
             algorithm: graph.algorithm,
             bytes: dense,
             wire_bytes_sent: sent[..members.len()].to_vec(),
-            server_bytes_sent: sent[members.len()..].to_vec(),
+            server_bytes_sent: sent[members.len()..].iter().map(|&b| b * t as u64).collect(),
             rounds: graph.rounds,
             start: now,
             end: now,
         });
         let compressed = compression.is_some();
-        let mut remaining: Vec<u32> = (0..graph.transfers().len()).map(|t| graph.deps(t).len() as u32).collect();
-        if compressed {
-            for t in graph.transfers().iter().enumerate().filter(|(_, t)| t.from < graph.members).map(|(i, _)| i) {
-                remaining[t] += 1;
+        let mut offset = Vec::with_capacity(t as usize + 1);
+        let mut remaining = Vec::new();
+        for p in &copies {
+            offset.push(remaining.len() as u32);
+            let g = &p.graph;
+            for (i, tr) in g.transfers().iter().enumerate() {
+                remaining.push(g.deps(i).len() as u32 + u32::from(compressed && tr.from < g.members));
             }
         }
-        let left = graph.transfers().len() as u32;
+        offset.push(remaining.len() as u32);
+        let left = remaining.len() as u32;
         let rate = st.cfg.encode_bytes_per_s.max(1);
         st.running.resize_with(coll as usize + 1, || None);
+        let ready: Vec<u32> = (0..left).filter(|&i| remaining[i as usize] == 0).collect();
         st.running[coll as usize] =
-            Some(Running { prepared: prepared.clone(), devices, remaining, left, decodes_left: 0, compressed });
+            Some(Running { copies, offset, devices, remaining, left, decodes_left: 0, compressed });
         if compressed {
             let dur = SimDuration((u128::from(dense) * 1_000_000_000).div_ceil(u128::from(rate)) as u64);
             let op = Op { kind: OpKind::Encode, micro_batch: bucket, stage: piece };
@@ -676,23 +735,21 @@ impl Executor<'_> {
                 self.try_start(w as usize, sched);
             }
         }
-        let ready: Vec<u32> = {
-            let run = self.state().running[coll as usize].as_ref().expect("just started");
-            (0..run.remaining.len() as u32).filter(|&t| run.remaining[t as usize] == 0).collect()
-        };
-        for t in ready {
-            self.start_sync_transfer(coll, t, now);
+        for i in ready {
+            self.start_sync_transfer(coll, i, now);
         }
         if left == 0 {
             self.transfers_done(coll, sched);
         }
     }
 
-    fn start_sync_transfer(&mut self, coll: u32, t: u32, now: SimTime) {
+    /// Starts transfer `idx` (over all copies) of collective `coll`.
+    fn start_sync_transfer(&mut self, coll: u32, idx: u32, now: SimTime) {
         let st = self.sync.as_mut().expect("sync");
         let run = st.running[coll as usize].as_ref().expect("running");
-        let tr = run.prepared.graph.transfers()[t as usize];
-        let (src, dst) = (run.devices[tr.from as usize], run.devices[tr.to as usize]);
+        let c = run.offset.partition_point(|&o| o <= idx) - 1;
+        let tr = run.copies[c].graph.transfers()[(idx - run.offset[c]) as usize];
+        let (src, dst) = (run.devices[c][tr.from as usize], run.devices[c][tr.to as usize]);
         let i = st.transfers.len() as u32;
         st.transfers.push(SyncTransferRecord {
             collective: coll,
@@ -705,7 +762,7 @@ impl Executor<'_> {
             end: now,
             bottleneck: None,
         });
-        st.graph_transfer.push(t);
+        st.graph_transfer.push(idx);
         self.transfers.start(now, src, dst, tr.bytes, i | SYNC_BIT);
     }
 
@@ -715,12 +772,14 @@ impl Executor<'_> {
         let rec = &mut st.transfers[i as usize];
         rec.end = now;
         let coll = rec.collective;
-        let t = st.graph_transfer[i as usize];
+        let idx = st.graph_transfer[i as usize];
         let run = st.running[coll as usize].as_mut().expect("running");
         run.left -= 1;
-        let prepared = run.prepared.clone();
+        let c = run.offset.partition_point(|&o| o <= idx) - 1;
+        let (base, prepared) = (run.offset[c], run.copies[c].clone());
         let mut ready = Vec::new();
-        for &n in &prepared.dependents[t as usize] {
+        for &n in &prepared.dependents[(idx - base) as usize] {
+            let n = base + n;
             run.remaining[n as usize] -= 1;
             if run.remaining[n as usize] == 0 {
                 ready.push(n);
@@ -833,12 +892,15 @@ impl Executor<'_> {
             Then::Encoded { coll, member } => {
                 let st = self.state();
                 let run = st.running[coll as usize].as_mut().expect("running");
-                let prepared = run.prepared.clone();
                 let mut ready = Vec::new();
-                for &t in &prepared.by_sender[member as usize] {
-                    run.remaining[t as usize] -= 1;
-                    if run.remaining[t as usize] == 0 {
-                        ready.push(t);
+                for c in 0..run.copies.len() {
+                    let (base, prepared) = (run.offset[c], run.copies[c].clone());
+                    for &t in &prepared.by_sender[member as usize] {
+                        let t = base + t;
+                        run.remaining[t as usize] -= 1;
+                        if run.remaining[t as usize] == 0 {
+                            ready.push(t);
+                        }
                     }
                 }
                 for t in ready {
@@ -882,7 +944,7 @@ mod tests {
     }
 
     fn one_bucket(bytes: u64) -> BucketSpec {
-        BucketSpec { bytes, gather_bytes: 0, ready_num: 1, ready_den: 1 }
+        BucketSpec { bytes, gather_bytes: 0, ready_num: 1, ready_den: 1, ready_segment: None }
     }
 
     /// One stage, one micro-batch (forward 0, backward 1 ns), four replicas on
@@ -962,8 +1024,8 @@ mod tests {
         let cost = StageCost::new(SimDuration(100), SimDuration(1000), 0);
         let topo = || Topology::full_mesh(2, LinkSpec { latency_ns: 0, bytes_per_s: 1_000_000_000 });
         let buckets = vec![vec![
-            BucketSpec { bytes: 1000, gather_bytes: 0, ready_num: 1, ready_den: 2 },
-            BucketSpec { bytes: 1000, gather_bytes: 0, ready_num: 2, ready_den: 2 },
+            BucketSpec { bytes: 1000, gather_bytes: 0, ready_num: 1, ready_den: 2, ready_segment: None },
+            BucketSpec { bytes: 1000, gather_bytes: 0, ready_num: 2, ready_den: 2, ready_segment: None },
         ]];
         let mut cfg = config(2, Algorithm::Ring, buckets, 2);
         let tr = simulate_step(plan.clone(), &[cost], topo(), RunOptions::default(), Some(&cfg)).unwrap();

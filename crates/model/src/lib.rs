@@ -51,6 +51,52 @@ pub struct LayerCost {
     /// layer's that runs this layer keeps its own copy, with its gradients
     /// and optimizer state.
     pub tied_params: u64,
+    /// With tensor parallelism: bytes of each of the layer's two
+    /// all-reduces per pass (forward and backward); 0: none.
+    pub tensor_bytes: u64,
+    /// With tensor parallelism: the share of the forward before its first
+    /// all-reduce, as (numerator, denominator) (a transformer layer's
+    /// attention part; one half for a layer given by its times).
+    pub forward_split: (u64, u64),
+    /// The share of the backward before its first all-reduce (a transformer
+    /// layer's MLP part, since the backward runs the layer in reverse).
+    pub backward_split: (u64, u64),
+}
+
+impl LayerCost {
+    /// A layer with these costs and no tensor-parallel communication.
+    pub fn new(name: impl Into<String>, forward_ns: u64, backward_ns: u64, activation_bytes: u64) -> Self {
+        LayerCost {
+            name: name.into(),
+            forward_ns,
+            backward_ns,
+            activation_bytes,
+            stash_bytes: activation_bytes,
+            params: 0,
+            tied_params: 0,
+            tensor_bytes: 0,
+            forward_split: (1, 2),
+            backward_split: (1, 2),
+        }
+    }
+
+    /// What one device of a tensor-parallel group of `t` holds and does for
+    /// this layer: times, activation, stash and parameters divided by `t`,
+    /// rounded up (the times are an idealisation: perfect scaling of the
+    /// compute); the all-reduce size is the whole layer's.
+    pub fn per_tensor_rank(&self, t: u64) -> LayerCost {
+        let t = t.max(1);
+        LayerCost {
+            name: self.name.clone(),
+            forward_ns: self.forward_ns.div_ceil(t),
+            backward_ns: self.backward_ns.div_ceil(t),
+            activation_bytes: self.activation_bytes.div_ceil(t),
+            stash_bytes: self.stash_bytes.div_ceil(t),
+            params: self.params.div_ceil(t),
+            tied_params: self.tied_params.div_ceil(t),
+            ..self.clone()
+        }
+    }
 }
 
 /// A decoder-style transformer's shape.
@@ -272,6 +318,79 @@ impl Transformer {
         ((s * b * per_position + scores) * self.bytes_per_value as u128 / 2) as u64
     }
 
+    /// Forward FLOPs of a transformer layer's attention part (the query,
+    /// key, value and output projections and the score products), for `b`
+    /// sequences: `4 b s h^2 + 4 b s h w + 4 b s^2 h` (`8 b s h^2 + 4 b s^2 h`
+    /// in the original); the rest of [`Transformer::layer_forward_flops`] is
+    /// the MLP (`16 b s h^2` in the original).
+    pub fn attention_forward_flops(&self, b: u64) -> f64 {
+        let (s, h, b) = (self.seq_len as f64, self.hidden as f64, b as f64);
+        let w = self.kv_width() as f64;
+        4.0 * b * s * h * h + 4.0 * b * s * h * w + 4.0 * b * s * s * h
+    }
+
+    /// Bytes one device of a tensor-parallel group of `t` stashes for one
+    /// transformer layer, rounded down.
+    ///
+    /// Korthikanti et al., "Reducing Activation Recomputation in Large
+    /// Transformer Models", MLSys 2023: eq. 2, `s b h (10 + 24/t + 5 a s /
+    /// (h t))` without sequence parallelism, eq. 3, `s b h (34 + 5 a s / h) /
+    /// t` with it. In the terms of [`Transformer::layer_stash_bytes`], the
+    /// `10 h` left whole without sequence parallelism are the layer norms'
+    /// inputs (`4 h`), the attention's and the MLP's inputs (`2 h` each) and
+    /// the two dropout masks (`h` each); the queries, keys, values, the
+    /// output projection's input (`4 h + 4 w`), the FFN's inner values and
+    /// the scores are split over the `t` devices.
+    pub fn layer_stash_bytes_tensor(&self, b: u64, t: u64, sequence: bool) -> u64 {
+        let t = t.max(1) as u128;
+        let (s, b, h) = (self.seq_len as u128, b as u128, self.hidden as u128);
+        let (w, f) = (self.kv_width() as u128, self.ffn_hidden as u128);
+        let ffn = if self.gated_ffn { 6 * f } else { 4 * f };
+        let whole = 10 * h;
+        let split = 4 * h + 4 * w + ffn;
+        let scores = match self.attention {
+            Attention::Standard => 5 * self.heads as u128 * s * s * b,
+            Attention::Flash => 0,
+        };
+        let in_t_parts = if sequence { s * b * (whole + split) + scores } else { s * b * (whole * t + split) + scores };
+        (in_t_parts * self.bytes_per_value as u128 / (2 * t)) as u64
+    }
+
+    /// The layer table for one device of a tensor-parallel group of `t`
+    /// (with sequence parallelism or not): the times of
+    /// [`Transformer::layer_table`] divided by `t` (rounded up), parameters
+    /// divided by `t` (the embedding and logit matrices split by vocabulary),
+    /// transformer layers stashing [`Transformer::layer_stash_bytes_tensor`],
+    /// the logit layer its input (split only with sequence parallelism) and
+    /// its `1/t` of the logits. Each transformer layer does two all-reduces
+    /// of `s b h` values per pass (Shoeybi et al., "Megatron-LM", 2019, sec.
+    /// 3); the embedding and logit layers none (their small reductions are
+    /// left out). With `t = 1` this is [`Transformer::layer_table`].
+    pub fn layer_table_tensor(&self, b: u64, speed: Speed, t: u64, sequence: bool) -> Vec<LayerCost> {
+        let mut out = self.layer_table(b, speed);
+        if t <= 1 {
+            return out;
+        }
+        let boundary = self.boundary_bytes(b);
+        let logits_bytes = self.bytes_per_value * self.seq_len * b * self.vocab;
+        let stash = self.layer_stash_bytes_tensor(b, t, sequence);
+        for l in out.iter_mut() {
+            let whole_stash = if l.name == "logits" {
+                Some(if sequence { (boundary + logits_bytes).div_ceil(t) } else { boundary + logits_bytes.div_ceil(t) })
+            } else if l.name.starts_with("layer.") {
+                Some(stash)
+            } else {
+                None
+            };
+            let mut r = l.per_tensor_rank(t);
+            if let Some(st) = whole_stash {
+                r.stash_bytes = st;
+            }
+            *l = r;
+        }
+        out
+    }
+
     /// The layer table: an embedding layer, `l` transformer layers and the
     /// logit layer, for micro-batches of `b` sequences.
     ///
@@ -289,14 +408,13 @@ impl Transformer {
         let logit = self.logit_forward_flops(b);
         let logits_bytes = self.bytes_per_value * self.seq_len * b * self.vocab;
         let mut out = Vec::with_capacity(self.layers as usize + 2);
+        // Attention's share of the forward; the backward runs the MLP first.
+        let attention = self.attention_forward_flops(b);
+        let mlp_back = 2.0 * (f - attention);
         out.push(LayerCost {
-            name: "embedding".into(),
-            forward_ns: 0,
-            backward_ns: 0,
-            activation_bytes: boundary,
             stash_bytes: 0,
             params: self.embedding_params(),
-            tied_params: 0,
+            ..LayerCost::new("embedding", 0, 0, boundary)
         });
         for i in 0..self.layers {
             out.push(LayerCost {
@@ -307,16 +425,16 @@ impl Transformer {
                 stash_bytes: self.layer_stash_bytes(b),
                 params: self.layer_params(),
                 tied_params: 0,
+                tensor_bytes: boundary,
+                forward_split: (attention.round() as u64, f.round() as u64),
+                backward_split: (mlp_back.round() as u64, back.round() as u64),
             });
         }
         out.push(LayerCost {
-            name: "logits".into(),
-            forward_ns: speed.time_ns(logit),
-            backward_ns: speed.time_ns(2.0 * logit),
-            activation_bytes: logits_bytes,
             stash_bytes: boundary + logits_bytes,
             params: self.logit_params(),
             tied_params: self.tied_params(),
+            ..LayerCost::new("logits", speed.time_ns(logit), speed.time_ns(2.0 * logit), logits_bytes)
         });
         out
     }

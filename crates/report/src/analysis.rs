@@ -187,6 +187,11 @@ pub struct DeviceReport {
     /// Its pipeline device within the replica (it runs stage `stage` and its
     /// chunks).
     pub stage: u32,
+    /// Its rank in the stage's tensor group (0 without tensor parallelism).
+    pub rank: u32,
+    /// Time in the tensor group's all-reduces, in milliseconds (part of the
+    /// busy time: inside its ops).
+    pub tensor_comm_ms: f64,
     /// The cluster device it is placed on.
     pub cluster_device: u32,
     /// Time spent computing, in milliseconds.
@@ -247,6 +252,10 @@ pub struct ParallelReport {
     pub data: u32,
     /// Pipeline stages per replica.
     pub pipeline: u32,
+    /// Devices per tensor group (each stage's).
+    pub tensor: u32,
+    /// Whether the tensor groups use sequence parallelism.
+    pub sequence: bool,
     /// Devices the replicas use (dedicated servers not counted).
     pub devices_used: u32,
 }
@@ -312,6 +321,10 @@ pub struct Report {
     /// The worst device's synchronisation not hidden behind compute, in
     /// milliseconds.
     pub sync_exposed_ms: f64,
+    /// Model FLOPs utilisation: model FLOPs per second over devices x peak
+    /// (Chowdhery et al., "PaLM", 2022, appendix B); `null` when the model's
+    /// FLOPs or the device's peak are not known.
+    pub mfu: Option<f64>,
     /// Recomputation: `none` or `full`.
     pub recompute: String,
     /// Whether every device's peak memory fits its capacity.
@@ -322,6 +335,8 @@ pub struct Report {
     pub transfers: usize,
     /// Point-to-point transfers of the gradient collectives.
     pub sync_transfers: usize,
+    /// Point-to-point transfers of the tensor groups' all-reduces.
+    pub tensor_transfers: usize,
     /// One entry per pipeline device.
     pub devices: Vec<DeviceReport>,
     /// Every directed link that carried data, in topology order.
@@ -358,6 +373,11 @@ pub struct Labels {
     pub recompute: String,
     /// What the memory model needs.
     pub memory: MemoryInputs,
+    /// Model FLOPs of one step over all replicas and the devices' peak FLOP
+    /// per second, for `mfu` (when both are known).
+    pub flops: Option<(f64, f64)>,
+    /// Whether the tensor groups use sequence parallelism (shown only).
+    pub sequence: bool,
 }
 
 /// What the memory model needs beyond the trace.
@@ -421,6 +441,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
     let mut devices = Vec::with_capacity(trace.ops.len());
     let mut gaps = Vec::new();
     let p = shape.stages.max(1);
+    let t = trace.tensor.max(1);
     for (d, recs) in trace.ops.iter().enumerate() {
         let device = d as u32;
         let busy_ns: u64 = recs.iter().map(|r| r.end.saturating_since(r.start).as_ns()).sum();
@@ -438,8 +459,10 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         let peak_memory_bytes = state_bytes.saturating_add(mem.reserved_bytes).saturating_add(peak_activation_bytes);
         devices.push(DeviceReport {
             device,
-            replica: device / p,
-            stage: device % p,
+            replica: device / t / p,
+            stage: device / t % p,
+            rank: device % t,
+            tensor_comm_ms: ms(trace.tensor_comm_ns.get(d).copied().unwrap_or(0)),
             cluster_device: trace.cluster_devices.get(d).copied().unwrap_or(device),
             busy_ms: ms(busy_ns),
             idle_ms: ms(idle_ns),
@@ -495,14 +518,21 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         parallel: ParallelReport {
             data: trace.replicas.max(1),
             pipeline: shape.stages,
+            tensor: t,
+            sequence: labels.sequence,
             devices_used: trace.ops.len() as u32,
         },
+        mfu: labels
+            .flops
+            .filter(|_| step_ns > 0)
+            .map(|(flops, peak)| flops / (step_ns as f64 / 1e9) / (peak * trace.ops.len().max(1) as f64)),
         sync_exposed_ms: ms(devices.iter().map(|d| d.sync_exposed_ns).max().unwrap_or(0)),
         recompute: if labels.recompute.is_empty() { "none".into() } else { labels.recompute.clone() },
         fits: devices.iter().all(|d| d.fits),
         ops: trace.ops.iter().map(Vec::len).sum(),
         transfers: trace.transfers.len(),
         sync_transfers: trace.sync_transfers.len(),
+        tensor_transfers: trace.tensor_transfers.len(),
         devices,
         links: trace
             .link_stats
@@ -587,7 +617,7 @@ fn push_gap(gaps: &mut Vec<Gap>, device: u32, start: SimTime, end: SimTime, deta
 
 fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec<Gap>) {
     let device = d as u32;
-    let replica = device / trace.plan.shape.stages.max(1);
+    let replica = device / trace.tensor.max(1) / trace.plan.shape.stages.max(1);
     let recs = &trace.ops[d];
     let (Some(first), Some(last)) = (recs.first(), recs.last()) else {
         return;

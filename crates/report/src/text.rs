@@ -49,14 +49,19 @@ pub fn render(report: &Report, options: &TextOptions) -> String {
         if report.jitter > 0.0 { format!(", compute jitter +-{}%", report.jitter * 100.0) } else { String::new() }
     );
     let replicas = report.parallel.data;
-    if replicas > 1 {
+    let tensor = report.parallel.tensor;
+    if replicas > 1 || tensor > 1 {
+        let sync = report.collectives.iter().find(|c| c.phase != "tied all-reduce").map(|c| c.algorithm);
         let _ = writeln!(
             s,
-            "layout {} replicas x {} stages = {} devices, gradients by {}",
+            "layout {} replica{} x {} stages x {} tensor = {} devices{}{}",
             replicas,
+            if replicas == 1 { "" } else { "s" },
             report.parallel.pipeline,
+            tensor,
             report.parallel.devices_used,
-            report.collectives.iter().find(|c| c.phase != "tied all-reduce").map_or("nothing", |c| c.algorithm)
+            sync.map_or(String::new(), |a| format!(", gradients by {a}")),
+            if report.parallel.sequence { ", sequence parallel" } else { "" }
         );
     }
     let _ = writeln!(s);
@@ -75,17 +80,23 @@ pub fn render(report: &Report, options: &TextOptions) -> String {
             report.samples_per_s, report.micro_batches, report.micro_batch_size
         );
     }
+    if let Some(mfu) = report.mfu {
+        let _ = writeln!(s, "MFU              {:.2}% (model FLOPs per second / (devices x peak))", mfu * 100.0);
+    }
     let synced = !report.collectives.is_empty();
+    let tensor_note =
+        if tensor > 1 { format!(", {} tensor all-reduce transfers", report.tensor_transfers) } else { String::new() };
     if synced {
         let sync_transfers: usize = report.sync_transfers;
         let _ = writeln!(
             s,
-            "simulated        {} ops, {} transfers, {} collective{} ({} transfers)",
+            "simulated        {} ops, {} transfers, {} collective{} ({} transfers){}",
             report.ops,
             report.transfers,
             report.collectives.len(),
             if report.collectives.len() == 1 { "" } else { "s" },
-            sync_transfers
+            sync_transfers,
+            tensor_note
         );
         let worst = report.devices.iter().max_by_key(|d| (d.sync_exposed_ns, std::cmp::Reverse(d.device)));
         if let Some(w) = worst {
@@ -97,19 +108,20 @@ pub fn render(report: &Report, options: &TextOptions) -> String {
             );
         }
     } else {
-        let _ = writeln!(s, "simulated        {} ops, {} transfers", report.ops, report.transfers);
+        let _ = writeln!(s, "simulated        {} ops, {} transfers{}", report.ops, report.transfers, tensor_note);
     }
     let _ = writeln!(s);
     let placed = report.devices.iter().any(|d| d.cluster_device != d.device);
     let _ = writeln!(
         s,
-        "{:>6}  {:>12}  {:>12}  {:>8}  {:>16}  {:>25}{}{}",
+        "{:>6}  {:>12}  {:>12}  {:>8}  {:>16}  {:>25}{}{}{}",
         "device",
         "busy",
         "idle",
         "bubble",
         "peak activations",
         "peak mem / capacity",
+        if tensor > 1 { format!("  {:>12}", "tensor comm") } else { String::new() },
         if synced { format!("  {:>12}", "sync exposed") } else { String::new() },
         if placed { "  placed on" } else { "" }
     );
@@ -117,16 +129,26 @@ pub fn render(report: &Report, options: &TextOptions) -> String {
         let capacity = d.memory_capacity_bytes.map_or_else(|| "unlimited".to_string(), format_bytes);
         let _ = writeln!(
             s,
-            "{:>6}  {:>12}  {:>12}  {:>7.2}%  {:>16}  {:>25}{}{}",
+            "{:>6}  {:>12}  {:>12}  {:>7.2}%  {:>16}  {:>25}{}{}{}",
             d.device,
             format_ns(d.busy_ns),
             format_ns(d.idle_ns),
             d.bubble_fraction * 100.0,
             d.peak_activations,
             format!("{} / {}", format_bytes(d.peak_memory_bytes), capacity),
+            if tensor > 1 {
+                format!("  {:>12}", format_ns((d.tensor_comm_ms * 1e6).round() as u64))
+            } else {
+                String::new()
+            },
             if synced { format!("  {:>12}", format_ns(d.sync_exposed_ns)) } else { String::new() },
             if placed {
-                if replicas > 1 {
+                if tensor > 1 {
+                    format!(
+                        "  cluster device {} (replica {}, stage {}, rank {})",
+                        d.cluster_device, d.replica, d.stage, d.rank
+                    )
+                } else if replicas > 1 {
                     format!("  cluster device {} (replica {}, stage {})", d.cluster_device, d.replica, d.stage)
                 } else {
                     format!("  cluster device {}", d.cluster_device)

@@ -138,10 +138,12 @@ pub const TOP: &[Key] = &[
 /// `parallel`.
 pub const PARALLEL: &[Key] = &[
     with_default("data", whole(1, MAX_DEVICES), Default::Whole(1), "d: replicas of the pipeline, each running its own micro-batches; their gradients are summed every step."),
+    with_default("tensor", whole(1, MAX_DEVICES), Default::Whole(1), "t: devices that share each layer of a stage, in lock-step (tensor parallelism)."),
+    with_default("sequence", Type::Bool, Default::Bool(false), "true: sequence parallelism for the activations a tensor group keeps whole otherwise."),
     key(
         "order",
-        Type::Names(&["data", "pipeline"]),
-        "How replicas and stages are numbered onto devices with placement: packed, fastest-varying first; [data, pipeline] (the default) puts a stage's replicas side by side.",
+        Type::Names(&["tensor", "data", "pipeline"]),
+        "How tensor ranks, replicas and stages are numbered onto devices with placement: packed, fastest-varying first; [tensor, data, pipeline] is the default, and a list without tensor puts it first.",
     ),
 ];
 
@@ -182,7 +184,7 @@ pub const COMPRESSION: &[Key] = &[
 /// `model`.
 pub const MODEL: &[Key] = &[
     key("layers", Type::List(LAYER), "The layers in model order, each with its costs per micro-batch."),
-    key("profile", Type::Path, "A CSV profile of the layers (name,forward_ms,backward_ms,activation_bytes,stash_bytes,params,tied_params), relative to the scenario file."),
+    key("profile", Type::Path, "A CSV profile of the layers (name,forward_ms,backward_ms,activation_bytes,stash_bytes,params,tied_params[,tensor_bytes]), relative to the scenario file."),
     key("transformer", Type::Section(TRANSFORMER), "Derive the layers from a transformer's shape; needs cluster.device.peak and efficiency."),
 ];
 
@@ -196,6 +198,7 @@ pub const LAYER: &[Key] = &[
     key("stash", Type::Quantity(Unit::Size), "Bytes kept per micro-batch from the forward until the backward; activation when left out."),
     with_default("params", Type::Count, Default::Whole(0), "Parameters of the layer, e.g. 350M or 1.2B."),
     with_default("tied_params", Type::Count, Default::Whole(0), "Parameters the layer shares with the first layer (tied weights); a device other than device 0 that runs it keeps its own copy."),
+    with_default("tensor_bytes", Type::Quantity(Unit::Size), Default::Text("0B"), "With parallel.tensor > 1: bytes of each of the layer's two all-reduces per pass (forward and backward)."),
 ];
 
 /// `model.transformer`.

@@ -136,6 +136,8 @@ impl Shard {
 /// An axis of the device layout.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Axis {
+    /// Tensor-parallel ranks of a stage.
+    Tensor,
     /// Data-parallel replicas.
     Data,
     /// Pipeline stages.
@@ -147,14 +149,18 @@ pub enum Axis {
 pub struct Parallel {
     /// d: replicas of the pipeline.
     pub data: u32,
-    /// How a packed placement numbers (replica, stage) onto devices,
+    /// t: devices sharing each layer of a stage.
+    pub tensor: u32,
+    /// Sequence parallelism for the activations a tensor group keeps whole.
+    pub sequence: bool,
+    /// How a packed placement numbers (rank, replica, stage) onto devices,
     /// fastest-varying first.
     pub order: Vec<Axis>,
 }
 
 impl Default for Parallel {
     fn default() -> Self {
-        Parallel { data: 1, order: vec![Axis::Data, Axis::Pipeline] }
+        Parallel { data: 1, tensor: 1, sequence: false, order: vec![Axis::Tensor, Axis::Data, Axis::Pipeline] }
     }
 }
 
@@ -294,6 +300,11 @@ pub struct Scenario {
     pub source: ModelSource,
     /// The layers, in model order, `repeat` expanded.
     pub layers: Vec<LayerCost>,
+    /// What one device of a tensor group holds and does for each layer
+    /// (`layers` itself when `parallel.tensor` is 1): times, activations,
+    /// stash and parameters divided by `t` (a transformer's stash by
+    /// Korthikanti et al.'s eq. 2 or 3).
+    pub tensor_layers: Vec<LayerCost>,
     /// The devices and their connections.
     pub cluster: Cluster,
     /// Stages, split, micro-batches and schedule.
@@ -324,9 +335,10 @@ impl Scenario {
         self.pieces_of(&self.pipeline.split)
     }
 
-    /// The prices of any piece of this scenario's model ([`PieceCosts`]).
+    /// The prices of any piece of this scenario's model ([`PieceCosts`]),
+    /// on one device of a tensor group.
     pub fn piece_costs(&self) -> PieceCosts {
-        PieceCosts::new(&self.layers, self.pipeline.stages, self.training.recompute)
+        PieceCosts::new(&self.tensor_layers, self.pipeline.stages, self.training.recompute)
     }
 
     /// The pieces another `split` would cut the model into (it must cover the
@@ -341,9 +353,9 @@ impl Scenario {
         self.parallel.data as u64 * self.pipeline.micro_batches as u64 * self.pipeline.micro_batch_size as u64
     }
 
-    /// Devices the replicas' stages use.
+    /// Devices the replicas' stages use (all ranks of every tensor group).
     pub fn workers(&self) -> u32 {
-        self.parallel.data * self.pipeline.stages
+        self.parallel.data * self.pipeline.stages * self.parallel.tensor
     }
 
     /// The node a cluster device sits in (0 for a flat cluster).
@@ -814,7 +826,8 @@ fn from_tree(
     let (source, layers) = top.req("model", |m| read_model(m, &cluster, micro_batch_size))?;
     let training = top.opt("training", read_training)?.unwrap_or_default();
     let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster))?;
-    let parallel = top.opt("parallel", |p| read_parallel(p, &cluster, pipeline.stages))?.unwrap_or_default();
+    let parallel = top.opt("parallel", |p| read_parallel(p, &cluster, pipeline.stages, &source))?.unwrap_or_default();
+    let tensor_layers = tensor_layers(&layers, &source, &cluster, &parallel, micro_batch_size);
     let gradients = top.opt("gradients", read_gradients)?.unwrap_or_default();
     let placement = match top.get("placement") {
         None => packed(&parallel, pipeline.stages),
@@ -830,6 +843,7 @@ fn from_tree(
         seed,
         source,
         layers,
+        tensor_layers,
         cluster,
         pipeline,
         training,
@@ -892,12 +906,13 @@ fn read_placement(
     stages: u32,
     parallel: &Parallel,
 ) -> Result<Vec<u32>, ScenarioError> {
-    let d = parallel.data;
-    let workers = stages * d;
+    let (d, t) = (parallel.data, parallel.tensor);
+    let workers = stages * d * t;
     match &a.node.value {
         Value::Str(s) if s == "packed" => Ok(packed(parallel, stages)),
-        Value::Str(s) if s == "spread" && d > 1 => Err(a.err(format!(
-            "spread places one pipeline; with parallel.data = {d} use packed (numbered by parallel.order) or a list of {workers} device ids"
+        Value::Str(s) if s == "spread" && d * t > 1 => Err(a.err(format!(
+            "spread places one pipeline of one device per stage; with {} use packed (numbered by parallel.order) or a list of {workers} device ids",
+            if t > 1 { format!("parallel.tensor = {t}") } else { format!("parallel.data = {d}") }
         ))),
         Value::Str(s) if s == "spread" => {
             let (nodes, dpn) = match cluster.fabric {
@@ -907,9 +922,9 @@ fn read_placement(
             Ok((0..stages).map(|s| (s % nodes) * dpn + s / nodes).collect())
         }
         Value::Seq(items) => {
-            if items.len() as u32 != workers && d > 1 {
+            if items.len() as u32 != workers && d * t > 1 {
                 return Err(a.err(format!(
-                    "names {} devices, but {d} replicas x {stages} stages need {workers} (replica 0's stages first)",
+                    "names {} devices, but {d} replicas x {stages} stages x {t} devices per tensor group need {workers} (replica 0's stage 0's devices first)",
                     items.len()
                 )));
             }
@@ -926,7 +941,10 @@ fn read_placement(
                     at.err(format!("must name a device from 0 to {}, found {}", cluster.devices - 1, item.shown()))
                 })? as u32;
                 if let Some(j) = out.iter().position(|&x| x == d) {
-                    let whose = if workers > stages {
+                    let whose = if t > 1 {
+                        let g = j as u32 / t;
+                        format!("replica {}'s stage {} (tensor rank {})", g / stages, g % stages, j as u32 % t)
+                    } else if workers > stages {
                         format!("replica {}'s stage {}", j as u32 / stages, j as u32 % stages)
                     } else {
                         format!("stage {j}")
@@ -941,25 +959,97 @@ fn read_placement(
     }
 }
 
-/// `packed`: replica r's stage s on the device numbered by `parallel.order`,
-/// fastest-varying axis first.
+/// `packed`: rank k of replica r's stage s on the device numbered by
+/// `parallel.order`, fastest-varying axis first; listed in the order
+/// `(r * stages + s) * t + k`.
 fn packed(parallel: &Parallel, stages: u32) -> Vec<u32> {
-    let d = parallel.data;
-    let data_first = parallel.order.first() != Some(&Axis::Pipeline);
-    (0..d).flat_map(|r| (0..stages).map(move |s| if data_first { s * d + r } else { r * stages + s })).collect()
+    let (d, t) = (parallel.data, parallel.tensor);
+    let size = |a: Axis| match a {
+        Axis::Tensor => t,
+        Axis::Data => d,
+        Axis::Pipeline => stages,
+    };
+    let mut stride = [0u32; 3];
+    let mut next = 1u32;
+    for &a in &parallel.order {
+        stride[a as usize] = next;
+        next *= size(a);
+    }
+    let [st, sd, sp] = stride;
+    let mut out = Vec::with_capacity((d * stages * t) as usize);
+    for r in 0..d {
+        for s in 0..stages {
+            for k in 0..t {
+                out.push(k * st + r * sd + s * sp);
+            }
+        }
+    }
+    out
 }
 
-fn read_parallel(p: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Parallel, ScenarioError> {
+/// The per-device layer costs of a tensor group of `parallel.tensor`.
+fn tensor_layers(
+    layers: &[LayerCost],
+    source: &ModelSource,
+    cluster: &Cluster,
+    parallel: &Parallel,
+    micro_batch_size: u32,
+) -> Vec<LayerCost> {
+    let t = parallel.tensor as u64;
+    if t <= 1 {
+        return layers.to_vec();
+    }
+    match (source, cluster.device.peak_flop_per_s, cluster.device.efficiency) {
+        (ModelSource::Transformer(shape), Some(peak), Some(efficiency)) => shape.layer_table_tensor(
+            micro_batch_size as u64,
+            Speed { peak_flop_per_s: peak as f64, efficiency },
+            t,
+            parallel.sequence,
+        ),
+        _ => layers.iter().map(|l| l.per_tensor_rank(t)).collect(),
+    }
+}
+
+fn read_parallel(
+    p: Field<'_>,
+    cluster: &Cluster,
+    stages: u32,
+    source: &ModelSource,
+) -> Result<Parallel, ScenarioError> {
     let m = p.map(keys::PARALLEL)?;
+    let tensor = m
+        .opt("tensor", |a| {
+            let t = a.whole()? as u32;
+            if let ModelSource::Transformer(shape) = source {
+                if shape.heads % t as u64 != 0 || shape.kv_heads % t as u64 != 0 {
+                    return Err(a.err(format!(
+                        "{t} devices per tensor group must divide model.transformer.heads ({}) and kv_heads ({}), so that each device holds whole heads",
+                        shape.heads, shape.kv_heads
+                    )));
+                }
+            }
+            let need = t as u64 * stages as u64;
+            if need > cluster.devices as u64 {
+                return Err(a.err(format!(
+                    "{t} devices per tensor group x {stages} stages need {need} devices, but the cluster has {}",
+                    cluster.devices
+                )));
+            }
+            Ok(t)
+        })?
+        .unwrap_or(1);
+    let sequence = m.opt("sequence", |a| a.boolean())?.unwrap_or(false);
     let data = m
         .opt("data", |a| {
             let d = a.whole()? as u32;
-            let need = d as u64 * stages as u64;
+            let need = d as u64 * stages as u64 * tensor as u64;
             if need > cluster.devices as u64 {
-                return Err(a.err(format!(
-                    "{d} replicas x {stages} stages need {need} devices, but the cluster has {}",
-                    cluster.devices
-                )));
+                let shape = if tensor > 1 {
+                    format!("{d} replicas x {stages} stages x {tensor} devices per tensor group")
+                } else {
+                    format!("{d} replicas x {stages} stages")
+                };
+                return Err(a.err(format!("{shape} need {need} devices, but the cluster has {}", cluster.devices)));
             }
             Ok(d)
         })?
@@ -974,14 +1064,20 @@ fn read_parallel(p: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Paralle
                 let path = format!("{}.{i}", a.path);
                 let at = Field { cx: a.cx, path: &path, node: item, def: None };
                 let axis = match at.str()? {
+                    "tensor" => Axis::Tensor,
                     "data" => Axis::Data,
                     "pipeline" => Axis::Pipeline,
-                    other => return Err(at.err(format!("unknown axis `{other}`; expected data or pipeline"))),
+                    other => return Err(at.err(format!("unknown axis `{other}`; expected tensor, data or pipeline"))),
                 };
                 if out.contains(&axis) {
                     return Err(at.err(format!("names {} twice", at.str()?)));
                 }
                 out.push(axis);
+            }
+            // A list without tensor puts it first; a missing data or
+            // pipeline axis goes after the ones named.
+            if !out.contains(&Axis::Tensor) {
+                out.insert(0, Axis::Tensor);
             }
             for axis in [Axis::Data, Axis::Pipeline] {
                 if !out.contains(&axis) {
@@ -991,7 +1087,7 @@ fn read_parallel(p: Field<'_>, cluster: &Cluster, stages: u32) -> Result<Paralle
             Ok(out)
         })?
         .unwrap_or_else(|| Parallel::default().order);
-    Ok(Parallel { data, order })
+    Ok(Parallel { data, tensor, sequence, order })
 }
 
 fn read_gradients(g: Field<'_>) -> Result<Gradients, ScenarioError> {
@@ -1387,19 +1483,18 @@ fn read_layers(list: Field<'_>) -> Result<Vec<LayerCost>, ScenarioError> {
         let stash_bytes = m.opt("stash", |a| a.bytes())?.unwrap_or(activation_bytes);
         let params = m.opt("params", |a| a.count())?.unwrap_or(0);
         let tied_params = m.opt("tied_params", |a| a.count())?.unwrap_or(0);
+        let tensor_bytes = m.opt("tensor_bytes", |a| a.bytes())?.unwrap_or(0);
         if layers.len() as u64 + repeat > MAX_LAYERS {
             return Err(at.err(format!("the model expands to more than {MAX_LAYERS} layers")));
         }
         for r in 0..repeat {
             let name = if repeat > 1 { format!("{name}.{r}") } else { name.clone() };
             layers.push(LayerCost {
-                name,
-                forward_ns,
-                backward_ns,
-                activation_bytes,
                 stash_bytes,
                 params,
                 tied_params,
+                tensor_bytes,
+                ..LayerCost::new(name, forward_ns, backward_ns, activation_bytes)
             });
         }
     }

@@ -1,9 +1,11 @@
 //! Per-layer profiles as CSV: the table a user exports from their profiler.
 //!
-//! Header `name,forward_ms,backward_ms,activation_bytes,stash_bytes,params,tied_params`;
-//! `backward_ms` (default 2 x forward, common practice, no source),
-//! `stash_bytes` (default `activation_bytes`), `params` and `tied_params`
-//! (default 0) may be left out of the header or left empty in a row. Times are decimal
+//! Header `name,forward_ms,backward_ms,activation_bytes,stash_bytes,params,tied_params`
+//! and optionally `tensor_bytes` (each of the layer's two tensor-parallel
+//! all-reduces per pass); `backward_ms` (default 2 x forward, common
+//! practice, no source), `stash_bytes` (default `activation_bytes`),
+//! `params`, `tied_params` and `tensor_bytes` (default 0) may be left out of
+//! the header or left empty in a row. Times are decimal
 //! milliseconds, read exactly (to the nanosecond); sizes are whole bytes;
 //! parameter counts are whole numbers or carry a `k`, `M`, `B` or `T` suffix.
 
@@ -12,8 +14,8 @@ use std::io::Write;
 use crate::{units, LayerCost, ScenarioError};
 
 /// Columns a profile may have, in the order they are written.
-pub const COLUMNS: [&str; 7] =
-    ["name", "forward_ms", "backward_ms", "activation_bytes", "stash_bytes", "params", "tied_params"];
+pub const COLUMNS: [&str; 8] =
+    ["name", "forward_ms", "backward_ms", "activation_bytes", "stash_bytes", "params", "tied_params", "tensor_bytes"];
 const REQUIRED: [&str; 3] = ["name", "forward_ms", "activation_bytes"];
 
 /// Reads a profile; `file` labels errors, which name the line and column.
@@ -73,10 +75,17 @@ pub fn read(text: &str, file: &str) -> Result<Vec<LayerCost>, ScenarioError> {
         };
         let params = count(5)?;
         let tied_params = count(6)?;
+        let tensor_bytes = whole(7)?.unwrap_or(0);
         if layers.len() as u64 >= crate::MAX_LAYERS {
             return Err(err(line, "row", format!("more than {} layers", crate::MAX_LAYERS)));
         }
-        layers.push(LayerCost { name, forward_ns, backward_ns, activation_bytes, stash_bytes, params, tied_params });
+        layers.push(LayerCost {
+            stash_bytes,
+            params,
+            tied_params,
+            tensor_bytes,
+            ..LayerCost::new(name, forward_ns, backward_ns, activation_bytes)
+        });
     }
     if layers.is_empty() {
         return Err(err(1, "row", "the profile has no layers".into()));
@@ -95,12 +104,17 @@ pub fn ms_text(ns: u64) -> String {
     }
 }
 
-/// Writes `layers` as a profile that [`read`] gives back exactly.
+/// Writes `layers` as a profile that [`read`] gives back exactly (the
+/// `tensor_bytes` column only when a layer has tensor-parallel traffic; a
+/// transformer layer's split of its time around its all-reduces is not kept:
+/// read back, a layer splits its time in halves).
 pub fn write<W: Write>(layers: &[LayerCost], out: W) -> Result<(), csv::Error> {
     let mut w = csv::Writer::from_writer(out);
-    w.write_record(COLUMNS)?;
+    let tensor = layers.iter().any(|l| l.tensor_bytes > 0);
+    let columns = if tensor { &COLUMNS[..] } else { &COLUMNS[..7] };
+    w.write_record(columns)?;
     for l in layers {
-        w.write_record([
+        let mut row = vec![
             l.name.clone(),
             ms_text(l.forward_ns),
             ms_text(l.backward_ns),
@@ -108,7 +122,11 @@ pub fn write<W: Write>(layers: &[LayerCost], out: W) -> Result<(), csv::Error> {
             l.stash_bytes.to_string(),
             l.params.to_string(),
             l.tied_params.to_string(),
-        ])?;
+        ];
+        if tensor {
+            row.push(l.tensor_bytes.to_string());
+        }
+        w.write_record(row)?;
     }
     w.flush()?;
     Ok(())
@@ -156,6 +174,9 @@ mod tests {
     #[test]
     fn writes_what_it_reads() {
         let layers = vec![LayerCost {
+            tensor_bytes: 0,
+            forward_split: (1, 2),
+            backward_split: (1, 2),
             name: "a, \"quoted\"".into(),
             forward_ns: 1_234_567,
             backward_ns: 1,

@@ -202,7 +202,7 @@ fn shown_devices(run: &Run<'_>, chosen: Option<&[u32]>) -> (Vec<bool>, Option<St
             (shown, note)
         }
         None if n > MAX_CHART_DEVICES => {
-            let p = run.trace.plan.shape.stages as usize;
+            let p = (run.trace.plan.shape.stages * run.trace.tensor.max(1)) as usize;
             let shown = (0..n).map(|d| d < p).collect();
             let note = format!(
                 "Showing replica 0 only: {p} of {n} devices (more than {MAX_CHART_DEVICES}); --devices picks others, e.g. --devices 0-{}.",
@@ -257,17 +257,20 @@ fn lanes_of(run: &Run<'_>, shown: &[bool]) -> Lanes {
         of_device[d] = Some(lane);
     }
     let replicas = run.trace.replicas > 1;
+    let t = run.trace.tensor.max(1);
     let p = run.trace.plan.shape.stages.max(1);
     let chunks = run.trace.plan.shape.chunks.max(1);
     let prefix = if run.label.is_empty() { String::new() } else { format!("{}: ", run.label) };
     let label = (0..devices)
         .map(|d| {
-            let stage = d as u32 % p;
-            let replica = if replicas { format!("r{} ", d as u32 / p) } else { String::new() };
-            if placed {
+            let group = d as u32 / t;
+            let stage = group % p;
+            let replica = if replicas { format!("r{} ", group / p) } else { String::new() };
+            let rank = if t > 1 { format!(" rank {}", d as u32 % t) } else { String::new() };
+            if placed || t > 1 {
                 let stages: Vec<String> = (0..chunks).map(|c| (stage + c * p).to_string()).collect();
                 let word = if chunks > 1 { "stages" } else { "stage" };
-                format!("{prefix}{replica}{word} {} · dev {}", stages.join("+"), cluster[d])
+                format!("{prefix}{replica}{word} {}{rank} · dev {}", stages.join("+"), cluster[d])
             } else {
                 format!("{prefix}device {d}")
             }

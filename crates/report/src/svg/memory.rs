@@ -50,13 +50,19 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
     // Every replica holds the same state and the same activations (at its
     // own times): replica 0's devices stand for all.
     let replicas = trace.replicas.max(1);
-    let lanes = if replicas > 1 { trace.plan.shape.stages as usize } else { trace.ops.len() }.max(1);
-    let total_ops: usize = trace.ops.iter().take(lanes).map(Vec::len).sum();
+    let t = trace.tensor.max(1) as usize;
+    let shown: Vec<usize> = if replicas > 1 || t > 1 {
+        (0..trace.plan.shape.stages as usize).map(|g| g * t).collect()
+    } else {
+        (0..trace.ops.len()).collect()
+    };
+    let lanes = shown.len().max(1);
+    let total_ops: usize = shown.iter().map(|&d| trace.ops[d].len()).sum();
     if total_ops > MAX_CHART_OPS {
         return Err(ReportError::TooLarge { ops: total_ops, limit: MAX_CHART_OPS });
     }
     let panel_h = options.panel_px;
-    let noted = !options.note.is_empty() || options.view.window.is_some() || replicas > 1;
+    let noted = !options.note.is_empty() || options.view.window.is_some() || replicas > 1 || t > 1;
     let (width, height) =
         (options.view.width_px.unwrap_or(1100), 60 + panel_h * lanes as u32 + if noted { 80 } else { 60 });
     let t0 = trace.start().as_ns();
@@ -79,7 +85,8 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
             root.titled(&format!("{}: memory per device", report.title), ("sans-serif", 20)).map_err(draw_err)?;
         let (body, footer) = root.split_vertically(panel_h * lanes as u32);
         let panels = body.split_evenly((lanes, 1));
-        for (d, panel) in panels.iter().enumerate() {
+        for (lane, panel) in panels.iter().enumerate() {
+            let d = shown[lane];
             let dev = &report.devices[d];
             let base = (dev.state_bytes + reserved) as f64 / GIB;
             let capacity = dev.memory_capacity_bytes.map_or_else(|| "unlimited".into(), format_bytes);
@@ -92,7 +99,7 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
             let mut chart = ChartBuilder::on(panel)
                 .caption(caption, ("sans-serif", 13))
                 .margin(6)
-                .x_label_area_size(if d + 1 == lanes { 32 } else { 14 })
+                .x_label_area_size(if lane + 1 == lanes { 32 } else { 14 })
                 .y_label_area_size(70)
                 .build_cartesian_2d(start_ms..end_ms, 0f64..y_max)
                 .map_err(draw_err)?;
@@ -102,7 +109,7 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
                 .x_labels(10)
                 .label_style(("sans-serif", 11))
                 .light_line_style(RGBColor(238, 238, 238));
-            if d + 1 == lanes {
+            if lane + 1 == lanes {
                 mesh.x_desc("time (ms)");
             } else {
                 mesh.x_label_formatter(&|_| String::new());
@@ -149,7 +156,11 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
             x += 60 + 8 * name.len() as i32;
         }
         let mut notes = Vec::new();
-        if replicas > 1 {
+        if t > 1 {
+            notes.push(format!(
+                "replica 0 of {replicas}, rank 0 of each tensor group of {t} shown (every rank and replica holds the same)"
+            ));
+        } else if replicas > 1 {
             notes.push(format!("replica 0 of {replicas} shown (every replica holds the same)"));
         }
         if !options.note.is_empty() {
