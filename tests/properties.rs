@@ -310,6 +310,9 @@ struct ReplicaCase {
     params_k: Vec<u32>,
     bucket_kb: u32,
     update_us: u32,
+    /// Devices per tensor group, and each layer's all-reduce size (kB).
+    t: u32,
+    tensor_kb: u32,
 }
 
 fn replica_case() -> impl Strategy<Value = ReplicaCase> {
@@ -323,15 +326,16 @@ fn replica_case() -> impl Strategy<Value = ReplicaCase> {
         prop::collection::vec(0u32..3_000, 12),
         1u32..4_000,
         0u32..300,
+        (1u32..4, 0u32..500),
     )
-        .prop_map(|(base, d, k, overlap, shard, compression, params_k, bucket_kb, update_us)| {
+        .prop_map(|(base, d, k, overlap, shard, compression, params_k, bucket_kb, update_us, (t, tensor_kb))| {
             let sync = ["ring", "halving-doubling", "tree", "hierarchical", "parameter-server", "direct"][k];
             let d = if sync == "halving-doubling" && !d.is_power_of_two() { 2 } else { d };
             let halves = !matches!(sync, "tree" | "parameter-server");
             let compression = ["none", "quantize", "top-k"][compression];
             let shard =
                 if halves && compression != "top-k" { ["none", "optimizer", "gradients"][shard] } else { "none" };
-            ReplicaCase { base, d, sync, overlap, shard, compression, params_k, bucket_kb, update_us }
+            ReplicaCase { base, d, sync, overlap, shard, compression, params_k, bucket_kb, update_us, t, tensor_kb }
         })
 }
 
@@ -340,15 +344,18 @@ fn replica_scenario(c: &ReplicaCase) -> Result<Scenario, String> {
     let mut text = String::from("model:\n  layers:\n");
     for (i, (f, bw, a)) in b.layers.iter().enumerate() {
         let params = c.params_k[i % c.params_k.len()];
-        text += &format!("    - {{ forward: {f}us, backward: {bw}us, activation: {a}kB, params: {params}k }}\n");
+        text += &format!(
+            "    - {{ forward: {f}us, backward: {bw}us, activation: {a}kB, params: {params}k, tensor_bytes: {}kB }}\n",
+            c.tensor_kb
+        );
     }
     // Two nodes (so hierarchical has work to do when the replicas spread),
     // two spare devices for dedicated servers.
-    let devices = c.d * b.p + 2;
+    let devices = c.d * b.p * c.t + 2;
     text += &format!(
         "cluster:\n  nodes: 2\n  devices_per_node: {}\n  device_link: {{ latency: {}ns, bandwidth: {}GB/s }}\n  node_link: {{ latency: 1us, bandwidth: 10GB/s }}\n\
          pipeline: {{ stages: {}, micro_batches: {}, schedule: {}, chunks: {} }}\n\
-         parallel: {{ data: {}, order: [pipeline, data] }}\n\
+         parallel: {{ data: {}, tensor: {}, order: [pipeline, data] }}\n\
          gradients: {{ sync: {}, overlap: {}, bucket: {}kB, servers: 2, server_devices: dedicated{} }}\n\
          training: {{ shard: {}, update: {}us }}\n",
         devices.div_ceil(2),
@@ -359,6 +366,7 @@ fn replica_scenario(c: &ReplicaCase) -> Result<Scenario, String> {
         b.schedule,
         b.v,
         c.d,
+        c.t,
         c.sync,
         c.overlap,
         c.bucket_kb,
@@ -393,10 +401,13 @@ proptest! {
         let out = baton::simulate(&s).unwrap();
         let (trace, report) = (&out.trace, &out.report);
         let p = c.base.p as usize;
-        prop_assert_eq!(trace.ops.len(), p * c.d as usize);
+        let t = c.t as usize;
+        prop_assert_eq!(trace.ops.len(), p * c.d as usize * t);
         for (w, recs) in trace.ops.iter().enumerate() {
             let planned: Vec<_> = recs.iter().filter(|r| !r.op.kind.is_device_work()).map(|r| r.op).collect();
-            prop_assert_eq!(&planned, &trace.plan.per_device[w % p]);
+            prop_assert_eq!(&planned, &trace.plan.per_device[(w / t) % p]);
+            // A tensor group's ranks run in lock-step.
+            prop_assert_eq!(recs, &trace.ops[w - w % t]);
             for pair in recs.windows(2) {
                 prop_assert!(pair[1].start >= pair[0].end, "device {} overlaps", w);
             }
@@ -407,7 +418,7 @@ proptest! {
         for col in &trace.collectives {
             prop_assert!(col.start <= col.end);
             for &m in &col.group {
-                prop_assert!(trace.device_end[m as usize] >= col.end);
+                prop_assert!(trace.device_end[m as usize * t] >= col.end);
             }
             by_group.entry(col.group.clone()).or_default().push((col.start.as_ns(), col.end.as_ns()));
         }
@@ -419,7 +430,7 @@ proptest! {
         for t in &trace.sync_transfers {
             prop_assert!(t.start <= t.sent && t.sent <= t.end);
         }
-        if c.d == 1 {
+        if c.d == 1 && c.t == 1 {
             // One replica without tied weights: the pipeline runs exactly as
             // without synchronisation (an update, if any, only follows it).
             prop_assert!(trace.collectives.is_empty());

@@ -84,8 +84,9 @@ pub struct SyncWait {
 impl SyncWait {
     fn of(trace: &Trace, c: u32) -> Option<SyncWait> {
         let c = trace.collectives.get(c as usize)?;
+        let t = c.ranks.max(1);
         Some(SyncWait {
-            group: c.group.clone(),
+            group: c.group.iter().map(|&w| w * t).collect(),
             piece: c.piece,
             bucket: c.bucket,
             phase: c.phase.as_str(),
@@ -484,11 +485,14 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
     let total_idle: u64 = devices.iter().map(|d| d.idle_ns).sum();
     let global_batch =
         trace.replicas.max(1) as u64 * shape.micro_batches as u64 * labels.micro_batch_size.max(1) as u64;
+    // With tensor groups each collective ran once per rank, among the
+    // devices of that rank (reported with the whole collective's times).
     let collectives = trace
         .collectives
         .iter()
-        .map(|c| CollectiveReport {
-            group: c.group.clone(),
+        .flat_map(|c| (0..c.ranks.max(1)).map(move |k| (c, k)))
+        .map(|(c, k)| CollectiveReport {
+            group: c.group.iter().map(|&w| w * c.ranks.max(1) + k).collect(),
             piece: c.piece,
             bucket: c.bucket,
             phase: c.phase.as_str(),
@@ -640,7 +644,7 @@ fn device_gaps(trace: &Trace, d: usize, t0: SimTime, t1: SimTime, gaps: &mut Vec
                     .position(|c| {
                         c.piece == b.op.stage
                             && c.bucket == b.op.micro_batch
-                            && c.group.contains(&device)
+                            && c.group.contains(&(device / c.ranks.max(1)))
                             && c.end >= b.start
                     })
                     .and_then(|c| SyncWait::of(trace, c as u32)),

@@ -1218,11 +1218,11 @@ fn check_sync(top: &Section<'_>, s: &mut Scenario) -> Result<(), ScenarioError> 
             ))
         }
         Algorithm::Hierarchical => {
-            let p = s.pipeline.stages;
-            for stage in 0..p {
+            let (p, t) = (s.pipeline.stages, s.parallel.tensor);
+            for (stage, k) in (0..p).flat_map(|stage| (0..t).map(move |k| (stage, k))) {
                 let mut counts: Vec<(u32, u32)> = Vec::new();
                 for r in 0..d {
-                    let node = s.node_of(s.placement[(r * p + stage) as usize]);
+                    let node = s.node_of(s.placement[((r * p + stage) * t + k) as usize]);
                     match counts.iter_mut().find(|(n, _)| *n == node) {
                         Some(c) => c.1 += 1,
                         None => counts.push((node, 1)),
@@ -1233,8 +1233,10 @@ fn check_sync(top: &Section<'_>, s: &mut Scenario) -> Result<(), ScenarioError> 
                         "gradients",
                         "sync",
                         format!(
-                            "hierarchical needs the same number of stage {stage}'s replicas on every node, but node {} holds {} and node {node} holds {n}",
-                            counts[0].0, counts[0].1
+                            "hierarchical needs the same number of stage {stage}'s replicas{} on every node, but node {} holds {} and node {node} holds {n}",
+                            if t > 1 { format!(" (tensor rank {k})") } else { String::new() },
+                            counts[0].0,
+                            counts[0].1
                         ),
                     ));
                 }
