@@ -5,6 +5,10 @@
 //! collectives'); each collective transfer starts when the data it carries
 //! has arrived at its sender and shares the cards with everything else.
 //!
+//! `tensor`: 8 stages of 8-device tensor groups, 80 transformer layers, m =
+//! 64 (`scenarios/tensor-t8-p8.yaml`): every layer does four ring
+//! all-reduces among its group per micro-batch, about 2.3 million transfers.
+//!
 //! Run with `cargo bench --bench replicas`.
 
 use std::time::Duration;
@@ -51,5 +55,32 @@ fn replicas(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, replicas);
+fn tensor(c: &mut Criterion) {
+    let mut group = c.benchmark_group("tensor");
+    group.sample_size(10).measurement_time(Duration::from_secs(15)).warm_up_time(Duration::from_secs(1));
+    let s = parse(include_str!("scenarios/tensor-t8-p8.yaml"), "tensor-t8-p8.yaml", "bench", &[])
+        .expect("bench scenario is valid");
+    let probe = baton::simulate(&s).expect("simulates");
+    let r = &probe.report;
+    group.throughput(Throughput::Elements((r.transfers + r.sync_transfers + r.tensor_transfers) as u64));
+    let plan = baton::schedule::build(s.pipeline.schedule, s.shape()).expect("plan");
+    let costs = baton::stage_costs(&s);
+    let (sync, tensor) = (baton::sync_config(&s), baton::tensor_config(&s));
+    group.bench_function("simulate-t8-p8-m64", |b| {
+        b.iter(|| {
+            baton::executor::simulate_parallel(
+                plan.clone(),
+                &costs,
+                baton::topology(&s),
+                Default::default(),
+                sync.as_ref(),
+                tensor.as_ref(),
+            )
+            .expect("simulates")
+        })
+    });
+    group.finish();
+}
+
+criterion_group!(benches, replicas, tensor);
 criterion_main!(benches);
