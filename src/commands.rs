@@ -33,6 +33,9 @@ pub enum CommandError {
     /// The sweep was refused or failed.
     #[error(transparent)]
     Sweep(#[from] SweepError),
+    /// The layout search could not run.
+    #[error(transparent)]
+    Layout(#[from] crate::layout::LayoutError),
     /// The runs could not be compared (exit 2).
     #[error(transparent)]
     Compare(#[from] CompareError),
@@ -111,6 +114,8 @@ impl CommandError {
             CommandError::Plan(PlanError::Apply(_)) => 1,
             CommandError::Sweep(SweepError::Threads(_)) => 1,
             CommandError::Sweep(_) => 2,
+            CommandError::Layout(crate::layout::LayoutError::Threads(_)) => 1,
+            CommandError::Layout(_) => 2,
             CommandError::Output(e) => {
                 if e.is_usage() {
                     2
@@ -423,6 +428,108 @@ pub fn compare(
 /// The scenario format's JSON Schema, pretty-printed.
 pub fn schema() -> String {
     serde_json::to_string_pretty(&baton_scenario::keys::schema()).unwrap_or_default()
+}
+
+/// What `baton layout` was asked.
+pub struct LayoutRequest<'a> {
+    /// The scenario file.
+    pub scenario: &'a Path,
+    /// `--set` overrides.
+    pub sets: &'a [String],
+    /// `--global-batch`.
+    pub global_batch: u64,
+    /// `--micro-batch-sizes`.
+    pub micro_batch_sizes: &'a [u32],
+    /// `--schedules`.
+    pub schedules: &'a [String],
+    /// `--chunks`.
+    pub chunks: &'a [u32],
+    /// `--max-tensor`.
+    pub max_tensor: Option<u32>,
+    /// `--verify`: a number or `all`.
+    pub verify: &'a str,
+    /// `--all`: no pruning.
+    pub all: bool,
+    /// `--top`.
+    pub top: usize,
+    /// `--jobs`.
+    pub jobs: Option<usize>,
+    /// `--max-memory`.
+    pub max_memory: u64,
+}
+
+/// `baton layout`: outputs `--csv`, `--json`.
+pub fn layout(r: &LayoutRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandError> {
+    use crate::layout as ly;
+    use std::io::IsTerminal;
+    let bad = |m: String| CommandError::Layout(ly::LayoutError::Option(m));
+    let schedules = r
+        .schedules
+        .iter()
+        .map(|x| {
+            x.parse::<baton_schedule::ScheduleKind>().map_err(|_| {
+                bad(format!("--schedules: unknown schedule `{x}`; expected fill-drain, 1f1b or interleaved"))
+            })
+        })
+        .collect::<Result<Vec<_>, _>>()?;
+    if r.micro_batch_sizes.contains(&0) || r.chunks.contains(&0) {
+        return Err(bad("--micro-batch-sizes and --chunks take whole numbers of at least 1".into()));
+    }
+    if r.max_tensor == Some(0) {
+        return Err(bad("--max-tensor must be at least 1".into()));
+    }
+    let verify = match r.verify {
+        "all" => ly::Verify::All,
+        n => ly::Verify::Best(
+            n.parse::<usize>()
+                .ok()
+                .filter(|&n| n >= 1)
+                .ok_or_else(|| bad(format!("--verify takes a number of layouts (at least 1) or all, found `{n}`")))?,
+        ),
+    };
+    let doc = baton_scenario::Document::load(r.scenario)?;
+    let request = ly::Request {
+        doc: &doc,
+        sets: r.sets,
+        global_batch: r.global_batch,
+        micro_batch_sizes: r.micro_batch_sizes,
+        schedules: &schedules,
+        chunks: r.chunks,
+        max_tensor: r.max_tensor,
+        verify,
+        all: r.all,
+        jobs: r.jobs,
+        max_memory: r.max_memory,
+    };
+    let bar = indicatif::ProgressBar::with_draw_target(None, indicatif::ProgressDrawTarget::hidden());
+    bar.set_style(
+        indicatif::ProgressStyle::with_template("{spinner} {pos} layouts done, {elapsed}")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_spinner()),
+    );
+    if std::io::stderr().is_terminal() {
+        bar.set_draw_target(indicatif::ProgressDrawTarget::stderr());
+    }
+    let started = std::time::Instant::now();
+    let done = ly::execute(&request, &|| bar.inc(1))?;
+    bar.finish_and_clear();
+    if !done.rows.first().is_some_and(|row| matches!(row.outcome, ly::Outcome::Evaluated(_))) {
+        let reasons: Vec<String> = done.rows.iter().take(10).map(ly::Row::skipped).collect();
+        return Err(CommandError::AllSkipped(format!("no layout could be simulated:\n  {}", reasons.join("\n  "))));
+    }
+    let scenario_path = r.scenario.display().to_string();
+    let mut text = ly::table(&done, r.top, &scenario_path, r.sets);
+    text.push_str(&format!("searched in {:.2} s\n", started.elapsed().as_secs_f64()));
+    outputs.write_with("--csv", |w| {
+        let bytes = ly::csv(&done).map_err(std::io::Error::other)?;
+        w.write_all(&bytes)
+    })?;
+    if outputs.wants("--json") {
+        let mut json = serde_json::to_string_pretty(&ly::records(&done))
+            .map_err(|e| CommandError::Encode { what: "layouts", source: e })?;
+        json.push('\n');
+        outputs.write("--json", json.as_bytes())?;
+    }
+    Ok(Done { text, then: None })
 }
 
 #[cfg(test)]

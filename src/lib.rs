@@ -9,6 +9,7 @@
 
 pub mod commands;
 pub mod compare;
+pub mod layout;
 pub mod planner;
 pub mod sweep;
 
@@ -619,6 +620,148 @@ pub fn memory_estimate_bytes(s: &Scenario, making: Making) -> u64 {
         .saturating_add(n.saturating_mul(per))
         .saturating_add(collective_transfers(s).saturating_mul(COLLECTIVE_BYTES_PER_TRANSFER))
         .saturating_add(if making.chart { charted * CHART_BYTES_PER_ELEMENT } else { 0 })
+}
+
+/// For each pipeline device, the time one transfer of `bytes` takes between
+/// neighbours of its tensor groups' rings when nothing else shares the links
+/// (route latency + bytes at the route's narrowest link), over every replica's
+/// group and every hop: `(fastest, slowest)`.
+fn ring_hop_ns(s: &Scenario, topology: &Topology, bytes: u64) -> Vec<(u64, u64)> {
+    let (p, t, d) = (s.pipeline.stages, s.parallel.tensor.max(1), s.parallel.data.max(1));
+    (0..p)
+        .map(|stage| {
+            let mut lo = u64::MAX;
+            let mut hi = 0;
+            for r in 0..d {
+                let first = (r * p + stage) * t;
+                for k in 0..t {
+                    let (a, b) = (first + k, first + (k + 1) % t);
+                    let slowest = topology.route(a, b).iter().map(|&l| topology.link(l).bytes_per_s).min();
+                    let push = slowest.map_or(0, |bw| {
+                        if bw == LinkSpec::UNLIMITED {
+                            0
+                        } else {
+                            (bytes as u128 * 1_000_000_000).div_ceil(bw as u128) as u64
+                        }
+                    });
+                    let ns = topology.route_latency(a, b).as_ns() + push;
+                    lo = lo.min(ns);
+                    hi = hi.max(ns);
+                }
+            }
+            (if lo == u64::MAX { 0 } else { lo }, hi)
+        })
+        .collect()
+}
+
+/// The uncontended time of a ring all-reduce of `bytes` among a tensor group
+/// of `t`: `2 (t - 1)` rounds of chunks of `ceil(bytes / t)`, each round as
+/// long as its slowest hop (`slowest = true`) or its fastest (a lower bound).
+fn ring_all_reduce_ns(s: &Scenario, topology: &Topology, bytes: u64, stage: usize, slowest: bool) -> u64 {
+    let t = s.parallel.tensor.max(1) as u64;
+    if t <= 1 {
+        return 0;
+    }
+    let hops = ring_hop_ns(s, topology, bytes.div_ceil(t));
+    let (lo, hi) = hops[stage];
+    2 * (t - 1) * if slowest { hi } else { lo }
+}
+
+/// [`tensor_config`] with every all-reduce replaced by its uncontended ring
+/// time on the group's own links (the slowest hop of any replica's group
+/// setting each round): what [`simulate_fast`] plays.
+pub fn tensor_config_fast(s: &Scenario) -> Option<TensorConfig> {
+    let topology = topology(s);
+    let p = s.pipeline.stages as usize;
+    tensor_config(s).map(|mut c| {
+        for (k, kinds) in c.segments.iter_mut().enumerate() {
+            for segs in kinds.iter_mut() {
+                let merged: Vec<Segment> = segs
+                    .iter()
+                    .map(|x| match *x {
+                        Segment::AllReduce(bytes) => {
+                            Segment::Compute(SimDuration(ring_all_reduce_ns(s, &topology, bytes, k % p, true)))
+                        }
+                        other => other,
+                    })
+                    .collect();
+                *segs = merged;
+            }
+        }
+        c
+    })
+}
+
+/// A lower bound on the step time of `s` (any schedule, any contention):
+/// each pipeline device must run `m` forwards and backwards of its pieces,
+/// each at least its compute plus its tensor all-reduces' uncontended ring
+/// time at the group's fastest hop (the ring's rounds depend on each other,
+/// and sharing links only slows a transfer). With one chunk per device,
+/// device `k` cannot start before the first micro-batch's forward has gone
+/// through the devices before it, nor finish the step before the last
+/// backward has come back through them: `max_k (sum_{j<k} F_j + m (F_k +
+/// B_k) + sum_{j<k} B_j)`. Gradient synchronisation, transfers and waits
+/// only add to it. With compute jitter every time may shrink by the jitter,
+/// and the bound with it.
+pub fn step_lower_bound_ns(s: &Scenario) -> u64 {
+    let topology = topology(s);
+    let p = s.pipeline.stages as usize;
+    let m = s.pipeline.micro_batches as u128;
+    let (mut f, mut b) = (vec![0u128; p], vec![0u128; p]);
+    let costs = s.pieces();
+    for k in 0..s.pipeline.split.len() {
+        let (segments, _) = piece_segments(s, k);
+        let pass = |segs: &[Segment]| -> u128 {
+            segs.iter()
+                .map(|x| match *x {
+                    Segment::Compute(d) => d.as_ns() as u128,
+                    Segment::AllReduce(bytes) => ring_all_reduce_ns(s, &topology, bytes, k % p, false) as u128,
+                })
+                .sum()
+        };
+        let (pf, pb) = if s.parallel.tensor > 1 {
+            (pass(&segments[0]), pass(&segments[1]))
+        } else {
+            (costs[k].forward_ns as u128, costs[k].backward_ns as u128)
+        };
+        f[k % p] += pf;
+        b[k % p] += pb;
+    }
+    let chained = s.pipeline.chunks == 1;
+    let bound = (0..p)
+        .map(|k| {
+            let before: u128 = if chained { (0..k).map(|j| f[j] + b[j]).sum() } else { 0 };
+            before + m * (f[k] + b[k])
+        })
+        .max()
+        .unwrap_or(0);
+    let bound = bound as f64 * (1.0 - s.cluster.jitter);
+    bound.min(u64::MAX as f64) as u64
+}
+
+/// [`simulate`] with the tensor groups' all-reduces in closed form (their
+/// uncontended ring time, [`tensor_config_fast`]) instead of played transfer
+/// by transfer: what `baton layout` ranks large searches with. Exact when
+/// `parallel.tensor` is 1; otherwise it leaves out the contention between
+/// the all-reduces and other traffic.
+pub fn simulate_fast(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
+    if s.parallel.tensor <= 1 {
+        return simulate(s);
+    }
+    let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
+    let variation = RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends };
+    let sync = sync_config(s);
+    let tensor = tensor_config_fast(s);
+    let trace = baton_executor::simulate_parallel(
+        plan,
+        &stage_costs(s),
+        topology(s),
+        variation,
+        sync.as_ref(),
+        tensor.as_ref(),
+    )?;
+    let report = baton_report::build(&trace, &labels(s));
+    Ok(SimulatedStep { trace, report })
 }
 
 /// Simulates one training step of `s` and reports on it.

@@ -75,6 +75,18 @@ enum Command {
         baton compare scenarios/replicas.yaml --set gradients.overlap=false\n\n\
         With one scenario, --set makes the variant it is compared with; with several, --set applies to all.", outputs_note!()))]
     Compare(CompareArgs),
+    /// Find the best layout of the model on the cluster's devices: replicas,
+    /// stages, tensor groups, micro-batch size and schedule, each split
+    /// within memory and simulated.
+    #[command(after_help = concat!("Examples:\n  \
+        baton layout scenarios/layout.yaml --global-batch 256\n  \
+        baton layout scenarios/layout.yaml --global-batch 256 --micro-batch-sizes 1,2 --csv layouts.csv\n  \
+        baton layout scenarios/layout.yaml --global-batch 256 --schedules 1f1b,interleaved --chunks 1,2 --top 10\n\n\
+        Every layout d x p x t = the cluster's devices (t dividing the heads, at most --max-tensor) with every\n\
+        micro-batch size b such that d x b divides the global batch is a row: evaluated, skipped with its reason,\n\
+        or pruned when a lower bound on its step shows it cannot beat the best simulated in full.\n\
+        Exit status: 0 done, 2 invalid scenario or usage, or no layout could be simulated, 1 anything else.", outputs_note!()))]
+    Layout(LayoutArgs),
     /// Print a JSON Schema (draft 2020-12) of the scenario format, for editors
     /// that complete and check YAML files.
     #[command(after_help = "Examples:\n  \
@@ -83,6 +95,55 @@ enum Command {
         Point an editor at it with a first line in the scenario file:\n  \
         # yaml-language-server: $schema=scenario.schema.json")]
     Schema,
+}
+
+#[derive(Args)]
+struct LayoutArgs {
+    /// The scenario file (YAML): the model and the cluster, e.g. scenarios/layout.yaml.
+    scenario: PathBuf,
+    /// Samples per step over all replicas, B (each layout runs B / (d x b) micro-batches per
+    /// replica), e.g. --global-batch 256.
+    #[arg(long, value_name = "B")]
+    global_batch: u64,
+    /// Micro-batch sizes b to try, e.g. --micro-batch-sizes 1,2,4.
+    #[arg(long, value_name = "B1,B2,...", value_delimiter = ',', default_value = "1")]
+    micro_batch_sizes: Vec<u32>,
+    /// Schedules to try, e.g. --schedules 1f1b,interleaved.
+    #[arg(long, value_name = "S1,S2,...", value_delimiter = ',', default_value = "1f1b")]
+    schedules: Vec<String>,
+    /// Chunks per device to try (more than 1 only with interleaved), e.g. --chunks 1,2.
+    #[arg(long, value_name = "V1,V2,...", value_delimiter = ',', default_value = "1")]
+    chunks: Vec<u32>,
+    /// Largest tensor group (default: the devices per node, or all devices on a flat cluster),
+    /// e.g. --max-tensor 8.
+    #[arg(long, value_name = "T")]
+    max_tensor: Option<u32>,
+    /// Simulate the best N layouts in full at the end (or `all`: every evaluated layout in
+    /// full, no fast estimates), e.g. --verify 10.
+    #[arg(long, value_name = "N|all", default_value = "5")]
+    verify: String,
+    /// Evaluate every layout, pruning none by its lower bound, e.g. --all.
+    #[arg(long)]
+    all: bool,
+    /// Rows of the ranked table to print, e.g. --top 10.
+    #[arg(long, value_name = "N", default_value_t = 20)]
+    top: usize,
+    /// Write every enumerated layout as CSV, e.g. --csv layouts.csv.
+    #[arg(long, value_name = "PATH|-")]
+    csv: Option<PathBuf>,
+    /// Write every enumerated layout as a JSON array, or to standard output with `-`, e.g. --json layouts.json.
+    #[arg(long, value_name = "PATH|-")]
+    json: Option<PathBuf>,
+    /// Threads to simulate with (default: all cores), e.g. --jobs 2.
+    #[arg(long, value_name = "N")]
+    jobs: Option<usize>,
+    /// Override a value of the scenario before the layouts are applied, e.g. --set cluster.device.memory=40GiB.
+    #[arg(long = "set", value_name = "KEY=VALUE")]
+    sets: Vec<String>,
+    /// Skip (with the estimate) a layout whose simulation would need more than SIZE
+    /// (default 16GiB), e.g. --max-memory 4GiB.
+    #[arg(long, value_name = "SIZE", default_value = "16GiB", value_parser = parse_size)]
+    max_memory: u64,
 }
 
 #[derive(Args)]
@@ -345,6 +406,23 @@ fn main() -> ExitCode {
                 finish(commands::sweep(&r, &mut o), o)
             })
         }
+        Command::Layout(a) => outputs(&[("--csv", "CSV", &a.csv), json(&a.json, "JSON")]).and_then(|mut o| {
+            let r = commands::LayoutRequest {
+                scenario: &a.scenario,
+                sets: &a.sets,
+                global_batch: a.global_batch,
+                micro_batch_sizes: &a.micro_batch_sizes,
+                schedules: &a.schedules,
+                chunks: &a.chunks,
+                max_tensor: a.max_tensor,
+                verify: &a.verify,
+                all: a.all,
+                top: a.top,
+                jobs: a.jobs,
+                max_memory: a.max_memory,
+            };
+            finish(commands::layout(&r, &mut o), o)
+        }),
         Command::Merge(a) => outputs(&[("--csv", "CSV", &a.csv), json(&a.json, "JSON")])
             .and_then(|mut o| finish(commands::merge(&a.parts, &a.rank_by, a.top, &mut o), o)),
         Command::Schema => {

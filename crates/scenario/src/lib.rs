@@ -522,14 +522,22 @@ impl Document {
     /// The scenario with `overrides` applied, validated; messages name each
     /// override as the user typed it.
     pub fn scenario_with(&self, overrides: &[Override]) -> Result<Scenario, ScenarioError> {
+        let written = written_micro_batch_size(&self.tree);
         if overrides.is_empty() {
-            return from_tree(&self.tree, &self.file, &self.default_title, &self.base_dir, Some(&self.profiles));
+            return from_tree(
+                &self.tree,
+                &self.file,
+                &self.default_title,
+                &self.base_dir,
+                Some(&self.profiles),
+                written,
+            );
         }
         let mut tree = self.tree.clone();
         for o in overrides {
             node::apply_override_as(&mut tree, &o.assignment, &o.typed)?;
         }
-        from_tree(&tree, &self.file, &self.default_title, &self.base_dir, Some(&self.profiles))
+        from_tree(&tree, &self.file, &self.default_title, &self.base_dir, Some(&self.profiles), written)
     }
 }
 
@@ -804,12 +812,45 @@ impl<'a> Section<'a> {
     }
 }
 
+/// `pipeline.micro_batch_size` as the file writes it (1 when it does not, or
+/// writes something the reader will refuse anyway): the size a model's
+/// explicit layer costs are for.
+fn written_micro_batch_size(tree: &Node) -> u32 {
+    let get = |n: &Node, key: &str| match &n.value {
+        Value::Map(e) => e.iter().find(|(k, _, _)| k == key).map(|(_, _, v)| v.clone()),
+        _ => None,
+    };
+    get(tree, "pipeline")
+        .and_then(|p| get(&p, "micro_batch_size"))
+        .and_then(|v| match v.value {
+            Value::Int(i) if i >= 1 && i <= u32::MAX as i128 => Some(i as u32),
+            _ => None,
+        })
+        .unwrap_or(1)
+}
+
+/// Layers given for micro-batches of `from` samples, scaled to `to`: times,
+/// activations, stashes and all-reduce sizes in proportion, rounded to the
+/// nearest nanosecond or byte (an idealisation: real costs do not scale
+/// exactly linearly with the micro-batch).
+fn scale_layers(layers: &mut [LayerCost], from: u32, to: u32) {
+    let scale = |x: u64| ((x as u128 * to as u128 + from as u128 / 2) / from as u128).min(u64::MAX as u128) as u64;
+    for l in layers {
+        l.forward_ns = scale(l.forward_ns);
+        l.backward_ns = scale(l.backward_ns);
+        l.activation_bytes = scale(l.activation_bytes);
+        l.stash_bytes = scale(l.stash_bytes);
+        l.tensor_bytes = scale(l.tensor_bytes);
+    }
+}
+
 fn from_tree(
     doc: &Node,
     file: &str,
     default_title: &str,
     base_dir: &Path,
     profiles: Option<&ProfileCache>,
+    written_micro_batch_size: u32,
 ) -> Result<Scenario, ScenarioError> {
     let cx = Reading { file, base_dir, profiles };
     let root = Field { cx: &cx, path: "", node: doc, def: None };
@@ -823,7 +864,12 @@ fn from_tree(
         .opt("pipeline", |p| p.map(keys::PIPELINE)?.opt("micro_batch_size", |a| a.whole().map(|v| v as u32)))?
         .flatten()
         .unwrap_or(1);
-    let (source, layers) = top.req("model", |m| read_model(m, &cluster, micro_batch_size))?;
+    let (source, mut layers) = top.req("model", |m| read_model(m, &cluster, micro_batch_size))?;
+    // Layers given by their costs are for the micro-batch size the file
+    // writes; another size (an override) scales them.
+    if !matches!(source, ModelSource::Transformer(_)) && micro_batch_size != written_micro_batch_size {
+        scale_layers(&mut layers, written_micro_batch_size.max(1), micro_batch_size);
+    }
     let training = top.opt("training", read_training)?.unwrap_or_default();
     let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster))?;
     let parallel = top.opt("parallel", |p| read_parallel(p, &cluster, pipeline.stages, &source))?.unwrap_or_default();
