@@ -458,7 +458,7 @@ pub struct LayoutRequest<'a> {
     pub max_memory: u64,
 }
 
-/// `baton layout`: outputs `--csv`, `--json`.
+/// `baton layout`: outputs `--csv`, `--json`, `--svg`.
 pub fn layout(r: &LayoutRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandError> {
     use crate::layout as ly;
     use std::io::IsTerminal;
@@ -523,6 +523,11 @@ pub fn layout(r: &LayoutRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comm
         let bytes = ly::csv(&done).map_err(std::io::Error::other)?;
         w.write_all(&bytes)
     })?;
+    if outputs.wants("--svg") {
+        let title = doc.scenario(r.sets).map(|s| s.title).unwrap_or_default();
+        let svg = ly::chart(&done, &title).map_err(render("draw the chart"))?;
+        outputs.write("--svg", svg.as_bytes())?;
+    }
     if outputs.wants("--json") {
         let mut json = serde_json::to_string_pretty(&ly::records(&done))
             .map_err(|e| CommandError::Encode { what: "layouts", source: e })?;

@@ -679,3 +679,39 @@ pub fn csv(f: &Finished) -> Result<Vec<u8>, csv::Error> {
     }
     w.into_inner().map_err(|e| csv::Error::from(e.into_error()))
 }
+
+/// The chart `--svg` draws: global samples per second of every evaluated
+/// layout, best first, fitting layouts and those over memory in two series.
+pub fn chart(f: &Finished, title: &str) -> Result<String, baton_report::ReportError> {
+    use baton_report::svg::line::{self, LineChart, LineOptions, Series};
+    let rows: Vec<(&Row, &Figures)> = f.rows.iter().filter_map(|r| r.figures().map(|x| (r, x))).collect();
+    let categories = (1..=rows.len()).map(|k| k.to_string()).collect();
+    let name = |r: &Row, x: &Figures| {
+        let l = &r.layout;
+        let chunks = if l.chunks > 1 { format!(" v{}", l.chunks) } else { String::new() };
+        let schedule =
+            if l.schedule == ScheduleKind::OneFOneB { String::new() } else { format!(" {}", l.schedule.name()) };
+        let estimate = if x.exact { "" } else { " (est.)" };
+        format!("d{} p{} t{} b{}{schedule}{chunks}{estimate}", l.data, l.pipeline, l.tensor, l.micro_batch_size)
+    };
+    let series = |fits: bool, label: &str| Series {
+        name: label.to_string(),
+        values: rows.iter().map(|(_, x)| (x.fits == fits).then_some(x.samples_per_s)).collect(),
+        flagged: rows.iter().map(|(_, x)| !x.fits && !fits).collect(),
+        labels: rows.iter().map(|(r, x)| (x.fits == fits).then(|| name(r, x))).collect(),
+    };
+    let chart = LineChart {
+        title: format!("{title}: layouts by throughput"),
+        x_label: "rank (each point: d replicas, p stages, t devices per stage, b samples per micro-batch)".into(),
+        y_label: "samples/s".into(),
+        categories,
+        series: vec![series(true, "fits in memory"), series(false, "over memory capacity")],
+        flag_meaning: "over memory capacity".into(),
+        note: format!(
+            "{} layouts evaluated of {}; the rest were skipped or pruned (see the CSV).",
+            rows.len(),
+            f.rows.len()
+        ),
+    };
+    line::render(&chart, &LineOptions::default())
+}

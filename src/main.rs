@@ -134,6 +134,9 @@ struct LayoutArgs {
     /// Write every enumerated layout as a JSON array, or to standard output with `-`, e.g. --json layouts.json.
     #[arg(long, value_name = "PATH|-")]
     json: Option<PathBuf>,
+    /// Draw samples/s of every evaluated layout, best first, fitting or over memory, e.g. --svg layouts.svg.
+    #[arg(long, value_name = "PATH|-")]
+    svg: Option<PathBuf>,
     /// Threads to simulate with (default: all cores), e.g. --jobs 2.
     #[arg(long, value_name = "N")]
     jobs: Option<usize>,
@@ -406,23 +409,25 @@ fn main() -> ExitCode {
                 finish(commands::sweep(&r, &mut o), o)
             })
         }
-        Command::Layout(a) => outputs(&[("--csv", "CSV", &a.csv), json(&a.json, "JSON")]).and_then(|mut o| {
-            let r = commands::LayoutRequest {
-                scenario: &a.scenario,
-                sets: &a.sets,
-                global_batch: a.global_batch,
-                micro_batch_sizes: &a.micro_batch_sizes,
-                schedules: &a.schedules,
-                chunks: &a.chunks,
-                max_tensor: a.max_tensor,
-                verify: &a.verify,
-                all: a.all,
-                top: a.top,
-                jobs: a.jobs,
-                max_memory: a.max_memory,
-            };
-            finish(commands::layout(&r, &mut o), o)
-        }),
+        Command::Layout(a) => {
+            outputs(&[("--csv", "CSV", &a.csv), svg(&a.svg), json(&a.json, "JSON")]).and_then(|mut o| {
+                let r = commands::LayoutRequest {
+                    scenario: &a.scenario,
+                    sets: &a.sets,
+                    global_batch: a.global_batch,
+                    micro_batch_sizes: &a.micro_batch_sizes,
+                    schedules: &a.schedules,
+                    chunks: &a.chunks,
+                    max_tensor: a.max_tensor,
+                    verify: &a.verify,
+                    all: a.all,
+                    top: a.top,
+                    jobs: a.jobs,
+                    max_memory: a.max_memory,
+                };
+                finish(commands::layout(&r, &mut o), o)
+            })
+        }
         Command::Merge(a) => outputs(&[("--csv", "CSV", &a.csv), json(&a.json, "JSON")])
             .and_then(|mut o| finish(commands::merge(&a.parts, &a.rank_by, a.top, &mut o), o)),
         Command::Schema => {
