@@ -382,6 +382,21 @@ pub fn merge(parts: &[PathBuf], rank_by: &str, top: usize, outputs: &mut Outputs
             .map_err(|e| CommandError::Read { path: p.display().to_string(), message: e.to_string() })?;
         texts.push((p.display().to_string(), text));
     }
+    if texts.first().is_some_and(|(_, t)| crate::layout::is_layout_csv(t)) {
+        let records = crate::layout::merge(&texts)
+            .map_err(|m| CommandError::Layout(crate::layout::LayoutError::Option(format!("merge: {m}"))))?;
+        outputs.write_with("--csv", |w| {
+            let bytes = crate::layout::csv(&records).map_err(std::io::Error::other)?;
+            w.write_all(&bytes)
+        })?;
+        if outputs.wants("--json") {
+            let mut json = serde_json::to_string_pretty(&records)
+                .map_err(|e| CommandError::Encode { what: "layouts", source: e })?;
+            json.push('\n');
+            outputs.write("--json", json.as_bytes())?;
+        }
+        return Ok(Done { text: crate::layout::merged_table(&records, top), then: None });
+    }
     let (keys, points, tag) = sw::merge(&texts, by)?;
     outputs.write_with("--csv", |w| sw::write_csv(&keys, &points, &tag, w).map_err(std::io::Error::other))?;
     outputs.write("--json", sw::to_json(&keys, &points, &tag).as_bytes())?;
@@ -456,6 +471,8 @@ pub struct LayoutRequest<'a> {
     pub jobs: Option<usize>,
     /// `--max-memory`.
     pub max_memory: u64,
+    /// `--shard I/N`.
+    pub shard: Option<&'a str>,
 }
 
 /// `baton layout`: outputs `--csv`, `--json`, `--svg`.
@@ -487,8 +504,12 @@ pub fn layout(r: &LayoutRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comm
                 .ok_or_else(|| bad(format!("--verify takes a number of layouts (at least 1) or all, found `{n}`")))?,
         ),
     };
+    let shard = r.shard.map(sw::parse_shard).transpose()?;
     let doc = baton_scenario::Document::load(r.scenario)?;
+    let scenario_text = std::fs::read(r.scenario)
+        .map_err(|e| CommandError::Read { path: r.scenario.display().to_string(), message: e.to_string() })?;
     let request = ly::Request {
+        shard,
         doc: &doc,
         sets: r.sets,
         global_batch: r.global_batch,
@@ -517,10 +538,15 @@ pub fn layout(r: &LayoutRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comm
         return Err(CommandError::AllSkipped(format!("no layout could be simulated:\n  {}", reasons.join("\n  "))));
     }
     let scenario_path = r.scenario.display().to_string();
-    let mut text = ly::table(&done, r.top, &scenario_path, r.sets);
+    let mut text = String::new();
+    if let Some((i, n)) = shard {
+        text.push_str(&format!("shard {i}/{n}: {} of the {} layouts\n", done.rows.len(), done.enumerated));
+    }
+    text.push_str(&ly::table(&done, r.top, &scenario_path, r.sets));
     text.push_str(&format!("searched in {:.2} s\n", started.elapsed().as_secs_f64()));
+    let records = ly::records(&done, &ly::grid_id(&scenario_text, &request), shard.unwrap_or((1, 1)));
     outputs.write_with("--csv", |w| {
-        let bytes = ly::csv(&done).map_err(std::io::Error::other)?;
+        let bytes = ly::csv(&records).map_err(std::io::Error::other)?;
         w.write_all(&bytes)
     })?;
     if outputs.wants("--svg") {
@@ -529,8 +555,8 @@ pub fn layout(r: &LayoutRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comm
         outputs.write("--svg", svg.as_bytes())?;
     }
     if outputs.wants("--json") {
-        let mut json = serde_json::to_string_pretty(&ly::records(&done))
-            .map_err(|e| CommandError::Encode { what: "layouts", source: e })?;
+        let mut json =
+            serde_json::to_string_pretty(&records).map_err(|e| CommandError::Encode { what: "layouts", source: e })?;
         json.push('\n');
         outputs.write("--json", json.as_bytes())?;
     }

@@ -23,7 +23,7 @@ use baton_scenario::{Document, ModelSource, Override, Scenario, ScenarioError};
 use baton_schedule::{check_shape, ScheduleKind, Shape};
 use baton_split::Found;
 use rayon::prelude::*;
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use thiserror::Error;
 
 /// Layouts evaluated together between two updates of the best step: fixed,
@@ -174,6 +174,33 @@ pub struct Request<'a> {
     pub jobs: Option<usize>,
     /// A layout whose estimated memory is over this is skipped.
     pub max_memory: u64,
+    /// Search only the I-th of N slices of the layouts (every N-th, from
+    /// the I-th), for `baton merge` to combine.
+    pub shard: Option<(usize, usize)>,
+}
+
+/// The fingerprint of a layout search: 16 hex digits of SHA-256 over the
+/// scenario's bytes, the overrides and every option that changes the rows.
+pub fn grid_id(scenario_text: &[u8], r: &Request<'_>) -> String {
+    use sha2::{Digest, Sha256};
+    let mut h = Sha256::new();
+    h.update(scenario_text);
+    for s in r.sets {
+        h.update(b"\0set\0");
+        h.update(s.as_bytes());
+    }
+    let options = format!(
+        "\0layout\0{} {:?} {:?} {:?} {:?} {:?} {}",
+        r.global_batch,
+        r.micro_batch_sizes,
+        r.schedules.iter().map(|k| k.name()).collect::<Vec<_>>(),
+        r.chunks,
+        r.max_tensor,
+        r.verify,
+        r.all
+    );
+    h.update(options.as_bytes());
+    h.finalize().iter().take(8).map(|b| format!("{b:02x}")).collect()
 }
 
 /// Why a layout search could not run.
@@ -200,6 +227,8 @@ pub struct Finished {
     pub full_simulations: usize,
     /// Fast evaluations run.
     pub fast_evaluations: usize,
+    /// Layouts enumerated in all (over every shard).
+    pub enumerated: usize,
 }
 
 fn divisors(n: u32) -> Vec<u32> {
@@ -361,6 +390,18 @@ pub fn execute(r: &Request<'_>, tick: &(dyn Fn() + Sync)) -> Result<Finished, La
             base.cluster.devices, r.global_batch, r.micro_batch_sizes
         )));
     }
+    let enumerated = layouts.len();
+    let (shard, of) = r.shard.unwrap_or((1, 1));
+    if shard == 0 || of == 0 || shard > of {
+        return Err(LayoutError::Option(format!("--shard {shard}/{of}: write I/N with 1 <= I <= N")));
+    }
+    let mine: Vec<(usize, (Layout, Option<String>))> =
+        layouts.into_iter().enumerate().filter(|(i, _)| i % of == shard - 1).collect();
+    if mine.is_empty() {
+        return Err(LayoutError::Option(format!(
+            "shard {shard}/{of} holds no layout: there are only {enumerated}; use fewer shards"
+        )));
+    }
     let pool = rayon::ThreadPoolBuilder::new()
         .num_threads(r.jobs.unwrap_or(0))
         .build()
@@ -368,25 +409,25 @@ pub fn execute(r: &Request<'_>, tick: &(dyn Fn() + Sync)) -> Result<Finished, La
     let splits = Mutex::new(HashMap::new());
     // Prepare every layout (split search, bound), in parallel, collected in
     // enumeration order.
-    let prepared: Vec<(Layout, Result<Ready, String>)> = pool.install(|| {
-        layouts
-            .into_par_iter()
-            .map(|(layout, problem)| {
+    let prepared: Vec<(usize, Layout, Result<Ready, String>)> = pool.install(|| {
+        mine.into_par_iter()
+            .map(|(index, (layout, problem))| {
                 let ready = match problem {
                     Some(why) => Err(why),
                     None => prepare(r, &layout, &splits),
                 };
-                (layout, ready)
+                (index, layout, ready)
             })
             .collect()
     });
+    // Rows are kept in shard order; `slot` finds a layout's row.
     let mut rows: Vec<Row> = Vec::with_capacity(prepared.len());
     let mut ready: Vec<(usize, Ready)> = Vec::new();
-    for (index, (layout, result)) in prepared.into_iter().enumerate() {
+    for (slot, (index, layout, result)) in prepared.into_iter().enumerate() {
         match result {
             Ok(x) => {
                 rows.push(Row { index, layout, bound_ns: Some(x.bound_ns), outcome: Outcome::Skipped(String::new()) });
-                ready.push((index, x));
+                ready.push((slot, x));
             }
             Err(why) => {
                 tick();
@@ -467,7 +508,9 @@ pub fn execute(r: &Request<'_>, tick: &(dyn Fn() + Sync)) -> Result<Finished, La
             };
         }
     }
-    // Verify the best estimates in full until the best N are exact.
+    // Verify the best estimates in full until the best N are exact (rows
+    // are re-sorted: find scenarios by enumeration index).
+    let slots: Vec<usize> = rows.iter().map(|r| r.index).collect();
     let verify = match r.verify {
         Verify::Best(n) => n.max(1),
         Verify::All => usize::MAX,
@@ -485,7 +528,7 @@ pub fn execute(r: &Request<'_>, tick: &(dyn Fn() + Sync)) -> Result<Finished, La
         if pending.is_empty() {
             break;
         }
-        let by_index: HashMap<usize, &Scenario> = ready.iter().map(|(i, x)| (*i, &x.scenario)).collect();
+        let by_index: HashMap<usize, &Scenario> = ready.iter().map(|(slot, x)| (slots[*slot], &x.scenario)).collect();
         let redone: Vec<(usize, Result<Figures, String>)> =
             pool.install(|| pending.par_iter().map(|&k| (k, evaluate(by_index[&rows[k].index], true))).collect());
         full_runs += redone.len();
@@ -497,7 +540,7 @@ pub fn execute(r: &Request<'_>, tick: &(dyn Fn() + Sync)) -> Result<Finished, La
         }
     }
     rows.sort_by_key(rank_key);
-    Ok(Finished { rows, full_simulations: full_runs, fast_evaluations: fast_runs })
+    Ok(Finished { rows, full_simulations: full_runs, fast_evaluations: fast_runs, enumerated })
 }
 
 /// The command that reproduces `row` with `baton run`.
@@ -603,7 +646,7 @@ pub fn table(f: &Finished, limit: usize, scenario: &str, sets: &[String]) -> Str
 }
 
 /// One row of the CSV and JSON outputs (column names pinned).
-#[derive(Serialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Record {
     /// Replicas.
     pub data: u32,
@@ -616,7 +659,7 @@ pub struct Record {
     /// Micro-batches per replica.
     pub micro_batches: u32,
     /// The schedule.
-    pub schedule: &'static str,
+    pub schedule: String,
     /// Chunks per device.
     pub chunks: u32,
     /// Step time in milliseconds (shortest round-trip decimal).
@@ -639,10 +682,18 @@ pub struct Record {
     pub sync_exposed_ms: Option<f64>,
     /// Its lower bound on the step time, in milliseconds.
     pub bound_ms: Option<f64>,
+    /// Its place in the enumeration.
+    pub index: usize,
+    /// The search's fingerprint ([`grid_id`]).
+    pub grid: String,
+    /// Layouts enumerated in all.
+    pub grid_points: usize,
+    /// `I/N`: the shard that evaluated it.
+    pub shard: String,
 }
 
-/// The rows as records.
-pub fn records(f: &Finished) -> Vec<Record> {
+/// The rows as records, tagged with the search's fingerprint and shard.
+pub fn records(f: &Finished, grid: &str, shard: (usize, usize)) -> Vec<Record> {
     f.rows
         .iter()
         .map(|row| {
@@ -654,7 +705,7 @@ pub fn records(f: &Finished) -> Vec<Record> {
                 tensor: l.tensor,
                 micro_batch_size: l.micro_batch_size,
                 micro_batches: l.micro_batches,
-                schedule: l.schedule.name(),
+                schedule: l.schedule.name().to_string(),
                 chunks: l.chunks,
                 step_time_ms: x.map(|x| x.step_ns as f64 / 1e6),
                 samples_per_s: x.map(|x| x.samples_per_s),
@@ -666,18 +717,125 @@ pub fn records(f: &Finished) -> Vec<Record> {
                 exact: x.map(|x| x.exact),
                 sync_exposed_ms: x.map(|x| x.sync_exposed_ns as f64 / 1e6),
                 bound_ms: row.bound_ns.map(|b| b as f64 / 1e6),
+                index: row.index,
+                grid: grid.to_string(),
+                grid_points: f.enumerated,
+                shard: format!("{}/{}", shard.0, shard.1),
             }
         })
         .collect()
 }
 
-/// The CSV of every row.
-pub fn csv(f: &Finished) -> Result<Vec<u8>, csv::Error> {
+/// The CSV of `records`.
+pub fn csv(records: &[Record]) -> Result<Vec<u8>, csv::Error> {
     let mut w = csv::Writer::from_writer(Vec::new());
-    for rec in records(f) {
+    for rec in records {
         w.serialize(rec)?;
     }
     w.into_inner().map_err(|e| csv::Error::from(e.into_error()))
+}
+
+/// Whether a CSV header is a layout search's (not a sweep's).
+pub fn is_layout_csv(text: &str) -> bool {
+    text.lines().next().is_some_and(|h| h.starts_with("data,pipeline,tensor,micro_batch_size,"))
+}
+
+/// Combines the CSV parts of a sharded search (`(file, text)` each) into
+/// one ranked list: refuses parts of another search, repeated or missing
+/// shards and parts without exactly their shard's layouts.
+pub fn merge(parts: &[(String, String)]) -> Result<Vec<Record>, String> {
+    let mut all: Vec<Record> = Vec::new();
+    let mut first: Option<(String, usize, usize, String)> = None;
+    let mut seen: std::collections::BTreeMap<usize, String> = Default::default();
+    for (file, text) in parts {
+        let mut rdr = csv::Reader::from_reader(text.as_bytes());
+        let rows: Vec<Record> = rdr
+            .deserialize()
+            .collect::<Result<_, _>>()
+            .map_err(|e| format!("{file}: not a layout search's CSV: {e}"))?;
+        let Some(head) = rows.first() else { return Err(format!("{file}: holds no layout")) };
+        let (i, n) = head
+            .shard
+            .split_once('/')
+            .and_then(|(i, n)| Some((i.parse::<usize>().ok()?, n.parse::<usize>().ok()?)))
+            .ok_or_else(|| format!("{file}: shard `{}` is not I/N", head.shard))?;
+        match &first {
+            None => first = Some((head.grid.clone(), head.grid_points, n, file.clone())),
+            Some((grid, points, of, f0)) => {
+                if *grid != head.grid || *points != head.grid_points {
+                    return Err(format!("{file}: is a part of another layout search than {f0}"));
+                }
+                if *of != n {
+                    return Err(format!("{file}: is shard {i}/{n} but {f0} is one of {of} shards"));
+                }
+            }
+        }
+        if let Some(other) = seen.insert(i, file.clone()) {
+            return Err(format!("{file}: is shard {i}/{n}, which {other} already is"));
+        }
+        let mut got: Vec<usize> = rows.iter().map(|r| r.index).collect();
+        got.sort_unstable();
+        let want: Vec<usize> = (0..head.grid_points).filter(|k| k % n == i - 1).collect();
+        if got != want {
+            return Err(format!("{file}: does not hold exactly the layouts of shard {i}/{n}"));
+        }
+        all.extend(rows);
+    }
+    let Some((_, _, of, _)) = first else { return Err("no part to merge".into()) };
+    let missing: Vec<String> = (1..=of).filter(|i| !seen.contains_key(i)).map(|i| format!("{i}/{of}")).collect();
+    if !missing.is_empty() {
+        return Err(format!(
+            "shard {} is missing (the parts must be all {of} shards of one search)",
+            missing.join(", ")
+        ));
+    }
+    let key = |r: &Record| match (r.step_time_ms, r.fits) {
+        (Some(ms), Some(fits)) => (0u8, u8::from(!fits), ms, r.index),
+        _ => (1, 0, 0.0, r.index),
+    };
+    all.sort_by(|a, b| key(a).partial_cmp(&key(b)).unwrap_or(std::cmp::Ordering::Equal));
+    for r in &mut all {
+        r.shard = "1/1".into();
+    }
+    Ok(all)
+}
+
+/// The merged table: the best `limit` evaluated layouts.
+pub fn merged_table(records: &[Record], limit: usize) -> String {
+    let mut s = String::new();
+    let evaluated: Vec<&Record> = records.iter().filter(|r| r.step_time_ms.is_some()).collect();
+    let _ = writeln!(
+        s,
+        "{} layouts merged: {} evaluated, {} skipped or pruned",
+        records.len(),
+        evaluated.len(),
+        records.len() - evaluated.len()
+    );
+    let _ = writeln!(
+        s,
+        "{:>5}  {:>4} {:>4} {:>4} {:>4} {:>6}  {:<11} {:>6}  {:>14}  {:>11}  fits  split",
+        "rank", "d", "p", "t", "b", "m", "schedule", "chunks", "step time (ms)", "samples/s"
+    );
+    for (k, r) in evaluated.iter().take(limit).enumerate() {
+        let _ = writeln!(
+            s,
+            "{:>5}  {:>4} {:>4} {:>4} {:>4} {:>6}  {:<11} {:>6}  {:>14}  {:>11.2}  {:<4}  {}{}",
+            if k == 0 { "best".to_string() } else { (k + 1).to_string() },
+            r.data,
+            r.pipeline,
+            r.tensor,
+            r.micro_batch_size,
+            r.micro_batches,
+            r.schedule,
+            r.chunks,
+            r.step_time_ms.unwrap_or(0.0),
+            r.samples_per_s.unwrap_or(0.0),
+            if r.fits == Some(true) { "yes" } else { "no" },
+            r.split,
+            if r.exact == Some(false) { "  (estimate)" } else { "" }
+        );
+    }
+    s
 }
 
 /// The chart `--svg` draws: global samples per second of every evaluated

@@ -81,7 +81,8 @@ enum Command {
     #[command(after_help = concat!("Examples:\n  \
         baton layout scenarios/layout.yaml --global-batch 256\n  \
         baton layout scenarios/layout.yaml --global-batch 256 --micro-batch-sizes 1,2 --csv layouts.csv\n  \
-        baton layout scenarios/layout.yaml --global-batch 256 --schedules 1f1b,interleaved --chunks 1,2 --top 10\n\n\
+        baton layout scenarios/layout.yaml --global-batch 256 --schedules 1f1b,interleaved --chunks 1,2 --top 10\n  \
+        baton layout scenarios/layout.yaml --global-batch 256 --shard 1/2 --csv layout-part1.csv\n\n\
         Every layout d x p x t = the cluster's devices (t dividing the heads, at most --max-tensor) with every\n\
         micro-batch size b such that d x b divides the global batch is a row: evaluated, skipped with its reason,\n\
         or pruned when a lower bound on its step shows it cannot beat the best simulated in full.\n\
@@ -147,6 +148,9 @@ struct LayoutArgs {
     /// (default 16GiB), e.g. --max-memory 4GiB.
     #[arg(long, value_name = "SIZE", default_value = "16GiB", value_parser = parse_size)]
     max_memory: u64,
+    /// Search only the I-th of N slices of the layouts, for baton merge, e.g. --shard 2/4.
+    #[arg(long, value_name = "I/N")]
+    shard: Option<String>,
 }
 
 #[derive(Args)]
@@ -424,6 +428,7 @@ fn main() -> ExitCode {
                     top: a.top,
                     jobs: a.jobs,
                     max_memory: a.max_memory,
+                    shard: a.shard.as_deref(),
                 };
                 finish(commands::layout(&r, &mut o), o)
             })

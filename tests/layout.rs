@@ -187,6 +187,7 @@ proptest! {
             all: true,
             jobs: Some(1),
             max_memory: 16 << 30,
+            shard: None,
         };
         let done = execute(&request, &|| {}).unwrap();
         // The brute force: every enumerated layout, every split.
@@ -252,4 +253,52 @@ proptest! {
         let gap = (fast as f64 - full as f64).abs() / full as f64;
         prop_assert!(gap < 0.05, "fast {} vs full {}: {:.2}%", fast, full, gap * 100.0);
     }
+}
+
+#[test]
+fn shards_merge_into_the_same_best_layout() {
+    let dir = tempfile::tempdir().unwrap();
+    let whole = baton(&["layout", DEMO, "--global-batch", "32", "--json", "-"]);
+    ok(&whole);
+    let whole = json(&whole);
+    let mut parts = Vec::new();
+    for i in 1..=3 {
+        let part = dir.path().join(format!("part{i}.csv"));
+        let out = baton(&[
+            "layout",
+            DEMO,
+            "--global-batch",
+            "32",
+            "--shard",
+            &format!("{i}/3"),
+            "--csv",
+            part.to_str().unwrap(),
+        ]);
+        ok(&out);
+        assert!(text(&out.stdout).contains(&format!("shard {i}/3")));
+        parts.push(part.to_str().unwrap().to_string());
+    }
+    let mut args = vec!["merge".to_string()];
+    args.extend(parts.iter().cloned());
+    args.extend(["--json".into(), "-".into()]);
+    let args: Vec<&str> = args.iter().map(String::as_str).collect();
+    let merged = baton(&args);
+    ok(&merged);
+    let merged = json(&merged);
+    let rows = merged.as_array().unwrap();
+    assert_eq!(rows.len(), whole.as_array().unwrap().len(), "every layout, once");
+    for field in ["data", "pipeline", "tensor", "micro_batch_size", "step_time_ms", "split", "exact"] {
+        assert_eq!(rows[0][field], whole[0][field], "{field}");
+    }
+    // A missing shard, a repeated one and a part of another search are refused.
+    let out = baton(&["merge", &parts[0], &parts[1]]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("shard 3/3 is missing"), "{}", text(&out.stderr));
+    let out = baton(&["merge", &parts[0], &parts[0], &parts[1], &parts[2]]);
+    assert_eq!(out.status.code(), Some(2));
+    let other = dir.path().join("other.csv");
+    ok(&baton(&["layout", DEMO, "--global-batch", "16", "--shard", "3/3", "--csv", other.to_str().unwrap()]));
+    let out = baton(&["merge", &parts[0], &parts[1], other.to_str().unwrap()]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("another layout search"), "{}", text(&out.stderr));
 }
