@@ -360,7 +360,7 @@ fn figures(step: &crate::SimulatedStep, split: &[u32], exact: bool) -> Figures {
 }
 
 fn evaluate(s: &Scenario, full: bool) -> Result<Figures, String> {
-    let exact = full || s.parallel.tensor <= 1;
+    let exact = full || (s.parallel.tensor <= 1 && !crate::replicas_look_alike(s));
     let step = if exact { crate::simulate(s) } else { crate::simulate_fast(s) };
     step.map(|st| figures(&st, &s.pipeline.split, exact)).map_err(|e| e.to_string())
 }

@@ -739,17 +739,81 @@ pub fn step_lower_bound_ns(s: &Scenario) -> u64 {
     bound.min(u64::MAX as f64) as u64
 }
 
+/// Whether every replica's pipeline (its transfers between stages and its
+/// tensor groups' all-reduces) runs on links no other replica uses, each
+/// route with the same latencies and bandwidths as replica 0's, and no
+/// compute jitter: then, before the gradient collectives, nothing can tell
+/// the replicas apart and [`simulate_fast`] plays replica 0 alone.
+pub fn replicas_look_alike(s: &Scenario) -> bool {
+    let (d, p, t) = (s.parallel.data, s.pipeline.stages, s.parallel.tensor.max(1));
+    if d <= 1 || s.cluster.jitter > 0.0 {
+        return false;
+    }
+    let topology = topology(s);
+    let device = |r: u32, st: u32, k: u32| (r * p + st) * t + k;
+    let mut pairs: Vec<(u32, u32, u32, u32)> = Vec::new();
+    for st in 0..p {
+        for k in 0..t {
+            if st + 1 < p || (s.pipeline.chunks > 1 && p > 1) {
+                let next = (st + 1) % p;
+                pairs.push((st, k, next, k));
+                pairs.push((next, k, st, k));
+            }
+            if t > 1 {
+                pairs.push((st, k, st, (k + 1) % t));
+            }
+        }
+    }
+    let specs = |r: u32| -> Vec<Vec<(u64, u64)>> {
+        pairs
+            .iter()
+            .map(|&(a, ka, b, kb)| {
+                topology
+                    .route(device(r, a, ka), device(r, b, kb))
+                    .iter()
+                    .map(|&l| (topology.link(l).latency_ns, topology.link(l).bytes_per_s))
+                    .collect()
+            })
+            .collect()
+    };
+    let first = specs(0);
+    let mut used = std::collections::HashSet::new();
+    for r in 0..d {
+        if r > 0 && specs(r) != first {
+            return false;
+        }
+        let mine: std::collections::HashSet<u32> = pairs
+            .iter()
+            .flat_map(|&(a, ka, b, kb)| topology.route(device(r, a, ka), device(r, b, kb)).iter().map(|l| l.0))
+            .collect();
+        if mine.iter().any(|l| used.contains(l)) {
+            return false;
+        }
+        used.extend(mine);
+    }
+    true
+}
+
 /// [`simulate`] with the tensor groups' all-reduces in closed form (their
 /// uncontended ring time, [`tensor_config_fast`]) instead of played transfer
-/// by transfer: what `baton layout` ranks large searches with. Exact when
-/// `parallel.tensor` is 1; otherwise it leaves out the contention between
-/// the all-reduces and other traffic.
+/// by transfer, and, when [`replicas_look_alike`], replica 0's pipeline
+/// played alone with the others mirroring it while the gradient collectives
+/// run among all replicas on the full topology: what `baton layout` ranks
+/// large searches with. Exact with one device per stage and one replica;
+/// otherwise it leaves out the contention between the all-reduces and other
+/// traffic, and between the collectives and the other replicas' pipelines.
 pub fn simulate_fast(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
-    if s.parallel.tensor <= 1 {
+    let mirror = replicas_look_alike(s);
+    if s.parallel.tensor <= 1 && !mirror {
         return simulate(s);
     }
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
-    let variation = RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends };
+    let variation = RunOptions {
+        jitter: s.cluster.jitter,
+        seed: s.seed,
+        blocking_sends: s.pipeline.blocking_sends,
+        one_replica: mirror,
+    };
     let sync = sync_config(s);
     let tensor = tensor_config_fast(s);
     let trace = baton_executor::simulate_parallel(
@@ -767,7 +831,12 @@ pub fn simulate_fast(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
 /// Simulates one training step of `s` and reports on it.
 pub fn simulate(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
-    let variation = RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends };
+    let variation = RunOptions {
+        jitter: s.cluster.jitter,
+        seed: s.seed,
+        blocking_sends: s.pipeline.blocking_sends,
+        one_replica: false,
+    };
     let sync = sync_config(s);
     let tensor = tensor_config(s);
     let trace = baton_executor::simulate_parallel(

@@ -302,3 +302,34 @@ fn shards_merge_into_the_same_best_layout() {
     assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("another layout search"), "{}", text(&out.stderr));
 }
+
+#[test]
+fn one_replica_stands_for_all_when_nothing_tells_them_apart() {
+    // Three replicas of two stages on a flat cluster: every pair of devices
+    // has its own link, so each replica's pipeline runs on links of its own
+    // and the collectives' pairs are not the pipeline's: playing replica 0
+    // and mirroring it gives the full simulation's step exactly.
+    let text = "model:\n  layers:\n    - { name: l, repeat: 4, forward: 300us, backward: 600us, activation: 2MB, params: 20M }\n\
+                cluster:\n  devices: 6\n  link: { latency: 3us, bandwidth: 20GB/s }\n\
+                pipeline: { stages: 2, micro_batches: 4, schedule: 1f1b }\n\
+                parallel: { data: 3 }\n\
+                gradients: { bucket: 30MB }\n";
+    let s = parse(text, "s.yaml", "s", &[]).unwrap();
+    assert!(baton::replicas_look_alike(&s));
+    let full = baton::simulate(&s).unwrap().report;
+    let fast = baton::simulate_fast(&s).unwrap().report;
+    assert_eq!(fast.step_time_ns, full.step_time_ns);
+    assert_eq!(fast.collectives.len(), full.collectives.len());
+    // With jitter the replicas differ: no mirroring.
+    let jittered = parse(text, "s.yaml", "s", &["cluster.jitter=0.1".into()]).unwrap();
+    assert!(!baton::replicas_look_alike(&jittered));
+    // Replicas whose stages share a node's card do not look alike either.
+    let boxes = parse(
+        &text.replace("  devices: 6\n  link: { latency: 3us, bandwidth: 20GB/s }\n", "  nodes: 2\n  devices_per_node: 3\n  device_link: { latency: 1us, bandwidth: 100GB/s }\n  node_link: { latency: 5us, bandwidth: 10GB/s }\n"),
+        "s.yaml",
+        "s",
+        &[],
+    )
+    .unwrap();
+    assert!(!baton::replicas_look_alike(&boxes));
+}

@@ -488,6 +488,9 @@ struct Executor<'a> {
     running_work: Vec<Option<sync::Then>>,
     /// Per worker: when its step ended so far.
     device_end: Vec<SimTime>,
+    /// Workers that run plan ops (all, or replica 0's when the others
+    /// mirror it).
+    playing: usize,
     sync: Option<sync::State>,
     /// Devices per tensor group.
     t: usize,
@@ -507,6 +510,9 @@ impl Executor<'_> {
             self.running_work[w] = Some(work.then);
             self.ops[w].push(OpRecord { op: work.op, start: now, end: now + work.duration });
             sched.schedule(now + work.duration, Event::OpDone(w as u32));
+            return;
+        }
+        if w >= self.playing {
             return;
         }
         let (r, d) = (w / self.p, w % self.p);
@@ -683,6 +689,13 @@ pub struct RunOptions {
     /// arrived before it starts its next operation (blocking point-to-point
     /// sends); by default sends run beside compute.
     pub blocking_sends: bool,
+    /// Play replica 0's pipeline only and let every other replica mirror it
+    /// (its buckets ready, its compute done at the same instants), while
+    /// the gradient collectives run among all replicas on the full
+    /// topology. Exact only when the replicas cannot tell each other apart
+    /// (no jitter, each replica's pipeline on links of its own with the same
+    /// speeds); the caller decides.
+    pub one_replica: bool,
 }
 
 /// Simulates one step of `plan` with every op taking exactly its cost.
@@ -811,6 +824,7 @@ pub fn simulate_parallel(
         work: vec![VecDeque::new(); workers],
         running_work: vec![None; workers],
         device_end: vec![SimTime::ZERO; workers],
+        playing: if options.one_replica && sync.is_some() { p } else { workers },
         sync: sync_state,
         t,
         tensor: tensor.filter(|_| t > 1).map(|c| tensor::State::new(c.clone(), workers)),
@@ -820,9 +834,20 @@ pub fn simulate_parallel(
         exec.try_start(w, &mut sched);
     }
     baton_engine::run(&mut exec, &mut sched);
-    for w in 0..workers {
+    for w in 0..exec.playing {
         if let Some(&op) = plan.per_device[w % p].get(exec.next[w]) {
             return Err(ExecError::Stuck { device: w as u32, op });
+        }
+    }
+    // Mirrored replicas ran replica 0's ops at the same times (and their own
+    // device work).
+    if exec.playing < workers {
+        for w in exec.playing..workers {
+            let mut recs = exec.ops[w % p].iter().filter(|r| !r.op.kind.is_device_work()).copied().collect::<Vec<_>>();
+            recs.extend(exec.ops[w].iter().copied());
+            recs.sort_by_key(|r| (r.start, r.end));
+            exec.ops[w] = recs;
+            exec.device_end[w] = exec.device_end[w].max(exec.device_end[w % p]);
         }
     }
     let (collectives, sync_transfers, last_collective) = match exec.sync.take() {

@@ -561,10 +561,14 @@ impl Executor<'_> {
             return;
         };
         let base = st.bucket_base[piece as usize];
+        let mirrors = self.mirrors(w);
+        let st = self.state();
         for (b, spec) in st.cfg.buckets[piece as usize].iter().enumerate() {
             let share = (u128::from(dur.as_ns()) * u128::from(spec.ready_num)).div_ceil(u128::from(spec.ready_den));
             let at = now + SimDuration(share as u64);
-            sched.schedule(at, Event::BucketReady { worker: w as u32, bucket: base + b as u32 });
+            for &m in &mirrors {
+                sched.schedule(at, Event::BucketReady { worker: m as u32, bucket: base + b as u32 });
+            }
         }
     }
 
@@ -580,8 +584,10 @@ impl Executor<'_> {
             .filter(|(_, b)| b.ready_segment == Some(segment))
             .map(|(b, _)| base + b as u32)
             .collect();
-        for gb in ready {
-            self.bucket_ready(w as u32, gb, sched);
+        for m in self.mirrors(w) {
+            for &gb in &ready {
+                self.bucket_ready(m as u32, gb, sched);
+            }
         }
     }
 
@@ -602,16 +608,29 @@ impl Executor<'_> {
                         .iter()
                         .flat_map(|&(_, s)| st.bucket_base[s as usize]..st.bucket_base[s as usize + 1])
                         .collect();
-                    for gb in buckets {
-                        self.bucket_ready(w as u32, gb, sched);
+                    for m in self.mirrors(w) {
+                        for &gb in &buckets {
+                            self.bucket_ready(m as u32, gb, sched);
+                        }
                     }
                 }
             }
         }
         if index + 1 == len {
-            self.state().compute_done[w] = true;
-            self.maybe_update(w, sched);
+            for m in self.mirrors(w) {
+                self.state().compute_done[m] = true;
+                self.maybe_update(m, sched);
+            }
         }
+    }
+
+    /// Worker `w` and the workers that mirror it (the same pipeline device
+    /// of every other replica, when only replica 0 plays).
+    fn mirrors(&self, w: usize) -> Vec<usize> {
+        if self.playing == self.next.len() {
+            return vec![w];
+        }
+        (0..self.next.len() / self.p).map(|r| r * self.p + w).collect()
     }
 
     /// Bucket `gb` is final on worker `w`.
