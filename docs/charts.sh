@@ -17,3 +17,4 @@ $baton sweep scenarios/choose-m.yaml --vary pipeline.micro_batches=8..128*2 \
 $baton run scenarios/two-boxes.yaml --svg docs/two-boxes-packed.svg >/dev/null
 $baton run scenarios/two-boxes.yaml --set placement=spread --svg docs/two-boxes-spread.svg >/dev/null
 $baton run scenarios/replicas.yaml --svg docs/replicas.svg >/dev/null
+$baton layout scenarios/layout.yaml --global-batch 256 --svg docs/layout.svg >/dev/null
