@@ -30,6 +30,13 @@ use thiserror::Error;
 /// so pruning does not depend on the thread count.
 const BATCH: usize = 16;
 
+/// A refined layout's figures and the full simulations it took, or why it
+/// failed.
+type Refined = Result<(Figures, usize), String>;
+
+/// Steps the local search may try refining one layout's split.
+const REFINE_SIMULATIONS: usize = 64;
+
 /// One way to lay the model out.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Layout {
@@ -341,7 +348,7 @@ fn prepare(
             format_bytes(r.max_memory)
         ));
     }
-    Ok(Ready { bound_ns: crate::step_lower_bound_ns(&s), scenario: s })
+    Ok(Ready { bound_ns: crate::layout_lower_bound_ns(&s), scenario: s })
 }
 
 fn figures(step: &crate::SimulatedStep, split: &[u32], exact: bool) -> Figures {
@@ -537,6 +544,68 @@ pub fn execute(r: &Request<'_>, tick: &(dyn Fn() + Sync)) -> Result<Finished, La
                 Ok(f) => Outcome::Evaluated(f),
                 Err(why) => Outcome::Skipped(why),
             };
+        }
+    }
+    // Refine the best layouts' splits by the local search on the full
+    // simulation (the split search prices compute alone; links and tensor
+    // groups that straddle nodes can make another split faster), until the
+    // best `verify` are refined.
+    let mut refined: std::collections::HashSet<usize> = Default::default();
+    loop {
+        rows.sort_by_key(rank_key);
+        let pending: Vec<usize> = rows
+            .iter()
+            .enumerate()
+            .take_while(|(_, row)| row.figures().is_some())
+            .take(verify)
+            .filter(|(_, row)| !refined.contains(&row.index))
+            .map(|(k, _)| k)
+            .collect();
+        if pending.is_empty() {
+            break;
+        }
+        let by_index: HashMap<usize, &Scenario> = ready.iter().map(|(slot, x)| (slots[*slot], &x.scenario)).collect();
+        let results: Vec<(usize, Refined)> = pool.install(|| {
+            pending
+                .par_iter()
+                .map(|&k| {
+                    let mut s = by_index[&rows[k].index].clone();
+                    // The row's figures may already be for another split
+                    // (an earlier refinement); start from them.
+                    if let Some(f) = rows[k].figures() {
+                        s.pipeline.split = f.split.clone();
+                    }
+                    let unchanged = rows[k].figures().filter(|f| f.exact).cloned();
+                    // Searched with the fast evaluator (every step in full
+                    // with --verify all), the split found simulated in full.
+                    let sim: crate::planner::Simulator =
+                        if full_everything { crate::simulate } else { crate::simulate_fast };
+                    let result = crate::planner::refine(&s, REFINE_SIMULATIONS, sim)
+                        .and_then(|c| {
+                            // No better split: the figures in hand stand.
+                            if let Some(f) = unchanged.clone().filter(|f| f.split == c.split) {
+                                return Ok((f, 0));
+                            }
+                            s.pipeline.split = c.split.clone();
+                            let exact = if full_everything { c.outcome } else { crate::simulate(&s)? };
+                            Ok((figures(&exact, &c.split, true), 1))
+                        })
+                        .map_err(|e| e.to_string());
+                    (k, result)
+                })
+                .collect()
+        });
+        for (k, f) in results {
+            refined.insert(rows[k].index);
+            if let Ok((f, runs)) = f {
+                full_runs += runs;
+                // Keep the split already simulated in full if the refined
+                // one (searched on estimates) turns out no faster.
+                let keep = rows[k].figures().is_some_and(|old| old.exact && old.fits && old.step_ns <= f.step_ns);
+                if !keep {
+                    rows[k].outcome = Outcome::Evaluated(f);
+                }
+            }
         }
     }
     rows.sort_by_key(rank_key);

@@ -59,9 +59,19 @@ impl SimulateError {
 
 /// Per-virtual-stage costs of a scenario's split.
 pub fn stage_costs(s: &Scenario) -> Vec<StageCost> {
+    let split = s.pipeline.schedule.splits_backward();
     s.pieces()
         .iter()
-        .map(|p| StageCost::new(SimDuration(p.forward_ns), SimDuration(p.backward_ns), p.send_bytes))
+        .map(|p| {
+            let c = StageCost::new(SimDuration(p.forward_ns), SimDuration(p.backward_ns), p.send_bytes);
+            if split {
+                // B is the backward without its weight-gradient part W.
+                let w = p.weight_ns.min(p.backward_ns);
+                StageCost { backward: SimDuration(p.backward_ns - w), weight: SimDuration(w), ..c }
+            } else {
+                c
+            }
+        })
         .collect()
 }
 
@@ -280,9 +290,12 @@ pub fn piece_segments(s: &Scenario, k: usize) -> ([Vec<Segment>; 3], Vec<u32>) {
             backward.layer(l.forward_ns, l.forward_split, l.tensor_bytes);
         }
     }
+    // A schedule that runs W apart leaves it out of B (W is plain compute).
+    let split = s.pipeline.schedule.splits_backward();
     let mut done = vec![0; layers.len()];
     for (i, l) in layers.iter().enumerate().rev() {
-        backward.layer(l.backward_ns, l.backward_split, l.tensor_bytes);
+        let ns = if split { l.backward_ns - l.weight_ns.min(l.backward_ns) } else { l.backward_ns };
+        backward.layer(ns, l.backward_split, l.tensor_bytes);
         done[i] = backward.last();
     }
     ([forward.0, backward.0, Vec::new()], done)
@@ -792,6 +805,46 @@ pub fn replicas_look_alike(s: &Scenario) -> bool {
         used.extend(mine);
     }
     true
+}
+
+/// A lower bound on the step time of `s` over every split of its layers
+/// (what `baton layout` prunes with, so that a better split found later
+/// cannot beat a pruned layout): each layer costs a device of its group its
+/// compute per micro-batch (forward, backward, the forward again with full
+/// recomputation) plus its all-reduces at the fastest uncontended ring time
+/// of any stage's group; the busiest device does `m` times the largest
+/// piece of the best possible cut (the linear partition of those costs
+/// over the devices; with several chunks per device, at least an even
+/// share and the dearest layer). Anything else only adds. With compute
+/// jitter the bound shrinks by the jitter.
+pub fn layout_lower_bound_ns(s: &Scenario) -> u64 {
+    let topology = topology(s);
+    let p = s.pipeline.stages as usize;
+    let recompute = s.training.recompute == baton_scenario::Recompute::Full;
+    let all_reduce = |bytes: u64| -> u64 {
+        if bytes == 0 {
+            return 0;
+        }
+        (0..p).map(|k| ring_all_reduce_ns(s, &topology, bytes, k, false)).min().unwrap_or(0)
+    };
+    let weights: Vec<u64> = s
+        .tensor_layers
+        .iter()
+        .map(|l| {
+            let passes = if recompute { 3 } else { 2 };
+            let compute = l.forward_ns * if recompute { 2 } else { 1 } + l.backward_ns;
+            let comm = if s.parallel.tensor > 1 { 2 * passes * all_reduce(l.tensor_bytes) } else { 0 };
+            compute.saturating_add(comm)
+        })
+        .collect();
+    let per_device = if s.pipeline.chunks == 1 {
+        baton_split::linear_partition(&weights, p).map_or(0, |(max, _)| max)
+    } else {
+        let total: u64 = weights.iter().sum();
+        total.div_ceil(p as u64).max(weights.iter().copied().max().unwrap_or(0))
+    };
+    let bound = per_device as f64 * s.pipeline.micro_batches as f64 * (1.0 - s.cluster.jitter);
+    bound.min(u64::MAX as f64) as u64
 }
 
 /// [`simulate`] with the tensor groups' all-reduces in closed form (their

@@ -151,7 +151,14 @@ fn with_split(s: &Scenario, split: &[u32]) -> Scenario {
 }
 
 fn run(s: &Scenario, split: &[u32]) -> Result<Candidate, SimulateError> {
-    Ok(Candidate { split: split.to_vec(), outcome: simulate(&with_split(s, split))? })
+    run_with(s, split, simulate)
+}
+
+/// A step simulator: [`simulate`] or the fast evaluator.
+pub type Simulator = fn(&Scenario) -> Result<SimulatedStep, SimulateError>;
+
+fn run_with(s: &Scenario, split: &[u32], sim: Simulator) -> Result<Candidate, SimulateError> {
+    Ok(Candidate { split: split.to_vec(), outcome: sim(&with_split(s, split))? })
 }
 
 /// Moves one boundary by one layer at a time from `from`, keeping the move
@@ -159,6 +166,15 @@ fn run(s: &Scenario, split: &[u32]) -> Result<Candidate, SimulateError> {
 /// move helps or `budget` simulations have run. Returns the split reached and
 /// the moves kept.
 fn local_search(s: &Scenario, from: Candidate, budget: &mut usize) -> Result<(Candidate, usize), SimulateError> {
+    local_search_with(s, from, budget, simulate)
+}
+
+fn local_search_with(
+    s: &Scenario,
+    from: Candidate,
+    budget: &mut usize,
+    sim: Simulator,
+) -> Result<(Candidate, usize), SimulateError> {
     let mut best = from;
     let mut moves = 0;
     loop {
@@ -176,7 +192,7 @@ fn local_search(s: &Scenario, from: Candidate, budget: &mut usize) -> Result<(Ca
                     break 'moves;
                 }
                 *budget -= 1;
-                let c = run(s, &split)?;
+                let c = run_with(s, &split, sim)?;
                 if c.outcome.report.fits && c.step_ns() < improved.as_ref().unwrap_or(&best).step_ns() {
                     improved = Some(c);
                 }
@@ -190,6 +206,66 @@ fn local_search(s: &Scenario, from: Candidate, budget: &mut usize) -> Result<(Ca
             None => return Ok((best, moves)),
         }
     }
+}
+
+/// Every split of `layers` into `pieces` non-empty runs, when there are at
+/// most `cap` of them.
+fn all_splits(layers: u32, pieces: u32, cap: usize) -> Option<Vec<Vec<u32>>> {
+    // C(layers - 1, pieces - 1), stopping as soon as it passes the cap.
+    let (n, k) = (layers.checked_sub(1)? as u128, pieces.checked_sub(1)? as u128);
+    let mut count: u128 = 1;
+    for i in 0..k.min(n.saturating_sub(k)) {
+        count = count * (n - i) / (i + 1);
+        if count > cap as u128 {
+            return None;
+        }
+    }
+    fn rec(left: u32, pieces: u32, prefix: &mut Vec<u32>, out: &mut Vec<Vec<u32>>) {
+        if pieces == 1 {
+            prefix.push(left);
+            out.push(prefix.clone());
+            prefix.pop();
+            return;
+        }
+        for first in 1..=left - (pieces - 1) {
+            prefix.push(first);
+            rec(left - first, pieces - 1, prefix, out);
+            prefix.pop();
+        }
+    }
+    let mut out = Vec::new();
+    rec(layers, pieces, &mut Vec::new(), &mut out);
+    Some(out)
+}
+
+/// Splits few enough that [`refine`] simulates every one.
+pub const EVERY_SPLIT_UP_TO: usize = 64;
+
+/// Improves `s`'s own split on the step `sim` gives: when the layers can be
+/// cut into its pieces in at most [`EVERY_SPLIT_UP_TO`] ways, every split
+/// is tried and the fastest that fits kept (ties: the first in
+/// lexicographic order); otherwise the local search runs from `s`'s split
+/// (at most `budget` steps tried).
+pub fn refine(s: &Scenario, budget: usize, sim: Simulator) -> Result<Candidate, SimulateError> {
+    let start = run_with(s, &s.pipeline.split, sim)?;
+    let pieces = s.pipeline.split.len() as u32;
+    if let Some(splits) = all_splits(s.layers.len() as u32, pieces, EVERY_SPLIT_UP_TO) {
+        let mut best = start;
+        for split in splits {
+            let c = run_with(s, &split, sim)?;
+            let better = c.outcome.report.fits
+                && (!best.outcome.report.fits
+                    || c.step_ns() < best.step_ns()
+                    || (c.step_ns() == best.step_ns() && c.split < best.split));
+            if better {
+                best = c;
+            }
+        }
+        return Ok(best);
+    }
+    let mut budget = budget;
+    let (best, _) = local_search_with(s, start, &mut budget, sim)?;
+    Ok(best)
 }
 
 /// Finds the best split for `s` (its stages, chunks and schedule).

@@ -153,3 +153,52 @@ fn gradient_carries_the_size_of_the_boundary_it_crosses() {
         out.trace.transfers.iter().map(|t| (t.bytes, t.start.as_ns() / 1_000, t.end.as_ns() / 1_000)).collect();
     assert_eq!(transfers, vec![(1_000_000, 100, 1_110), (1_000_000, 1_410, 2_420)]);
 }
+
+/// Four stages of one layer each with forward, backward (B + W) and weight
+/// (W) times in microseconds; links cost nothing.
+fn zero_bubble_case(schedule: &str, m: u32, f_us: u64, b_us: u64, w_us: u64) -> baton::report::Report {
+    let text = format!(
+        "model:\n  layers:\n    - {{ name: l, repeat: 4, forward: {f_us}us, backward: {}us, weight: {w_us}us, activation: 0B }}\n\
+         cluster:\n  devices: 4\n  link: {{ latency: 0ns, bandwidth: 1GB/s }}\n\
+         pipeline:\n  stages: 4\n  micro_batches: {m}\n  schedule: {schedule}\n",
+        b_us + w_us
+    );
+    baton::simulate(&parse(&text, "zb.yaml", "zb", &[]).unwrap()).unwrap().report
+}
+
+#[test]
+fn zero_bubble_schedules_meet_the_papers_bubbles() {
+    // Qi, Wan, Huang, Lin, "Zero Bubble Pipeline Parallelism", ICLR 2024,
+    // sec. 2-3 (bubble = idle time of the busiest device's step, here the
+    // step minus the m (T_F + T_B + T_W) of work): 1F1B (p-1)(T_F+T_B+T_W),
+    // ZB-H1 (p-1)(T_F+T_B-T_W). p = 4, m = 12, every time 1 unit (1 us):
+    // 1F1B 36 + 9 = 45, ZB-H1 36 + 3 = 39. ZB-H2's (p-1)(T_F+T_B-2T_W) = 0
+    // holds in the steady state of unflushed steps; one flushed step still
+    // starts the last device (p-1) T_F late: 36 + 3 = 39 (worked out from
+    // the schedules' shapes, as the references note).
+    assert_eq!(zero_bubble_case("1f1b", 12, 1, 1, 1).step_time_ns, 45_000);
+    assert_eq!(zero_bubble_case("zb-h1", 12, 1, 1, 1).step_time_ns, 39_000);
+    assert_eq!(zero_bubble_case("zb-h2", 12, 1, 1, 1).step_time_ns, 39_000);
+    // T_F = 2, T_B = 3, T_W = 1, m = 12: work 72; the formulas give bubbles
+    // 18, 12 and 9. One flushed step: 1F1B 90 and ZB-H1 84 as the formulas
+    // say; ZB-H2 81, its formula reached in one step because its bubble 9
+    // exceeds the slant (p-1) T_F = 6 (the references' worked values).
+    assert_eq!(zero_bubble_case("1f1b", 12, 2, 3, 1).step_time_ns, 90_000);
+    assert_eq!(zero_bubble_case("zb-h1", 12, 2, 3, 1).step_time_ns, 84_000);
+    assert_eq!(zero_bubble_case("zb-h2", 12, 2, 3, 1).step_time_ns, 81_000);
+}
+
+#[test]
+fn zero_bubble_schedules_hold_the_papers_peak_micro_batches() {
+    // Same paper, sec. 3: ZB-H1 keeps 1F1B's peak, p micro-batches on the
+    // first device (from a forward to its input-gradient pass); ZB-H2
+    // allows 2p - 1.
+    let h1 = zero_bubble_case("zb-h1", 12, 1, 1, 1);
+    let h2 = zero_bubble_case("zb-h2", 12, 1, 1, 1);
+    let f1 = zero_bubble_case("1f1b", 12, 1, 1, 1);
+    assert_eq!(h1.devices[0].peak_activations, 4);
+    assert_eq!(f1.devices[0].peak_activations, 4);
+    assert_eq!(h2.devices[0].peak_activations, 7);
+    // W passes run as ops of their own.
+    assert!(h1.ops == 3 * 12 * 4 && f1.ops == 2 * 12 * 4);
+}

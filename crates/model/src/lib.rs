@@ -61,6 +61,10 @@ pub struct LayerCost {
     /// The share of the backward before its first all-reduce (a transformer
     /// layer's MLP part, since the backward runs the layer in reverse).
     pub backward_split: (u64, u64),
+    /// The weight-gradient part of the backward (W), run apart by the
+    /// zero-bubble schedules; the rest of `backward_ns` is the input
+    /// gradient (B).
+    pub weight_ns: u64,
 }
 
 impl LayerCost {
@@ -77,6 +81,7 @@ impl LayerCost {
             tensor_bytes: 0,
             forward_split: (1, 2),
             backward_split: (1, 2),
+            weight_ns: backward_ns / 2,
         }
     }
 
@@ -90,6 +95,7 @@ impl LayerCost {
             name: self.name.clone(),
             forward_ns: self.forward_ns.div_ceil(t),
             backward_ns: self.backward_ns.div_ceil(t),
+            weight_ns: self.weight_ns.div_ceil(t).min(self.backward_ns.div_ceil(t)),
             activation_bytes: self.activation_bytes.div_ceil(t),
             stash_bytes: self.stash_bytes.div_ceil(t),
             params: self.params.div_ceil(t),
@@ -318,6 +324,19 @@ impl Transformer {
         ((s * b * per_position + scores) * self.bytes_per_value as u128 / 2) as u64
     }
 
+    /// FLOPs of one transformer layer's weight-gradient pass (W) for `b`
+    /// sequences: each weight product's gradient costs what the product
+    /// does, `4 b s h^2 + 4 b s h w + 2 n b s h f` (`24 b s h^2` in the
+    /// original); the score products carry no weights, so their gradients
+    /// belong to the input-gradient pass (B), which does the rest of the
+    /// backward (`24 b s h^2 + 8 b s^2 h` in the original; Qi et al., "Zero
+    /// Bubble Pipeline Parallelism", ICLR 2024, sec. 2).
+    pub fn weight_gradient_flops(&self, b: u64) -> f64 {
+        let (s, h, b) = (self.seq_len as f64, self.hidden as f64, b as f64);
+        let (w, f, n) = (self.kv_width() as f64, self.ffn_hidden as f64, self.ffn_matrices() as f64);
+        4.0 * b * s * h * h + 4.0 * b * s * h * w + 2.0 * n * b * s * h * f
+    }
+
     /// Forward FLOPs of a transformer layer's attention part (the query,
     /// key, value and output projections and the score products), for `b`
     /// sequences: `4 b s h^2 + 4 b s h w + 4 b s^2 h` (`8 b s h^2 + 4 b s^2 h`
@@ -428,6 +447,7 @@ impl Transformer {
                 tensor_bytes: boundary,
                 forward_split: (attention.round() as u64, f.round() as u64),
                 backward_split: (mlp_back.round() as u64, back.round() as u64),
+                weight_ns: speed.time_ns(self.weight_gradient_flops(b)).min(speed.time_ns(back)),
             });
         }
         out.push(LayerCost {

@@ -199,6 +199,7 @@ pub const LAYER: &[Key] = &[
     with_default("params", Type::Count, Default::Whole(0), "Parameters of the layer, e.g. 350M or 1.2B."),
     with_default("tied_params", Type::Count, Default::Whole(0), "Parameters the layer shares with the first layer (tied weights); a device other than device 0 that runs it keeps its own copy."),
     with_default("tensor_bytes", Type::Quantity(Unit::Size), Default::Text("0B"), "With parallel.tensor > 1: bytes of each of the layer's two all-reduces per pass (forward and backward)."),
+    key("weight", Type::Quantity(Unit::Duration), "The weight-gradient part (W) of backward, run apart by the zero-bubble schedules; half of backward when left out (the zero-bubble paper's working assumption)."),
 ];
 
 /// `model.transformer`.
@@ -299,7 +300,11 @@ pub const PIPELINE: &[Key] = &[
         "Layers per piece, in model order (stages x chunks whole numbers summing to the layer count), or even.",
     ),
     required("micro_batches", whole(1, u32::MAX as i64), "m: micro-batches per step."),
-    required("schedule", Type::Choice(&["fill-drain", "1f1b", "interleaved"]), "The pipeline schedule."),
+    required(
+        "schedule",
+        Type::Choice(&["fill-drain", "1f1b", "interleaved", "zb-h1", "zb-h2"]),
+        "The pipeline schedule.",
+    ),
     with_default(
         "chunks",
         whole(1, u32::MAX as i64),

@@ -325,9 +325,13 @@ pub struct Scenario {
 }
 
 impl Scenario {
-    /// The pipeline's shape for the schedule crate.
+    /// The pipeline's shape for the schedule crate (the backward split when
+    /// the schedule runs W apart).
     pub fn shape(&self) -> Shape {
-        Shape::new(self.pipeline.stages, self.pipeline.micro_batches, self.pipeline.chunks)
+        Shape {
+            split_backward: self.pipeline.schedule.splits_backward(),
+            ..Shape::new(self.pipeline.stages, self.pipeline.micro_batches, self.pipeline.chunks)
+        }
     }
 
     /// The pieces the split cuts the model into, in order (virtual stages).
@@ -841,6 +845,7 @@ fn scale_layers(layers: &mut [LayerCost], from: u32, to: u32) {
         l.activation_bytes = scale(l.activation_bytes);
         l.stash_bytes = scale(l.stash_bytes);
         l.tensor_bytes = scale(l.tensor_bytes);
+        l.weight_ns = scale(l.weight_ns).min(l.backward_ns);
     }
 }
 
@@ -1532,6 +1537,18 @@ fn read_layers(list: Field<'_>) -> Result<Vec<LayerCost>, ScenarioError> {
         let params = m.opt("params", |a| a.count())?.unwrap_or(0);
         let tied_params = m.opt("tied_params", |a| a.count())?.unwrap_or(0);
         let tensor_bytes = m.opt("tensor_bytes", |a| a.bytes())?.unwrap_or(0);
+        let weight_ns = m
+            .opt("weight", |a| {
+                let w = a.duration_ns()?;
+                if w > backward_ns {
+                    return Err(a.err(format!(
+                        "is part of the backward, so at most backward ({} ns), found {w} ns",
+                        backward_ns
+                    )));
+                }
+                Ok(w)
+            })?
+            .unwrap_or(backward_ns / 2);
         if layers.len() as u64 + repeat > MAX_LAYERS {
             return Err(at.err(format!("the model expands to more than {MAX_LAYERS} layers")));
         }
@@ -1542,6 +1559,7 @@ fn read_layers(list: Field<'_>) -> Result<Vec<LayerCost>, ScenarioError> {
                 params,
                 tied_params,
                 tensor_bytes,
+                weight_ns,
                 ..LayerCost::new(name, forward_ns, backward_ns, activation_bytes)
             });
         }

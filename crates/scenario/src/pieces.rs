@@ -17,6 +17,8 @@ pub struct Piece {
     /// Backward time per micro-batch (with full recomputation, the forward
     /// run again plus the backward).
     pub backward_ns: u64,
+    /// The weight-gradient part of `backward_ns` (W).
+    pub weight_ns: u64,
     /// Its last layer's activation: what it sends on per micro-batch.
     pub send_bytes: u64,
     /// Bytes held per micro-batch from the forward's start to the backward's
@@ -44,6 +46,7 @@ pub struct PieceCosts {
     recompute: bool,
     forward: Vec<u128>,
     backward: Vec<u128>,
+    weight: Vec<u128>,
     stash: Vec<u128>,
     params: Vec<u128>,
     tied: Vec<u128>,
@@ -73,6 +76,7 @@ impl PieceCosts {
             recompute: recompute == Recompute::Full,
             forward: prefix(layers, |l| l.forward_ns),
             backward: prefix(layers, |l| l.backward_ns),
+            weight: prefix(layers, |l| l.weight_ns),
             stash: prefix(layers, |l| l.stash_bytes),
             params: prefix(layers, |l| l.params),
             tied: prefix(layers, |l| l.tied_params),
@@ -131,6 +135,7 @@ impl PieceCosts {
             layers: b - a,
             forward_ns: clamp(forward),
             backward_ns: clamp(backward + if self.recompute { forward } else { 0 }),
+            weight_ns: clamp(self.weight[b] - self.weight[a]),
             send_bytes: if b > a { self.activation[b - 1] } else { 0 },
             stash_bytes: clamp(self.stash_bytes(a, b)),
             params: clamp(self.params(k, a, b)),

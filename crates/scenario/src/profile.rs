@@ -14,8 +14,17 @@ use std::io::Write;
 use crate::{units, LayerCost, ScenarioError};
 
 /// Columns a profile may have, in the order they are written.
-pub const COLUMNS: [&str; 8] =
-    ["name", "forward_ms", "backward_ms", "activation_bytes", "stash_bytes", "params", "tied_params", "tensor_bytes"];
+pub const COLUMNS: [&str; 9] = [
+    "name",
+    "forward_ms",
+    "backward_ms",
+    "activation_bytes",
+    "stash_bytes",
+    "params",
+    "tied_params",
+    "tensor_bytes",
+    "weight_ms",
+];
 const REQUIRED: [&str; 3] = ["name", "forward_ms", "activation_bytes"];
 
 /// Reads a profile; `file` labels errors, which name the line and column.
@@ -76,6 +85,10 @@ pub fn read(text: &str, file: &str) -> Result<Vec<LayerCost>, ScenarioError> {
         let params = count(5)?;
         let tied_params = count(6)?;
         let tensor_bytes = whole(7)?.unwrap_or(0);
+        let weight_ns = ms(8)?.unwrap_or(backward_ns / 2);
+        if weight_ns > backward_ns {
+            return Err(err(line, "weight_ms", "is part of backward_ms, so at most backward_ms".into()));
+        }
         if layers.len() as u64 >= crate::MAX_LAYERS {
             return Err(err(line, "row", format!("more than {} layers", crate::MAX_LAYERS)));
         }
@@ -84,6 +97,7 @@ pub fn read(text: &str, file: &str) -> Result<Vec<LayerCost>, ScenarioError> {
             params,
             tied_params,
             tensor_bytes,
+            weight_ns,
             ..LayerCost::new(name, forward_ns, backward_ns, activation_bytes)
         });
     }
@@ -110,9 +124,18 @@ pub fn ms_text(ns: u64) -> String {
 /// read back, a layer splits its time in halves).
 pub fn write<W: Write>(layers: &[LayerCost], out: W) -> Result<(), csv::Error> {
     let mut w = csv::Writer::from_writer(out);
-    let tensor = layers.iter().any(|l| l.tensor_bytes > 0);
-    let columns = if tensor { &COLUMNS[..] } else { &COLUMNS[..7] };
-    w.write_record(columns)?;
+    // Optional columns only when they carry something: tensor-parallel
+    // traffic, or a weight-gradient time other than the default half.
+    let weight = layers.iter().any(|l| l.weight_ns != l.backward_ns / 2);
+    let tensor = weight || layers.iter().any(|l| l.tensor_bytes > 0);
+    let n = if weight {
+        9
+    } else if tensor {
+        8
+    } else {
+        7
+    };
+    w.write_record(&COLUMNS[..n])?;
     for l in layers {
         let mut row = vec![
             l.name.clone(),
@@ -125,6 +148,9 @@ pub fn write<W: Write>(layers: &[LayerCost], out: W) -> Result<(), csv::Error> {
         ];
         if tensor {
             row.push(l.tensor_bytes.to_string());
+        }
+        if weight {
+            row.push(ms_text(l.weight_ns));
         }
         w.write_record(row)?;
     }
@@ -174,6 +200,7 @@ mod tests {
     #[test]
     fn writes_what_it_reads() {
         let layers = vec![LayerCost {
+            weight_ns: 0,
             tensor_bytes: 0,
             forward_split: (1, 2),
             backward_split: (1, 2),

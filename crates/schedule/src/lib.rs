@@ -316,11 +316,24 @@ pub enum ScheduleKind {
     OneFOneB,
     /// 1F1B over several model chunks per device.
     Interleaved,
+    /// Zero-bubble ZB-H1 (Qi et al., ICLR 2024, sec. 3): the backward split
+    /// into B and W, each device deferring W passes into its bubbles, with
+    /// 1F1B's peak memory.
+    ZbH1,
+    /// Zero-bubble ZB-H2 (same paper): more forwards in the warm-up and W
+    /// passes deferred further, at up to `2p - 1` micro-batches in flight.
+    ZbH2,
 }
 
 impl ScheduleKind {
     /// Every schedule, in the order help texts list them.
-    pub const ALL: [ScheduleKind; 3] = [ScheduleKind::FillDrain, ScheduleKind::OneFOneB, ScheduleKind::Interleaved];
+    pub const ALL: [ScheduleKind; 5] = [
+        ScheduleKind::FillDrain,
+        ScheduleKind::OneFOneB,
+        ScheduleKind::Interleaved,
+        ScheduleKind::ZbH1,
+        ScheduleKind::ZbH2,
+    ];
 
     /// The name used in scenario files and on the command line.
     pub fn name(self) -> &'static str {
@@ -328,7 +341,15 @@ impl ScheduleKind {
             ScheduleKind::FillDrain => "fill-drain",
             ScheduleKind::OneFOneB => "1f1b",
             ScheduleKind::Interleaved => "interleaved",
+            ScheduleKind::ZbH1 => "zb-h1",
+            ScheduleKind::ZbH2 => "zb-h2",
         }
+    }
+
+    /// Whether the schedule runs the weight-gradient pass (W) apart from the
+    /// input-gradient pass (B).
+    pub fn splits_backward(self) -> bool {
+        matches!(self, ScheduleKind::ZbH1 | ScheduleKind::ZbH2)
     }
 }
 
@@ -520,6 +541,8 @@ pub const MAX_OPS: u64 = 16 * 1024 * 1024;
 
 /// Builds the plan for `kind` and `shape`; the result always passes [`validate`].
 pub fn build(kind: ScheduleKind, shape: Shape) -> Result<Plan, ScheduleError> {
+    // The zero-bubble schedules run W apart; the others fuse it into B.
+    let shape = Shape { split_backward: kind.splits_backward(), ..shape };
     check_shape(kind, shape)?;
     let p = shape.stages;
     let per_device = (0..p)
@@ -528,6 +551,8 @@ pub fn build(kind: ScheduleKind, shape: Shape) -> Result<Plan, ScheduleError> {
             ScheduleKind::OneFOneB => one_f_one_b(shape, d),
             ScheduleKind::Interleaved if shape.chunks == 1 => one_f_one_b(shape, d),
             ScheduleKind::Interleaved => interleaved(shape, d),
+            ScheduleKind::ZbH1 => zero_bubble(shape, d, shape.stages - d - 1, d),
+            ScheduleKind::ZbH2 => zero_bubble(shape, d, 2 * (shape.stages - d - 1), 2 * d),
         })
         .collect();
     Ok(Plan { kind, shape, per_device })
@@ -549,7 +574,9 @@ pub fn check_shape(kind: ScheduleKind, shape: Shape) -> Result<(), ScheduleError
         return Err(ScheduleError::TooLarge(total));
     }
     match kind {
-        ScheduleKind::FillDrain | ScheduleKind::OneFOneB if shape.chunks != 1 => {
+        ScheduleKind::FillDrain | ScheduleKind::OneFOneB | ScheduleKind::ZbH1 | ScheduleKind::ZbH2
+            if shape.chunks != 1 =>
+        {
             Err(ScheduleError::ChunksNotSupported { schedule: kind, chunks: shape.chunks })
         }
         ScheduleKind::Interleaved if shape.micro_batches % shape.stages != 0 => {
@@ -577,6 +604,42 @@ fn one_f_one_b(shape: Shape, d: u32) -> Vec<Op> {
         ops.push(Op::backward(i, d));
     }
     ops.extend((m - warmup..m).map(|i| Op::backward(i, d)));
+    ops
+}
+
+/// A zero-bubble order for device `d` (Qi, Wan, Huang, Lin, "Zero Bubble
+/// Pipeline Parallelism", ICLR 2024, sec. 3): `warmup` forwards, then one
+/// forward and one input-gradient pass (B) at a time, the weight-gradient
+/// pass (W) of micro-batch `j` deferred until `lag` later B passes have run
+/// (filling the waits those B passes would otherwise leave), the last W
+/// passes at the end. ZB-H1 is `warmup = p - d - 1` (1F1B's) and `lag = d`;
+/// ZB-H2 `warmup = 2(p - d - 1)` and `lag = 2d`. These parameters are ours,
+/// chosen to give the paper's bubbles with equal per-stage times (for
+/// ZB-H1, `(p-1)(T_F + T_B - T_W)`) and its peak memory (`p`, and
+/// `2p - 1`, micro-batches from F to B on the first device).
+fn zero_bubble(shape: Shape, d: u32, warmup: u32, lag: u32) -> Vec<Op> {
+    let m = shape.micro_batches;
+    let warmup = warmup.min(m);
+    let mut ops = Vec::with_capacity(shape.ops_per_device());
+    let mut pending = std::collections::VecDeque::new();
+    let mut backward = |ops: &mut Vec<Op>, j: u32| {
+        ops.push(Op::backward(j, d));
+        pending.push_back(j);
+        while pending.len() > lag as usize {
+            if let Some(w) = pending.pop_front() {
+                ops.push(Op::weight(w, d));
+            }
+        }
+    };
+    ops.extend((0..warmup).map(|i| Op::forward(i, d)));
+    for j in 0..(m - warmup) {
+        ops.push(Op::forward(warmup + j, d));
+        backward(&mut ops, j);
+    }
+    for j in (m - warmup)..m {
+        backward(&mut ops, j);
+    }
+    ops.extend(pending.into_iter().map(|w| Op::weight(w, d)));
     ops
 }
 
