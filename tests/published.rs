@@ -199,6 +199,8 @@ fn zero_bubble_schedules_hold_the_papers_peak_micro_batches() {
     assert_eq!(h1.devices[0].peak_activations, 4);
     assert_eq!(f1.devices[0].peak_activations, 4);
     assert_eq!(h2.devices[0].peak_activations, 7);
-    // W passes run as ops of their own.
+    // W passes run as ops of their own: 12 of 1 us on each device.
     assert!(h1.ops == 3 * 12 * 4 && f1.ops == 2 * 12 * 4);
+    assert!(h1.devices.iter().all(|d| (d.weight_ms - 0.012).abs() < 1e-12));
+    assert!(f1.devices.iter().all(|d| d.weight_ms == 0.0));
 }

@@ -197,6 +197,9 @@ pub struct DeviceReport {
     pub cluster_device: u32,
     /// Time spent computing, in milliseconds.
     pub busy_ms: f64,
+    /// The part of `busy_ms` in weight-gradient passes (W), run apart by
+    /// the zero-bubble schedules.
+    pub weight_ms: f64,
     /// Time not computing within the step, in milliseconds.
     pub idle_ms: f64,
     /// Idle time / step time.
@@ -446,6 +449,11 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
     for (d, recs) in trace.ops.iter().enumerate() {
         let device = d as u32;
         let busy_ns: u64 = recs.iter().map(|r| r.end.saturating_since(r.start).as_ns()).sum();
+        let weight_ns: u64 = recs
+            .iter()
+            .filter(|r| r.op.kind == baton_schedule::OpKind::Weight)
+            .map(|r| r.end.saturating_since(r.start).as_ns())
+            .sum();
         let last_compute = recs.iter().rev().find(|r| !r.op.kind.is_device_work()).map_or(t0, |r| r.end);
         let device_end = trace.device_end.get(d).copied().unwrap_or(t0).max(recs.last().map_or(t0, |r| r.end));
         let sync_exposed_ns = device_end.saturating_since(last_compute).as_ns();
@@ -466,6 +474,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
             tensor_comm_ms: ms(trace.tensor_comm_ns.get(d).copied().unwrap_or(0)),
             cluster_device: trace.cluster_devices.get(d).copied().unwrap_or(device),
             busy_ms: ms(busy_ns),
+            weight_ms: ms(weight_ns),
             idle_ms: ms(idle_ns),
             bubble_fraction: if step_ns == 0 { 0.0 } else { idle_ns as f64 / step_ns as f64 },
             peak_activations: peak_held(trace, d),
