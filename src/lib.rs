@@ -860,15 +860,15 @@ pub fn simulate_fast(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
     if s.parallel.tensor <= 1 && !mirror {
         return simulate(s);
     }
+    play(s, tensor_config_fast(s), mirror)
+}
+
+/// Plays `s` with these tensor groups, replica 0 alone when `one_replica`.
+fn play(s: &Scenario, tensor: Option<TensorConfig>, one_replica: bool) -> Result<SimulatedStep, SimulateError> {
     let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
-    let variation = RunOptions {
-        jitter: s.cluster.jitter,
-        seed: s.seed,
-        blocking_sends: s.pipeline.blocking_sends,
-        one_replica: mirror,
-    };
+    let variation =
+        RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends, one_replica };
     let sync = sync_config(s);
-    let tensor = tensor_config_fast(s);
     let trace = baton_executor::simulate_parallel(
         plan,
         &stage_costs(s),
@@ -883,23 +883,5 @@ pub fn simulate_fast(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
 
 /// Simulates one training step of `s` and reports on it.
 pub fn simulate(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
-    let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
-    let variation = RunOptions {
-        jitter: s.cluster.jitter,
-        seed: s.seed,
-        blocking_sends: s.pipeline.blocking_sends,
-        one_replica: false,
-    };
-    let sync = sync_config(s);
-    let tensor = tensor_config(s);
-    let trace = baton_executor::simulate_parallel(
-        plan,
-        &stage_costs(s),
-        topology(s),
-        variation,
-        sync.as_ref(),
-        tensor.as_ref(),
-    )?;
-    let report = baton_report::build(&trace, &labels(s));
-    Ok(SimulatedStep { trace, report })
+    play(s, tensor_config(s), false)
 }

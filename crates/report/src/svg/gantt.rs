@@ -642,33 +642,24 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
             let trace = run.trace;
             let t0 = trace.start().as_ns();
             let prefix = if run.label.is_empty() { String::new() } else { format!("{}: ", xml_escape(&run.label)) };
-            for t in &trace.transfers {
-                let held = t
-                    .bottleneck
-                    .and_then(|l| trace.link_names.get(l as usize))
-                    .map(|n| format!("; held back most on {}", xml_escape(n)))
-                    .unwrap_or_default();
-                let what = format!(
-                    "{} of micro-batch {} from device {} to device {}, {} bytes: sending {} to {}, arrived {}{}",
-                    t.flow.as_str(),
-                    t.micro_batch,
-                    t.src,
-                    t.dst,
-                    t.bytes,
-                    format_ns(t.start.as_ns()),
-                    format_ns(t.sent.as_ns()),
-                    format_ns(t.end.as_ns()),
-                    held
-                );
-                let lane = |d: u32| layouts[r].of_device.get(d as usize).copied().flatten().map(|l| first_lane[r] + l);
-                let send_y = lane(t.src).map(|l| lane_y(l) + lane_h + 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
+            let lane = |d: u32| layouts[r].of_device.get(d as usize).copied().flatten().map(|l| first_lane[r] + l);
+            // A transfer's two marks: bytes leaving under the sender, data in
+            // flight under the receiver.
+            let mut marks = |what: String,
+                             (src, dst): (u32, u32),
+                             start: u64,
+                             sent: u64,
+                             end: u64,
+                             colours: [Rgb; 2],
+                             sides: [&str; 2]| {
+                let send_y = lane(src).map(|l| lane_y(l) + lane_h + 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
                 let recv_y =
-                    lane(t.dst).map(|l| lane_y(l) + lane_h + 2.0 + comm_h / 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
-                // Sends: bytes leaving the sender; receives: data in flight to the receiver.
-                let marks = [("send", send_y, t.sent, SEND), ("receive", recv_y, t.end, RECEIVE)];
-                for (side, y, until, colour) in marks {
+                    lane(dst).map(|l| lane_y(l) + lane_h + 2.0 + comm_h / 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
+                for (side, y, until, colour) in
+                    [(sides[0], send_y, sent, colours[0]), (sides[1], recv_y, end, colours[1])]
+                {
                     let Some(y) = y else { continue };
-                    let Some((x0, x1)) = span(t.start.as_ns() - t0, until.as_ns() - t0) else { continue };
+                    let Some((x0, x1)) = span(start - t0, until - t0) else { continue };
                     let _ = writeln!(
                         body,
                         "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{side}: {what}</title></rect>",
@@ -679,14 +670,30 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
                         hex(colour)
                     );
                 }
+            };
+            let held = |b: Option<u32>| {
+                b.and_then(|l| trace.link_names.get(l as usize))
+                    .map(|n| format!("; held back most on {}", xml_escape(n)))
+                    .unwrap_or_default()
+            };
+            for t in &trace.transfers {
+                let what = format!(
+                    "{} of micro-batch {} from device {} to device {}, {} bytes: sending {} to {}, arrived {}{}",
+                    t.flow.as_str(),
+                    t.micro_batch,
+                    t.src,
+                    t.dst,
+                    t.bytes,
+                    format_ns(t.start.as_ns()),
+                    format_ns(t.sent.as_ns()),
+                    format_ns(t.end.as_ns()),
+                    held(t.bottleneck)
+                );
+                let (start, sent, end) = (t.start.as_ns(), t.sent.as_ns(), t.end.as_ns());
+                marks(what, (t.src, t.dst), start, sent, end, [SEND, RECEIVE], ["send", "receive"]);
             }
             for t in &trace.sync_transfers {
                 let c = &trace.collectives[t.collective as usize];
-                let held = t
-                    .bottleneck
-                    .and_then(|l| trace.link_names.get(l as usize))
-                    .map(|n| format!("; held back most on {}", xml_escape(n)))
-                    .unwrap_or_default();
                 let what = format!(
                     "{} {} of piece {} bucket {}, round {}: device {} to device {}, {} bytes: sending {} to {}, arrived {}{}",
                     c.algorithm.name(),
@@ -700,26 +707,10 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
                     format_ns(t.start.as_ns()),
                     format_ns(t.sent.as_ns()),
                     format_ns(t.end.as_ns()),
-                    held
+                    held(t.bottleneck)
                 );
-                let lane = |d: u32| layouts[r].of_device.get(d as usize).copied().flatten().map(|l| first_lane[r] + l);
-                let send_y = lane(t.src).map(|l| lane_y(l) + lane_h + 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
-                let recv_y =
-                    lane(t.dst).map(|l| lane_y(l) + lane_h + 2.0 + comm_h / 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
-                let marks = [("sync send", send_y, t.sent, SYNC_SEND), ("sync receive", recv_y, t.end, SYNC_RECEIVE)];
-                for (side, y, until, colour) in marks {
-                    let Some(y) = y else { continue };
-                    let Some((x0, x1)) = span(t.start.as_ns() - t0, until.as_ns() - t0) else { continue };
-                    let _ = writeln!(
-                        body,
-                        "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{side}: {what}</title></rect>",
-                        x0,
-                        y,
-                        (x1 - x0).max(MIN_MARK_PX),
-                        comm_row,
-                        hex(colour)
-                    );
-                }
+                let (start, sent, end) = (t.start.as_ns(), t.sent.as_ns(), t.end.as_ns());
+                marks(what, (t.src, t.dst), start, sent, end, [SYNC_SEND, SYNC_RECEIVE], ["sync send", "sync receive"]);
             }
         }
         body.push_str("</g>\n");
