@@ -225,6 +225,21 @@ pub(crate) struct Prepared {
 }
 
 impl Prepared {
+    /// Transfer `i` has arrived: counts it off the transfers that wait for
+    /// it (their places in `remaining` offset by `base`) and returns those
+    /// that wait for nothing more.
+    pub(crate) fn release(&self, base: u32, i: u32, remaining: &mut [u32]) -> Vec<u32> {
+        let mut ready = Vec::new();
+        for &n in &self.dependents[i as usize] {
+            let n = base + n;
+            remaining[n as usize] -= 1;
+            if remaining[n as usize] == 0 {
+                ready.push(n);
+            }
+        }
+        ready
+    }
+
     pub(crate) fn new(graph: Graph) -> Self {
         let n = graph.transfers().len();
         let mut dependents = vec![Vec::new(); n];
@@ -796,14 +811,7 @@ impl Executor<'_> {
         run.left -= 1;
         let c = run.offset.partition_point(|&o| o <= idx) - 1;
         let (base, prepared) = (run.offset[c], run.copies[c].clone());
-        let mut ready = Vec::new();
-        for &n in &prepared.dependents[(idx - base) as usize] {
-            let n = base + n;
-            run.remaining[n as usize] -= 1;
-            if run.remaining[n as usize] == 0 {
-                ready.push(n);
-            }
-        }
+        let ready = prepared.release(base, idx - base, &mut run.remaining);
         let done = run.left == 0;
         for n in ready {
             self.start_sync_transfer(coll, n, now);

@@ -198,13 +198,7 @@ impl Executor<'_> {
         let run = st.running[w].as_mut().expect("running all-reduce");
         run.left -= 1;
         let prepared = run.prepared.clone();
-        let mut ready = Vec::new();
-        for &n in &prepared.dependents[i as usize] {
-            run.remaining[n as usize] -= 1;
-            if run.remaining[n as usize] == 0 {
-                ready.push(n);
-            }
-        }
+        let ready = prepared.release(0, i, &mut run.remaining);
         let done = run.left == 0;
         for n in ready {
             self.start_tensor_transfer(w, n, now);
