@@ -563,6 +563,31 @@ pub fn layout(r: &LayoutRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comm
     Ok(Done { text, then: None })
 }
 
+/// `baton order`: each device's order of operations for the scenario's
+/// schedule, in the order syntax (`--out`, standard output by default).
+pub fn order(scenario: &Path, sets: &[String], outputs: &mut Outputs) -> Result<Done, CommandError> {
+    let s = baton_scenario::load(scenario, sets)?;
+    let plan = baton_schedule::build(s.pipeline.schedule, s.shape()).map_err(crate::SimulateError::from)?;
+    let shape = plan.shape;
+    let mut text = format!(
+        "# {}: schedule {}, {} stages, {} micro-batches{}\n\
+         # one line per device, <device>: its ops in order; F<i> forward, B<i> backward{}{}\n",
+        s.title,
+        s.pipeline.schedule.name(),
+        shape.stages,
+        shape.micro_batches,
+        if shape.chunks > 1 { format!(", {} chunks per device", shape.chunks) } else { String::new() },
+        if shape.split_backward { " (input gradient), W<i> weight gradient" } else { "" },
+        if shape.chunks > 1 { "; .c the chunk" } else { "" }
+    );
+    text.push_str(&baton_schedule::order_text(&plan));
+    if outputs.wants("--out") {
+        outputs.write("--out", text.as_bytes())?;
+        return Ok(Done { text: String::new(), then: None });
+    }
+    Ok(Done { text, then: None })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -88,6 +88,14 @@ enum Command {
         or pruned when a lower bound on its step shows it cannot beat the best simulated in full.\n\
         Exit status: 0 done, 2 invalid scenario or usage, or no layout could be simulated, 1 anything else.", outputs_note!()))]
     Layout(LayoutArgs),
+    /// Write each device's order of operations for the scenario's schedule, one line per device.
+    #[command(after_help = concat!("Examples:\n  \
+        baton order scenarios/unbalanced-split.yaml\n  \
+        baton order scenarios/unbalanced-split.yaml --set pipeline.schedule=zb-h1 --out zb-h1.order\n\n\
+        Syntax: `<device>: tok tok ...`, one token per op in the order the device runs them:\n\
+        F3 forward of micro-batch 3, B3 its backward (with zb-h1 and zb-h2 the input gradient),\n\
+        W3 its weight gradient, F3.1 with several chunks per device (chunk 1); # starts a comment.", outputs_note!()))]
+    Order(OrderArgs),
     /// Print a JSON Schema (draft 2020-12) of the scenario format, for editors
     /// that complete and check YAML files.
     #[command(after_help = "Examples:\n  \
@@ -96,6 +104,18 @@ enum Command {
         Point an editor at it with a first line in the scenario file:\n  \
         # yaml-language-server: $schema=scenario.schema.json")]
     Schema,
+}
+
+#[derive(Args)]
+struct OrderArgs {
+    /// The scenario file (YAML), e.g. scenarios/unbalanced-split.yaml.
+    scenario: PathBuf,
+    /// Write the order to PATH instead of standard output, e.g. --out 1f1b.order.
+    #[arg(long, value_name = "PATH|-")]
+    out: Option<PathBuf>,
+    /// Override a value of the scenario, e.g. --set pipeline.schedule=zb-h1.
+    #[arg(long = "set", value_name = "KEY=VALUE")]
+    sets: Vec<String>,
 }
 
 #[derive(Args)]
@@ -433,6 +453,8 @@ fn main() -> ExitCode {
                 finish(commands::layout(&r, &mut o), o)
             })
         }
+        Command::Order(a) => outputs(&[("--out", "order", &a.out)])
+            .and_then(|mut o| finish(commands::order(&a.scenario, &a.sets, &mut o), o)),
         Command::Merge(a) => outputs(&[("--csv", "CSV", &a.csv), json(&a.json, "JSON")])
             .and_then(|mut o| finish(commands::merge(&a.parts, &a.rank_by, a.top, &mut o), o)),
         Command::Schema => {

@@ -283,3 +283,30 @@ fn jitter_follows_the_seed() {
     assert_ne!(a, plain);
     assert_eq!(plain, step(&["seed=12"]), "without jitter the seed changes nothing");
 }
+
+#[test]
+fn order_writes_each_devices_ops_one_token_each() {
+    // 1F1B, p = 4, m = 8: device 0 warms up with p - 1 = 3 forwards, then
+    // alternates, then drains (Narayanan et al., ICML 2021, sec. 3.2).
+    let out = baton(&["order", "scenarios/unbalanced-split.yaml"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let order = text(&out.stdout);
+    let lines: Vec<&str> = order.lines().filter(|l| !l.starts_with('#')).collect();
+    assert_eq!(lines.len(), 4);
+    assert_eq!(lines[0], "0: F0 F1 F2 F3 B0 F4 B1 F5 B2 F6 B3 F7 B4 B5 B6 B7");
+    assert_eq!(lines[3], "3: F0 B0 F1 B1 F2 B2 F3 B3 F4 B4 F5 B5 F6 B6 F7 B7");
+    // A zero-bubble order has a W token per micro-batch; chunks carry `.c`.
+    let zb = text(&baton(&["order", "scenarios/unbalanced-split.yaml", "--set", "pipeline.schedule=zb-h1"]).stdout);
+    assert!(zb
+        .lines()
+        .filter(|l| !l.starts_with('#'))
+        .all(|l| l.split(' ').filter(|t| t.starts_with('W')).count() == 8));
+    let il = text(&baton(&["order", "scenarios/interleaved.yaml"]).stdout);
+    assert!(il.lines().any(|l| l.contains(" F0.1 ")), "{il}");
+    // --out writes the same text to a file, nothing on standard output.
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("o.order");
+    let out = baton(&["order", "scenarios/unbalanced-split.yaml", "--out", path.to_str().unwrap()]);
+    assert_eq!(out.status.code(), Some(0));
+    assert_eq!(std::fs::read_to_string(&path).unwrap(), order);
+}

@@ -672,6 +672,28 @@ fn interleaved(shape: Shape, d: u32) -> Vec<Op> {
     ops
 }
 
+/// `op` as a token of the order syntax: its kind's letter and micro-batch
+/// (`F3`, `B3`, `W3`), and with several chunks per device `.chunk`
+/// (`F3.1`).
+pub fn order_token(op: Op, shape: &Shape) -> String {
+    let chunk = op.stage / shape.stages.max(1);
+    if shape.chunks > 1 {
+        format!("{}{}.{chunk}", op.kind.letter(), op.micro_batch)
+    } else {
+        format!("{}{}", op.kind.letter(), op.micro_batch)
+    }
+}
+
+/// `plan` in the order syntax: one line per device, `<device>: tok tok ...`.
+pub fn order_text(plan: &Plan) -> String {
+    let mut out = String::new();
+    for (d, ops) in plan.per_device.iter().enumerate() {
+        let tokens: Vec<String> = ops.iter().map(|&op| order_token(op, &plan.shape)).collect();
+        out.push_str(&format!("{d}: {}\n", tokens.join(" ")));
+    }
+    out
+}
+
 /// Proves that `plan` is complete and can run to the end.
 ///
 /// Every device must hold each of its operations (one of each kind the shape
