@@ -250,6 +250,10 @@ proptest! {
         let fast = baton::simulate_fast(&s).unwrap().report.step_time_ns;
         let bound = baton::step_lower_bound_ns(&s);
         prop_assert!(bound <= full, "bound {} > step {}", bound, full);
+        // The bound the layout search prunes with holds for every split, so
+        // for this one too.
+        let any_split = baton::layout_lower_bound_ns(&s);
+        prop_assert!(any_split <= full, "layout bound {} > step {}", any_split, full);
         let gap = (fast as f64 - full as f64).abs() / full as f64;
         prop_assert!(gap < 0.05, "fast {} vs full {}: {:.2}%", fast, full, gap * 100.0);
     }
