@@ -404,15 +404,17 @@ pub fn merge(parts: &[PathBuf], rank_by: &str, top: usize, outputs: &mut Outputs
 }
 
 /// `baton compare`: outputs `--svg`, `--json`.
+#[allow(clippy::too_many_arguments)]
 pub fn compare(
     scenarios: &[PathBuf],
     sets: &[String],
+    vary: Option<&str>,
     comm_lanes: bool,
     max_memory: u64,
     view: View,
     outputs: &mut Outputs,
 ) -> Result<Done, CommandError> {
-    let runs = crate::compare::scenarios(scenarios, sets)?;
+    let runs = crate::compare::scenarios(scenarios, sets, vary)?;
     let making = Making { json: outputs.wants("--json"), trace: false, chart: outputs.wants("--svg") };
     let total: u64 = runs.iter().map(|c| crate::memory_estimate_bytes(&c.scenario, making)).sum();
     if let Some(largest) = runs.iter().max_by_key(|c| crate::memory_estimate_bytes(&c.scenario, making)) {
@@ -567,10 +569,17 @@ pub fn layout(r: &LayoutRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comm
 /// schedule, in the order syntax (`--out`, standard output by default).
 pub fn order(scenario: &Path, sets: &[String], outputs: &mut Outputs) -> Result<Done, CommandError> {
     let s = baton_scenario::load(scenario, sets)?;
-    let plan = baton_schedule::build(s.pipeline.schedule, s.shape()).map_err(crate::SimulateError::from)?;
+    // zb-auto's order is the one its simulation keeps.
+    let (plan, chosen) = if s.pipeline.schedule == baton_schedule::ScheduleKind::ZbAuto {
+        let step = crate::simulate(&s)?;
+        let chosen = step.report.schedule_choice.as_ref().map_or("", |c| c.chosen);
+        (step.trace.plan, format!(" (chose {chosen})"))
+    } else {
+        (crate::fixed_plan(&s)?, String::new())
+    };
     let shape = plan.shape;
     let mut text = format!(
-        "# {}: schedule {}, {} stages, {} micro-batches{}\n\
+        "# {}: schedule {}{chosen}, {} stages, {} micro-batches{}\n\
          # one line per device, <device>: its ops in order; F<i> forward, B<i> backward{}{}\n",
         s.title,
         s.pipeline.schedule.name(),

@@ -29,8 +29,11 @@ pub enum CompareError {
     #[error(transparent)]
     Scenario(#[from] ScenarioError),
     /// Fewer than two runs.
-    #[error("give two or more scenarios, or one with --set to compare it with a variant")]
+    #[error("give two or more scenarios, or one with --set to compare it with a variant, or --vary KEY=V1,V2")]
     TooFew,
+    /// `--vary` is not `KEY=V1,V2,...`.
+    #[error("--vary {0}: expected KEY=V1,V2,..., for example --vary pipeline.schedule=1f1b,zb-h1")]
+    Vary(String),
 }
 
 /// One run to compare.
@@ -44,9 +47,32 @@ pub struct Candidate {
 }
 
 /// The runs `baton compare` compares: each scenario with `sets` applied, or
-/// with a single scenario, it and its variant made by `sets`.
-pub fn scenarios(paths: &[PathBuf], sets: &[String]) -> Result<Vec<Candidate>, CompareError> {
+/// with a single scenario, it and its variant made by `sets`; with `vary`
+/// (`KEY=V1,V2,...`), each scenario once per value, `sets` applied to all.
+pub fn scenarios(paths: &[PathBuf], sets: &[String], vary: Option<&str>) -> Result<Vec<Candidate>, CompareError> {
     let mut runs = Vec::new();
+    if let Some(vary) = vary {
+        let (key, values) = vary.split_once('=').ok_or_else(|| CompareError::Vary(vary.to_string()))?;
+        let values: Vec<&str> = values.split(',').map(str::trim).collect();
+        if key.trim().is_empty() || values.iter().any(|v| v.is_empty()) {
+            return Err(CompareError::Vary(vary.to_string()));
+        }
+        for path in paths {
+            for v in &values {
+                let mut these = sets.to_vec();
+                these.push(format!("{}={v}", key.trim()));
+                runs.push(Candidate {
+                    source: format!("{} {}={v}", path.display(), key.trim()),
+                    scenario: baton_scenario::load(path, &these)?,
+                    note: crate::overrides_note(&these),
+                });
+            }
+        }
+        if runs.len() < 2 {
+            return Err(CompareError::TooFew);
+        }
+        return Ok(runs);
+    }
     let variant = paths.len() == 1 && !sets.is_empty();
     for (i, path) in paths.iter().enumerate() {
         let these: &[String] = if variant { &[] } else { sets };

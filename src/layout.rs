@@ -297,7 +297,7 @@ struct Ready {
     bound_ns: u64,
 }
 
-type SplitKey = (u32, u32, u32, u32, &'static str, Vec<u64>, u32);
+type SplitKey = (u32, u32, u32, u32, &'static str, Vec<Vec<(u64, u64)>>, u32);
 
 fn prepare(
     r: &Request<'_>,
@@ -311,7 +311,7 @@ fn prepare(
     let inputs = crate::planner::inputs(&s).map_err(|e| e.to_string())?;
     // The split depends on the cost table (t, b), the pipeline shape and the
     // stashes in flight (schedule, m), and with sharded state on d.
-    let plan = baton_schedule::build(s.pipeline.schedule, s.shape()).map_err(|e| e.to_string())?;
+    let holds = crate::memory_holds(&s).map_err(|e| e.to_string())?;
     let shard_d = if s.training.shard == baton_scenario::Shard::None { 0 } else { layout.data };
     let key: SplitKey = (
         layout.tensor,
@@ -319,7 +319,7 @@ fn prepare(
         layout.pipeline,
         layout.chunks,
         layout.schedule.name(),
-        baton_schedule::peak_stashes(&plan),
+        holds,
         shard_d,
     );
     let cached = splits.lock().map_err(|_| "a split search failed".to_string())?.get(&key).cloned();

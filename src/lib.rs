@@ -59,7 +59,7 @@ impl SimulateError {
 
 /// Per-virtual-stage costs of a scenario's split.
 pub fn stage_costs(s: &Scenario) -> Vec<StageCost> {
-    let split = s.pipeline.schedule.splits_backward();
+    let split = s.shape().split_backward;
     s.pieces()
         .iter()
         .map(|p| {
@@ -151,6 +151,7 @@ pub fn memory_inputs(s: &Scenario) -> MemoryInputs {
     let t = s.parallel.tensor.max(1) as usize;
     MemoryInputs {
         stash_bytes: pieces.iter().map(|x| x.stash_bytes).collect(),
+        weight_stash_bytes: pieces.iter().map(|x| x.weight_stash_bytes).collect(),
         state_bytes: (0..s.parallel.data)
             .flat_map(|_| per_device.iter().flat_map(|&b| std::iter::repeat_n(b, t)))
             .collect(),
@@ -291,7 +292,7 @@ pub fn piece_segments(s: &Scenario, k: usize) -> ([Vec<Segment>; 3], Vec<u32>) {
         }
     }
     // A schedule that runs W apart leaves it out of B (W is plain compute).
-    let split = s.pipeline.schedule.splits_backward();
+    let split = s.shape().split_backward;
     let mut done = vec![0; layers.len()];
     for (i, l) in layers.iter().enumerate().rev() {
         let ns = if split { l.backward_ns - l.weight_ns.min(l.backward_ns) } else { l.backward_ns };
@@ -860,28 +861,153 @@ pub fn simulate_fast(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
     if s.parallel.tensor <= 1 && !mirror {
         return simulate(s);
     }
-    play(s, tensor_config_fast(s), mirror)
+    play(s, true, mirror)
 }
 
-/// Plays `s` with these tensor groups, replica 0 alone when `one_replica`.
-fn play(s: &Scenario, tensor: Option<TensorConfig>, one_replica: bool) -> Result<SimulatedStep, SimulateError> {
-    let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
+/// The plan `s` runs, for every schedule but `zb-auto` (whose order depends
+/// on the costs and is chosen by simulation in [`simulate`]): the built-in
+/// order, or the one read from `pipeline.order`.
+pub fn fixed_plan(s: &Scenario) -> Result<baton_schedule::Plan, SimulateError> {
+    match &s.pipeline.order {
+        Some((_, plan)) => Ok(plan.as_ref().clone()),
+        None => Ok(baton_schedule::build(s.pipeline.schedule, s.shape())?),
+    }
+}
+
+/// What each virtual stage of `s` may hold at once, for memory prices
+/// ([`baton_schedule::peak_holds`]); for `zb-auto`, whose order is chosen
+/// later, anything within `pipeline.max_in_flight` micro-batches held for
+/// either B or W.
+pub fn memory_holds(s: &Scenario) -> Result<Vec<Vec<(u64, u64)>>, SimulateError> {
+    if s.pipeline.schedule == baton_schedule::ScheduleKind::ZbAuto {
+        let limit = s.pipeline.max_in_flight as u64;
+        return Ok(vec![vec![(limit, 0), (0, limit)]; s.shape().virtual_stages() as usize]);
+    }
+    Ok(baton_schedule::peak_holds(&fixed_plan(s)?))
+}
+
+/// The costs `zb-auto` builds its orders for: each stage's F, B and W on
+/// one device of its group (tensor all-reduces at their uncontended ring
+/// time), and each boundary's transfer at its route's latency plus the
+/// activation at the route's narrowest link, between replica 0's devices.
+pub fn auto_costs(s: &Scenario) -> baton_schedule::auto::Costs {
+    let costs = stage_costs(s);
+    let topology = topology(s);
+    let p = s.pipeline.stages as usize;
+    let t = s.parallel.tensor.max(1);
+    let tensor = tensor_config_fast(s);
+    let comm_of = |k: usize, kind: usize| -> u64 {
+        tensor.as_ref().map_or(0, |c| {
+            c.segments[k][kind].iter().map(|x| if let Segment::AllReduce(ns) = x { *ns } else { 0 }).sum::<u64>()
+        })
+    };
+    let mut forward = vec![0u64; p];
+    let mut backward = vec![0u64; p];
+    let mut weight = vec![0u64; p];
+    for (k, c) in costs.iter().enumerate() {
+        forward[k % p] += c.forward.as_ns() + comm_of(k, 0);
+        backward[k % p] += c.backward.as_ns() + comm_of(k, 1);
+        weight[k % p] += c.weight.as_ns();
+    }
+    let comm = (0..p)
+        .map(|k| {
+            if k + 1 >= p {
+                return 0;
+            }
+            let (a, b) = (k as u32 * t, (k as u32 + 1) * t);
+            let bytes = costs.get(k).map_or(0, |c| c.send_bytes);
+            let slowest = topology.route(a, b).iter().map(|&l| topology.link(l).bytes_per_s).min();
+            let push = slowest.map_or(0, |bw| {
+                if bw == LinkSpec::UNLIMITED {
+                    0
+                } else {
+                    (bytes as u128 * 1_000_000_000).div_ceil(bw as u128).min(u64::MAX as u128) as u64
+                }
+            });
+            topology.route_latency(a, b).as_ns().saturating_add(push)
+        })
+        .collect();
+    baton_schedule::auto::Costs { forward, backward, weight, comm }
+}
+
+/// Plays `s` with these tensor groups, replica 0 alone when `one_replica`;
+/// for `zb-auto`, plays each of its candidate orders and keeps the fastest
+/// (the first of equals), noting the choice in the report.
+fn play(s: &Scenario, fast: bool, one_replica: bool) -> Result<SimulatedStep, SimulateError> {
+    let tensor_of = |x: &Scenario| if fast { tensor_config_fast(x) } else { tensor_config(x) };
+    if s.pipeline.schedule != baton_schedule::ScheduleKind::ZbAuto {
+        return play_plan(s, fixed_plan(s)?, tensor_of(s).as_ref(), one_replica);
+    }
+    let costs = auto_costs(s);
+    let shape = s.shape();
+    let mut tried = Vec::new();
+    let mut best: Option<SimulatedStep> = None;
+    let mut chosen = "";
+    for c in baton_schedule::auto::candidates(shape, &costs, s.pipeline.max_in_flight) {
+        let step = if c.plan.shape.split_backward {
+            play_plan(s, c.plan, tensor_of(s).as_ref(), one_replica)?
+        } else {
+            // The fused order runs the scenario as 1F1B (B and W in one op).
+            let mut fused = s.clone();
+            fused.pipeline.schedule = baton_schedule::ScheduleKind::OneFOneB;
+            let mut step = play_plan(&fused, c.plan, tensor_of(&fused).as_ref(), one_replica)?;
+            step.trace.plan.kind = baton_schedule::ScheduleKind::ZbAuto;
+            step.report.schedule = baton_schedule::ScheduleKind::ZbAuto.name().to_string();
+            step
+        };
+        let ns = step.report.step_time_ns;
+        tried.push(baton_report::Tried { order: c.name, step_ms: baton_report::ms(ns) });
+        if best.as_ref().is_none_or(|b| ns < b.report.step_time_ns) {
+            best = Some(step);
+            chosen = c.name;
+        }
+    }
+    let mut best = best.ok_or(baton_schedule::ScheduleError::Zero { what: "max_in_flight" })?;
+    let busiest_ns = best
+        .trace
+        .ops
+        .iter()
+        .map(|recs| {
+            recs.iter()
+                .filter(|r| !r.op.kind.is_device_work())
+                .map(|r| r.end.saturating_since(r.start).as_ns())
+                .sum::<u64>()
+        })
+        .max()
+        .unwrap_or(0);
+    let step_ns = best.report.step_time_ns;
+    best.report.schedule_choice = Some(baton_report::ScheduleChoice {
+        chosen,
+        tried,
+        max_in_flight: s.pipeline.max_in_flight,
+        busiest_work_ms: baton_report::ms(busiest_ns),
+        above_work_ms: baton_report::ms(step_ns.saturating_sub(busiest_ns)),
+        above_work_pct: if busiest_ns == 0 {
+            0.0
+        } else {
+            100.0 * step_ns.saturating_sub(busiest_ns) as f64 / busiest_ns as f64
+        },
+    });
+    Ok(best)
+}
+
+/// Plays `plan` for `s`.
+fn play_plan(
+    s: &Scenario,
+    plan: baton_schedule::Plan,
+    tensor: Option<&TensorConfig>,
+    one_replica: bool,
+) -> Result<SimulatedStep, SimulateError> {
     let variation =
         RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends, one_replica };
     let sync = sync_config(s);
-    let trace = baton_executor::simulate_parallel(
-        plan,
-        &stage_costs(s),
-        topology(s),
-        variation,
-        sync.as_ref(),
-        tensor.as_ref(),
-    )?;
+    let trace =
+        baton_executor::simulate_parallel(plan, &stage_costs(s), topology(s), variation, sync.as_ref(), tensor)?;
     let report = baton_report::build(&trace, &labels(s));
     Ok(SimulatedStep { trace, report })
 }
 
 /// Simulates one training step of `s` and reports on it.
 pub fn simulate(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
-    play(s, tensor_config(s), false)
+    play(s, false, false)
 }

@@ -254,6 +254,10 @@ struct CompareArgs {
     /// to all. E.g. --set pipeline.schedule=interleaved --set pipeline.chunks=2.
     #[arg(long = "set", value_name = "KEY=VALUE")]
     sets: Vec<String>,
+    /// One run per value of a key, the rest of the scenario (and any --set)
+    /// alike, e.g. --vary pipeline.schedule=1f1b,zb-h1,zb-h2,zb-auto.
+    #[arg(long, value_name = "KEY=V1,V2,...")]
+    vary: Option<String>,
     /// Leave the communication lanes out of the chart, e.g. --no-comm-lanes.
     #[arg(long)]
     no_comm_lanes: bool,
@@ -468,7 +472,18 @@ fn main() -> ExitCode {
             };
         }
         Command::Compare(a) => outputs(&[svg(&a.svg), json(&a.json, "JSON")]).and_then(|mut o| {
-            finish(commands::compare(&a.scenarios, &a.sets, !a.no_comm_lanes, a.max_memory, a.chart.view(), &mut o), o)
+            finish(
+                commands::compare(
+                    &a.scenarios,
+                    &a.sets,
+                    a.vary.as_deref(),
+                    !a.no_comm_lanes,
+                    a.max_memory,
+                    a.chart.view(),
+                    &mut o,
+                ),
+                o,
+            )
         }),
     };
     match result {

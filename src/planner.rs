@@ -26,12 +26,14 @@ use crate::{simulate, SimulateError, SimulatedStep};
 pub const MAX_SEARCH_SIMULATIONS: usize = 2_000;
 
 /// A scenario's pieces as the split search prices them: time from the
-/// scenario's piece rule, memory = model state + stash x the micro-batches
-/// the schedule keeps in flight on the piece ([`baton_schedule::peak_stashes`]).
+/// scenario's piece rule, memory = model state + the most the schedule holds
+/// at once on the piece: stashes of micro-batches between F and B plus, with
+/// a split backward, weight stashes between B and W
+/// ([`crate::memory_holds`]).
 #[derive(Clone, Debug)]
 pub struct ScenarioPieces {
     costs: PieceCosts,
-    in_flight: Vec<u64>,
+    holds: Vec<Vec<(u64, u64)>>,
     state: crate::StatePrice,
 }
 
@@ -44,10 +46,15 @@ impl Pieces for ScenarioPieces {
     }
     fn bytes(&self, k: usize, a: usize, b: usize) -> u128 {
         let state = self.state.bytes(self.costs.params(k, a, b));
-        state + self.in_flight[k] as u128 * self.costs.stash_bytes(a, b)
+        state
+            + baton_schedule::held_bytes(
+                &self.holds[k],
+                self.costs.stash_bytes(a, b),
+                self.costs.weight_stash_bytes(a, b),
+            )
     }
     fn position_independent(&self) -> bool {
-        self.costs.position_independent() && self.in_flight.windows(2).all(|w| w[0] == w[1])
+        self.costs.position_independent() && self.holds.windows(2).all(|w| w[0] == w[1])
     }
 }
 
@@ -69,11 +76,10 @@ impl SplitInputs {
 
 /// The split problem a scenario poses.
 pub fn inputs(s: &Scenario) -> Result<SplitInputs, SimulateError> {
-    let plan = baton_schedule::build(s.pipeline.schedule, s.shape())?;
     Ok(SplitInputs {
         pieces: ScenarioPieces {
             costs: s.piece_costs(),
-            in_flight: baton_schedule::peak_stashes(&plan),
+            holds: crate::memory_holds(s)?,
             state: crate::StatePrice::of(s),
         },
         devices: s.pipeline.stages as usize,

@@ -20,9 +20,10 @@ struct Case {
 }
 
 fn case() -> impl Strategy<Value = Case> {
-    (1u32..6, 1u32..5, 0usize..3, 1u32..4, 0u32..3, 0u32..20_000, 1u32..200).prop_flat_map(
+    (1u32..6, 1u32..5, 0usize..6, 1u32..4, 0u32..3, 0u32..20_000, 1u32..200).prop_flat_map(
         |(p, mult, k, v, extra, latency_ns, gbps)| {
-            let schedule = ["fill-drain", "1f1b", "interleaved"][k];
+            // Every schedule baton builds (ScheduleKind::ALL).
+            let schedule = ["fill-drain", "1f1b", "interleaved", "zb-h1", "zb-h2", "zb-auto"][k];
             let (m, v) = if schedule == "interleaved" { (p * mult, v) } else { (p * mult + extra, 1) };
             let pieces = (p * v) as usize;
             // Forward 1..200 us, backward 0..400 us, activation 0..8 MB.
@@ -70,8 +71,17 @@ proptest! {
             }
             for r in recs {
                 // Duration is the piece's cost.
+                // (A split backward's B is the backward less W, half of it
+                // here since no layer gives `weight`.)
                 let piece = &s.pieces()[r.op.stage as usize];
-                let want = if r.op.kind == OpKind::Forward { piece.forward_ns } else { piece.backward_ns };
+                let split = trace.plan.shape.split_backward;
+                let w = s.layers[piece.first_layer..piece.first_layer + piece.layers].iter().map(|l| l.backward_ns / 2).sum::<u64>();
+                let want = match r.op.kind {
+                    OpKind::Forward => piece.forward_ns,
+                    OpKind::Backward if split => piece.backward_ns - w,
+                    OpKind::Backward => piece.backward_ns,
+                    _ => w,
+                };
                 prop_assert_eq!(r.end.as_ns() - r.start.as_ns(), want);
                 // Dependencies: data available before start; transfers start when
                 // the producer ends and take at least the latency.
@@ -89,6 +99,10 @@ proptest! {
                     let (_, f) = trace.record(baton::schedule::Op::forward(r.op.micro_batch, r.op.stage));
                     prop_assert!(f.end <= r.start);
                 }
+                if r.op.kind == OpKind::Weight {
+                    let (_, b) = trace.record(baton::schedule::Op::backward(r.op.micro_batch, r.op.stage));
+                    prop_assert!(b.end <= r.start);
+                }
             }
         }
 
@@ -102,7 +116,8 @@ proptest! {
                 match r.op.kind {
                     OpKind::Forward => e.0 = e.0.min(r.start.as_ns()),
                     OpKind::Backward => e.1 = e.1.max(r.end.as_ns()),
-                    OpKind::Weight => prop_assert!(false, "these schedules fuse the backward pass"),
+                    // Held until its input-gradient pass ends (peak_activations).
+                    OpKind::Weight => {}
                     OpKind::Encode | OpKind::Update => prop_assert!(false, "no synchronisation here"),
                 }
             }

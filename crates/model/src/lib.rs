@@ -65,6 +65,10 @@ pub struct LayerCost {
     /// zero-bubble schedules; the rest of `backward_ns` is the input
     /// gradient (B).
     pub weight_ns: u64,
+    /// Bytes a split backward keeps per micro-batch from the end of B until
+    /// the end of W: what the weight-gradient products still need (their
+    /// inputs and output gradients). The cautious default is the whole stash.
+    pub weight_stash_bytes: u64,
 }
 
 impl LayerCost {
@@ -82,6 +86,7 @@ impl LayerCost {
             forward_split: (1, 2),
             backward_split: (1, 2),
             weight_ns: backward_ns / 2,
+            weight_stash_bytes: activation_bytes,
         }
     }
 
@@ -98,6 +103,7 @@ impl LayerCost {
             weight_ns: self.weight_ns.div_ceil(t).min(self.backward_ns.div_ceil(t)),
             activation_bytes: self.activation_bytes.div_ceil(t),
             stash_bytes: self.stash_bytes.div_ceil(t),
+            weight_stash_bytes: self.weight_stash_bytes.div_ceil(t),
             params: self.params.div_ceil(t),
             tied_params: self.tied_params.div_ceil(t),
             ..self.clone()
@@ -203,7 +209,7 @@ impl Transformer {
     }
 
     /// Projection matrices of the feed-forward block: 3 when gated, else 2.
-    fn ffn_matrices(&self) -> u64 {
+    pub fn ffn_matrices(&self) -> u64 {
         if self.gated_ffn {
             3
         } else {
@@ -324,6 +330,25 @@ impl Transformer {
         ((s * b * per_position + scores) * self.bytes_per_value as u128 / 2) as u64
     }
 
+    /// Bytes one transformer layer keeps for its weight-gradient pass (W)
+    /// from the end of its input-gradient pass (B), for `b` sequences: each
+    /// weight product's input and its output's gradient, per position
+    /// `6 h + 2 w + n f` values (`n` = [`Transformer::ffn_matrices`]): the
+    /// query/key/value projection's input `h` and output gradient `h + 2 w`,
+    /// the output projection's input `h` and output gradient `h`, the FFN's
+    /// input `h` (shared by its `n - 1` input matrices), their output
+    /// gradients `(n - 1) f`, the last matrix's input `f` and output gradient
+    /// `h`. In the original (`w = h`, `f = 4 h`, `n = 2`) that is `16 h`
+    /// values, `32 s b h` bytes at 2 bytes a value, against eq. 1's
+    /// `s b h (34 + 5 a s / h)` for the whole stash. Derived from the layer's
+    /// matrix shapes (the products whose weights W differentiates); the
+    /// score products and element-wise operations need nothing in W.
+    pub fn layer_weight_stash_bytes(&self, b: u64) -> u64 {
+        let (s, b, h) = (self.seq_len as u128, b as u128, self.hidden as u128);
+        let (w, f, n) = (self.kv_width() as u128, self.ffn_hidden as u128, self.ffn_matrices() as u128);
+        (s * b * (6 * h + 2 * w + n * f) * self.bytes_per_value as u128).min(u64::MAX as u128) as u64
+    }
+
     /// FLOPs of one transformer layer's weight-gradient pass (W) for `b`
     /// sequences: each weight product's gradient costs what the product
     /// does, `4 b s h^2 + 4 b s h w + 2 n b s h f` (`24 b s h^2` in the
@@ -404,6 +429,9 @@ impl Transformer {
             let mut r = l.per_tensor_rank(t);
             if let Some(st) = whole_stash {
                 r.stash_bytes = st;
+                if l.name == "logits" {
+                    r.weight_stash_bytes = st;
+                }
             }
             *l = r;
         }
@@ -432,6 +460,7 @@ impl Transformer {
         let mlp_back = 2.0 * (f - attention);
         out.push(LayerCost {
             stash_bytes: 0,
+            weight_stash_bytes: 0,
             params: self.embedding_params(),
             ..LayerCost::new("embedding", 0, 0, boundary)
         });
@@ -448,10 +477,12 @@ impl Transformer {
                 forward_split: (attention.round() as u64, f.round() as u64),
                 backward_split: (mlp_back.round() as u64, back.round() as u64),
                 weight_ns: speed.time_ns(self.weight_gradient_flops(b)).min(speed.time_ns(back)),
+                weight_stash_bytes: self.layer_weight_stash_bytes(b),
             });
         }
         out.push(LayerCost {
             stash_bytes: boundary + logits_bytes,
+            weight_stash_bytes: boundary + logits_bytes,
             params: self.logit_params(),
             tied_params: self.tied_params(),
             ..LayerCost::new("logits", speed.time_ns(logit), speed.time_ns(2.0 * logit), logits_bytes)

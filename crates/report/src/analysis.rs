@@ -349,6 +349,38 @@ pub struct Report {
     pub gaps: Vec<Gap>,
     /// Every gradient collective, in the order they started.
     pub collectives: Vec<CollectiveReport>,
+    /// `zb-auto` only: the order it chose among those it tried, and how far
+    /// the step is above the busiest device's total work (a lower bound).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub schedule_choice: Option<ScheduleChoice>,
+}
+
+/// One order `zb-auto` tried and its simulated step.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Tried {
+    /// The order's name (`greedy`, `greedy-fit`, `zb-h1`, `zb-h2`,
+    /// `1f1b-split`, `1f1b`).
+    pub order: &'static str,
+    /// Its step time in milliseconds.
+    pub step_ms: f64,
+}
+
+/// What `zb-auto` chose.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct ScheduleChoice {
+    /// The order it kept: the fastest (the first of equals).
+    pub chosen: &'static str,
+    /// Every order it tried, in order.
+    pub tried: Vec<Tried>,
+    /// The limit on micro-batches a device holds at once.
+    pub max_in_flight: u32,
+    /// The busiest device's total work (its F, B and W passes), in
+    /// milliseconds: no order can take less.
+    pub busiest_work_ms: f64,
+    /// The step time above that bound, in milliseconds.
+    pub above_work_ms: f64,
+    /// The same as a percentage of the bound.
+    pub above_work_pct: f64,
 }
 
 impl Report {
@@ -358,7 +390,8 @@ impl Report {
     }
 }
 
-fn ms(ns: u64) -> f64 {
+/// Nanoseconds as milliseconds, as every `_ms` field shows them.
+pub fn ms(ns: u64) -> f64 {
     ns as f64 / 1e6
 }
 
@@ -390,6 +423,10 @@ pub struct MemoryInputs {
     /// Bytes each micro-batch holds on each virtual stage, from its forward's
     /// start to its backward's end. Empty: no activation memory.
     pub stash_bytes: Vec<u64>,
+    /// With a split backward: bytes each micro-batch holds on each virtual
+    /// stage from its backward's (B's) end to its weight pass's end. Empty
+    /// or short: nothing.
+    pub weight_stash_bytes: Vec<u64>,
     /// Model-state bytes per device.
     pub state_bytes: Vec<u64>,
     /// Bytes every device keeps aside.
@@ -400,38 +437,39 @@ pub struct MemoryInputs {
 
 /// Activation bytes held on device `d` over time: `(time, bytes held from
 /// then on)` at every change, in time order (several changes at one time are
-/// all listed; the last is what holds after it).
-pub fn activation_timeline(trace: &Trace, stash_bytes: &[u64], d: usize) -> Vec<(SimTime, u64)> {
-    // Forward starts and backward ends each come in time order (one op at a
-    // time per device): merge them, releases first at equal times.
-    let stash = |stage: u32| stash_bytes.get(stage as usize).copied().unwrap_or(0);
+/// all listed; the last is what holds after it). A micro-batch's stash is
+/// held from its forward's start to its backward's end; with a split
+/// backward, its weight stash from that end to its weight pass's end.
+pub fn activation_timeline(trace: &Trace, memory: &MemoryInputs, d: usize) -> Vec<(SimTime, u64)> {
+    let size = |v: &[u64], stage: u32| v.get(stage as usize).copied().unwrap_or(0);
     let recs = &trace.ops[d];
-    let mut acquire = recs
-        .iter()
-        .filter(|r| r.op.kind.stash() == Stash::TakeAtStart)
-        .map(|r| (r.start, stash(r.op.stage)))
-        .peekable();
-    let mut release =
-        recs.iter().filter(|r| r.op.kind.stash() == Stash::FreeAtEnd).map(|r| (r.end, stash(r.op.stage))).peekable();
-    let mut held = 0u64;
-    let mut out = Vec::with_capacity(recs.len() + 1);
-    out.push((trace.start(), 0));
-    loop {
-        let take_release = match (acquire.peek(), release.peek()) {
-            (None, None) => break,
-            (Some(_), None) => false,
-            (None, Some(_)) => true,
-            (Some(a), Some(r)) => r.0 <= a.0,
-        };
-        if take_release {
-            let Some((t, b)) = release.next() else { break };
-            held = held.saturating_sub(b);
-            out.push((t, held));
-        } else {
-            let Some((t, b)) = acquire.next() else { break };
-            held += b;
-            out.push((t, held));
+    let split = trace.plan.shape.split_backward;
+    // Every change as (time, release first, +/- bytes), in op order; a
+    // stable sort by time with releases first at equal times keeps op order
+    // among equals (so a fused plan lists exactly what it always did).
+    let mut changes: Vec<(SimTime, bool, u64, bool)> = Vec::with_capacity(2 * recs.len());
+    for r in recs {
+        match r.op.kind.stash() {
+            Stash::TakeAtStart => changes.push((r.start, false, size(&memory.stash_bytes, r.op.stage), true)),
+            Stash::FreeAtEnd => changes.push((r.end, true, size(&memory.stash_bytes, r.op.stage), false)),
+            Stash::Keep => {}
         }
+        if split {
+            let w = size(&memory.weight_stash_bytes, r.op.stage);
+            match r.op.kind {
+                baton_schedule::OpKind::Backward => changes.push((r.end, false, w, true)),
+                baton_schedule::OpKind::Weight => changes.push((r.end, true, w, false)),
+                _ => {}
+            }
+        }
+    }
+    changes.sort_by_key(|&(t, release, _, _)| (t, !release));
+    let mut held = 0u64;
+    let mut out = Vec::with_capacity(changes.len() + 1);
+    out.push((trace.start(), 0));
+    for (t, _, bytes, take) in changes {
+        held = if take { held.saturating_add(bytes) } else { held.saturating_sub(bytes) };
+        out.push((t, held));
     }
     out
 }
@@ -462,7 +500,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         let peak_activation_bytes = if mem.stash_bytes.is_empty() {
             0
         } else {
-            activation_timeline(trace, &mem.stash_bytes, d).iter().map(|&(_, b)| b).max().unwrap_or(0)
+            activation_timeline(trace, mem, d).iter().map(|&(_, b)| b).max().unwrap_or(0)
         };
         let state_bytes = mem.state_bytes.get(d).copied().unwrap_or(0);
         let peak_memory_bytes = state_bytes.saturating_add(mem.reserved_bytes).saturating_add(peak_activation_bytes);
@@ -564,6 +602,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
             .collect(),
         gaps,
         collectives,
+        schedule_choice: None,
     }
 }
 

@@ -48,6 +48,24 @@ pub fn render(report: &Report, options: &TextOptions) -> String {
         report.seed,
         if report.jitter > 0.0 { format!(", compute jitter +-{}%", report.jitter * 100.0) } else { String::new() }
     );
+    if let Some(c) = &report.schedule_choice {
+        let tried: Vec<String> =
+            c.tried.iter().map(|t| format!("{} {}", t.order, format_ns((t.step_ms * 1e6).round() as u64))).collect();
+        let _ = writeln!(
+            s,
+            "zb-auto chose {} (at most {} micro-batches in flight per device; tried {})",
+            c.chosen,
+            c.max_in_flight,
+            tried.join(", ")
+        );
+        let _ = writeln!(
+            s,
+            "  the step is {} ({:.1}%) above the busiest device's total work, {}",
+            format_ns((c.above_work_ms * 1e6).round() as u64),
+            c.above_work_pct,
+            format_ns((c.busiest_work_ms * 1e6).round() as u64)
+        );
+    }
     let replicas = report.parallel.data;
     let tensor = report.parallel.tensor;
     if replicas > 1 || tensor > 1 {

@@ -200,6 +200,7 @@ pub const LAYER: &[Key] = &[
     with_default("tied_params", Type::Count, Default::Whole(0), "Parameters the layer shares with the first layer (tied weights); a device other than device 0 that runs it keeps its own copy."),
     with_default("tensor_bytes", Type::Quantity(Unit::Size), Default::Text("0B"), "With parallel.tensor > 1: bytes of each of the layer's two all-reduces per pass (forward and backward)."),
     key("weight", Type::Quantity(Unit::Duration), "The weight-gradient part (W) of backward, run apart by the zero-bubble schedules; half of backward when left out (the zero-bubble paper's working assumption)."),
+    key("weight_stash", Type::Quantity(Unit::Size), "With a split backward: bytes kept per micro-batch from the end of B until the end of W (the weight products' inputs and output gradients); the whole stash when left out (the cautious choice)."),
 ];
 
 /// `model.transformer`.
@@ -302,8 +303,18 @@ pub const PIPELINE: &[Key] = &[
     required("micro_batches", whole(1, u32::MAX as i64), "m: micro-batches per step."),
     required(
         "schedule",
-        Type::Choice(&["fill-drain", "1f1b", "interleaved", "zb-h1", "zb-h2"]),
-        "The pipeline schedule.",
+        Type::Choice(&["fill-drain", "1f1b", "interleaved", "zb-h1", "zb-h2", "zb-auto", "custom"]),
+        "The pipeline schedule; custom reads each device's order from pipeline.order.",
+    ),
+    key(
+        "order",
+        Type::Path,
+        "With schedule custom: a text file of each device's order, one line per device (`0: F0 F1 B0 ...`; see baton order), relative to the scenario file.",
+    ),
+    key(
+        "max_in_flight",
+        whole(1, u32::MAX as i64),
+        "zb-auto: most micro-batches a device holds at once (from a forward's start to the end of its last backward op); stages (1F1B's peak) when left out.",
     ),
     with_default(
         "chunks",
@@ -501,6 +512,6 @@ mod tests {
         for n in *names {
             assert!(n.parse::<baton_schedule::ScheduleKind>().is_ok(), "{n}");
         }
-        assert_eq!(names.len(), baton_schedule::ScheduleKind::ALL.len());
+        assert_eq!(names.len(), baton_schedule::ScheduleKind::NAMED.len());
     }
 }

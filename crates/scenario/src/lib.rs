@@ -287,6 +287,12 @@ pub struct Pipeline {
     pub micro_batch_size: u32,
     /// A device waits for each of its sends to arrive before its next op.
     pub blocking_sends: bool,
+    /// With `schedule: custom`: the order read from `pipeline.order`, and
+    /// the file it came from.
+    pub order: Option<(PathBuf, std::sync::Arc<baton_schedule::Plan>)>,
+    /// `zb-auto`'s limit on micro-batches a device holds at once
+    /// (`pipeline.max_in_flight`; `stages` when left out).
+    pub max_in_flight: u32,
 }
 
 /// A validated scenario.
@@ -328,6 +334,9 @@ impl Scenario {
     /// The pipeline's shape for the schedule crate (the backward split when
     /// the schedule runs W apart).
     pub fn shape(&self) -> Shape {
+        if let Some((_, plan)) = &self.pipeline.order {
+            return plan.shape;
+        }
         Shape {
             split_backward: self.pipeline.schedule.splits_backward(),
             ..Shape::new(self.pipeline.stages, self.pipeline.micro_batches, self.pipeline.chunks)
@@ -392,6 +401,18 @@ pub enum ScenarioError {
         /// Column (1-based).
         column: u32,
         /// What the parser said.
+        message: String,
+    },
+    /// A custom order file is refused (`pipeline.order`).
+    #[error("{file}:{line}:{col}: pipeline.order: {message}")]
+    Order {
+        /// The order file.
+        file: String,
+        /// Line (1-based).
+        line: usize,
+        /// Column (1-based).
+        col: usize,
+        /// What is wrong, in the order's terms.
         message: String,
     },
     /// A key's value is refused.
@@ -844,6 +865,7 @@ fn scale_layers(layers: &mut [LayerCost], from: u32, to: u32) {
         l.backward_ns = scale(l.backward_ns);
         l.activation_bytes = scale(l.activation_bytes);
         l.stash_bytes = scale(l.stash_bytes);
+        l.weight_stash_bytes = scale(l.weight_stash_bytes);
         l.tensor_bytes = scale(l.tensor_bytes);
         l.weight_ns = scale(l.weight_ns).min(l.backward_ns);
     }
@@ -876,7 +898,7 @@ fn from_tree(
         scale_layers(&mut layers, written_micro_batch_size.max(1), micro_batch_size);
     }
     let training = top.opt("training", read_training)?.unwrap_or_default();
-    let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster))?;
+    let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster, base_dir))?;
     let parallel = top.opt("parallel", |p| read_parallel(p, &cluster, pipeline.stages, &source))?.unwrap_or_default();
     let tensor_layers = tensor_layers(&layers, &source, &cluster, &parallel, micro_batch_size);
     let gradients = top.opt("gradients", read_gradients)?.unwrap_or_default();
@@ -1534,6 +1556,7 @@ fn read_layers(list: Field<'_>) -> Result<Vec<LayerCost>, ScenarioError> {
         let backward_ns = m.opt("backward", |a| a.duration_ns())?.unwrap_or(forward_ns.saturating_mul(2));
         let activation_bytes = m.req("activation", |a| a.bytes())?;
         let stash_bytes = m.opt("stash", |a| a.bytes())?.unwrap_or(activation_bytes);
+        let weight_stash_bytes = m.opt("weight_stash", |a| a.bytes())?.unwrap_or(stash_bytes);
         let params = m.opt("params", |a| a.count())?.unwrap_or(0);
         let tied_params = m.opt("tied_params", |a| a.count())?.unwrap_or(0);
         let tensor_bytes = m.opt("tensor_bytes", |a| a.bytes())?.unwrap_or(0);
@@ -1556,6 +1579,7 @@ fn read_layers(list: Field<'_>) -> Result<Vec<LayerCost>, ScenarioError> {
             let name = if repeat > 1 { format!("{name}.{r}") } else { name.clone() };
             layers.push(LayerCost {
                 stash_bytes,
+                weight_stash_bytes,
                 params,
                 tied_params,
                 tensor_bytes,
@@ -1567,7 +1591,12 @@ fn read_layers(list: Field<'_>) -> Result<Vec<LayerCost>, ScenarioError> {
     Ok(layers)
 }
 
-fn read_pipeline(p: Field<'_>, layers: &[LayerCost], cluster: &Cluster) -> Result<Pipeline, ScenarioError> {
+fn read_pipeline(
+    p: Field<'_>,
+    layers: &[LayerCost],
+    cluster: &Cluster,
+    base_dir: &Path,
+) -> Result<Pipeline, ScenarioError> {
     let m = p.map(keys::PIPELINE)?;
     let micro_batch_size = m.opt("micro_batch_size", |a| a.whole().map(|v| v as u32))?.unwrap_or(1);
     let blocking_sends = m.opt("blocking_sends", |a| a.boolean())?.unwrap_or(false);
@@ -1633,7 +1662,57 @@ fn read_pipeline(p: Field<'_>, layers: &[LayerCost], cluster: &Cluster) -> Resul
         };
         p.cx.err(&join(p.path, key), &field_origin(key), e.to_string())
     })?;
-    Ok(Pipeline { stages, split, micro_batches, schedule, chunks, micro_batch_size, blocking_sends })
+    let max_in_flight = m.opt("max_in_flight", |a| a.whole().map(|v| v as u32))?.unwrap_or(stages);
+    if m.get("max_in_flight").is_some() && schedule != ScheduleKind::ZbAuto {
+        return Err(p.cx.err(
+            &join(p.path, "max_in_flight"),
+            &field_origin("max_in_flight"),
+            format!("applies to schedule zb-auto only, but the schedule is {schedule}"),
+        ));
+    }
+    let order =
+        match (schedule, m.get("order")) {
+            (ScheduleKind::Custom, None) => return Err(p.cx.err(
+                &join(p.path, "schedule"),
+                &field_origin("schedule"),
+                "custom needs pipeline.order, a file of each device's order (`baton order` writes one to start from)",
+            )),
+            (ScheduleKind::Custom, Some(_)) => Some(m.req("order", |a| {
+                let rel = a.str()?;
+                let path = base_dir.join(rel);
+                let bytes = std::fs::read(&path).map_err(|e| a.err(format!("cannot read {}: {e}", path.display())))?;
+                let file = path.display().to_string();
+                let text = node::utf8_text(&bytes).map_err(|(line, byte)| ScenarioError::Order {
+                    file: file.clone(),
+                    line: line as usize,
+                    col: byte,
+                    message: "is not UTF-8 text; save the order as UTF-8".into(),
+                })?;
+                let parsed = baton_schedule::order::parse(text, stages, micro_batches, chunks).map_err(|e| {
+                    ScenarioError::Order { file: file.clone(), line: e.line, col: e.col, message: e.message }
+                })?;
+                Ok((path, std::sync::Arc::new(parsed.plan)))
+            })?),
+            (_, Some(_)) => {
+                return Err(p.cx.err(
+                    &join(p.path, "order"),
+                    &field_origin("order"),
+                    format!("applies to schedule custom only, but the schedule is {schedule}"),
+                ))
+            }
+            (_, None) => None,
+        };
+    Ok(Pipeline {
+        stages,
+        split,
+        micro_batches,
+        schedule,
+        chunks,
+        micro_batch_size,
+        blocking_sends,
+        order,
+        max_in_flight,
+    })
 }
 
 /// `layers` split into `pieces` contiguous runs whose sizes differ by at most

@@ -24,6 +24,10 @@ pub struct Piece {
     /// Bytes held per micro-batch from the forward's start to the backward's
     /// end: the layers' stashes, or with full recomputation the piece's input.
     pub stash_bytes: u64,
+    /// Bytes held per micro-batch from a split backward's B end to its W
+    /// end: the layers' weight stashes (with full recomputation too, since W
+    /// needs what B recomputed).
+    pub weight_stash_bytes: u64,
     /// Its layers' parameters, plus their tied parameters when the piece
     /// runs on another device than the first layer (a copy of the shared
     /// weights; see [`LayerCost::tied_params`]).
@@ -48,6 +52,7 @@ pub struct PieceCosts {
     backward: Vec<u128>,
     weight: Vec<u128>,
     stash: Vec<u128>,
+    weight_stash: Vec<u128>,
     params: Vec<u128>,
     tied: Vec<u128>,
     activation: Vec<u64>,
@@ -78,6 +83,7 @@ impl PieceCosts {
             backward: prefix(layers, |l| l.backward_ns),
             weight: prefix(layers, |l| l.weight_ns),
             stash: prefix(layers, |l| l.stash_bytes),
+            weight_stash: prefix(layers, |l| l.weight_stash_bytes),
             params: prefix(layers, |l| l.params),
             tied: prefix(layers, |l| l.tied_params),
             activation: layers.iter().map(|l| l.activation_bytes).collect(),
@@ -109,6 +115,12 @@ impl PieceCosts {
         }
     }
 
+    /// Bytes piece `a..b` keeps per micro-batch between a split backward's B
+    /// and W.
+    pub fn weight_stash_bytes(&self, a: usize, b: usize) -> u128 {
+        self.weight_stash[b] - self.weight_stash[a]
+    }
+
     /// Parameters piece `k` over layers `a..b` holds (its copies included).
     pub fn params(&self, k: usize, a: usize, b: usize) -> u128 {
         let own = self.params[b] - self.params[a];
@@ -138,6 +150,7 @@ impl PieceCosts {
             weight_ns: clamp(self.weight[b] - self.weight[a]),
             send_bytes: if b > a { self.activation[b - 1] } else { 0 },
             stash_bytes: clamp(self.stash_bytes(a, b)),
+            weight_stash_bytes: clamp(self.weight_stash_bytes(a, b)),
             params: clamp(self.params(k, a, b)),
         }
     }

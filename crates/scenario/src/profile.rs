@@ -94,6 +94,7 @@ pub fn read(text: &str, file: &str) -> Result<Vec<LayerCost>, ScenarioError> {
         }
         layers.push(LayerCost {
             stash_bytes,
+            weight_stash_bytes: stash_bytes,
             params,
             tied_params,
             tensor_bytes,
@@ -201,6 +202,7 @@ mod tests {
     fn writes_what_it_reads() {
         let layers = vec![LayerCost {
             weight_ns: 0,
+            weight_stash_bytes: 0,
             tensor_bytes: 0,
             forward_split: (1, 2),
             backward_split: (1, 2),

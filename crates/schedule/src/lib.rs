@@ -41,6 +41,9 @@ use std::str::FromStr;
 
 use thiserror::Error;
 
+pub mod auto;
+pub mod order;
+
 /// What an operation does: a forward pass, a backward pass (with a split
 /// backward, only its input-gradient part), or a weight-gradient pass.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, PartialOrd, Ord)]
@@ -323,16 +326,36 @@ pub enum ScheduleKind {
     /// Zero-bubble ZB-H2 (same paper): more forwards in the warm-up and W
     /// passes deferred further, at up to `2p - 1` micro-batches in flight.
     ZbH2,
+    /// A split-backward order built for the stage costs at hand
+    /// ([`auto::candidates`]): forwards and input-gradient passes as early as
+    /// their inputs and the in-flight limit allow, W passes into the waits.
+    /// [`build`] makes it for equal unit costs.
+    ZbAuto,
+    /// An order the user wrote ([`order::parse`]); [`build`] cannot make it.
+    Custom,
 }
 
 impl ScheduleKind {
-    /// Every schedule, in the order help texts list them.
-    pub const ALL: [ScheduleKind; 5] = [
+    /// Every schedule [`build`] makes, in the order help texts list them
+    /// (`custom`, read from a file, is not among them).
+    pub const ALL: [ScheduleKind; 6] = [
         ScheduleKind::FillDrain,
         ScheduleKind::OneFOneB,
         ScheduleKind::Interleaved,
         ScheduleKind::ZbH1,
         ScheduleKind::ZbH2,
+        ScheduleKind::ZbAuto,
+    ];
+
+    /// Every name a scenario may give: [`ScheduleKind::ALL`] and `custom`.
+    pub const NAMED: [ScheduleKind; 7] = [
+        ScheduleKind::FillDrain,
+        ScheduleKind::OneFOneB,
+        ScheduleKind::Interleaved,
+        ScheduleKind::ZbH1,
+        ScheduleKind::ZbH2,
+        ScheduleKind::ZbAuto,
+        ScheduleKind::Custom,
     ];
 
     /// The name used in scenario files and on the command line.
@@ -343,13 +366,17 @@ impl ScheduleKind {
             ScheduleKind::Interleaved => "interleaved",
             ScheduleKind::ZbH1 => "zb-h1",
             ScheduleKind::ZbH2 => "zb-h2",
+            ScheduleKind::ZbAuto => "zb-auto",
+            ScheduleKind::Custom => "custom",
         }
     }
 
     /// Whether the schedule runs the weight-gradient pass (W) apart from the
-    /// input-gradient pass (B).
+    /// input-gradient pass (B). A `custom` order splits it when it holds W
+    /// tokens (its plan's shape says so), and `zb-auto` may choose 1F1B's
+    /// fused order when nothing splits better.
     pub fn splits_backward(self) -> bool {
-        matches!(self, ScheduleKind::ZbH1 | ScheduleKind::ZbH2)
+        matches!(self, ScheduleKind::ZbH1 | ScheduleKind::ZbH2 | ScheduleKind::ZbAuto)
     }
 }
 
@@ -362,7 +389,7 @@ impl fmt::Display for ScheduleKind {
 impl FromStr for ScheduleKind {
     type Err = ScheduleError;
     fn from_str(s: &str) -> Result<Self, Self::Err> {
-        ScheduleKind::ALL
+        ScheduleKind::NAMED
             .into_iter()
             .find(|k| k.name() == s)
             .ok_or_else(|| ScheduleError::UnknownSchedule(s.to_string()))
@@ -443,7 +470,7 @@ impl Shape {
 #[derive(Debug, Error, PartialEq, Eq)]
 pub enum ScheduleError {
     /// A name that is no schedule.
-    #[error("unknown schedule `{0}`; expected one of: fill-drain, 1f1b, interleaved")]
+    #[error("unknown schedule `{0}`; expected one of: fill-drain, 1f1b, interleaved, zb-h1, zb-h2, zb-auto, custom")]
     UnknownSchedule(String),
     /// A size of zero.
     #[error("{what} must be at least 1")]
@@ -514,14 +541,44 @@ pub enum ScheduleError {
         /// The op.
         op: Op,
     },
-    /// The orders wait on each other forever.
-    #[error("the orders cannot complete: device {device} waits forever at {op}")]
+    /// The orders wait on each other forever: a cycle of waits.
+    #[error("deadlock: {}", wait_text(.cycle))]
     Deadlock {
-        /// A device that waits.
-        device: u32,
-        /// The op it waits at.
-        op: Op,
+        /// Each link of the cycle: a device stuck at an op, waiting for an op
+        /// of the next link's device (the last waits for the first's).
+        cycle: Vec<Wait>,
     },
+    /// `custom` is read from an order file; it has no built-in order.
+    #[error("schedule `custom` needs `pipeline.order`, a file of each device's order")]
+    NeedsOrder,
+}
+
+/// One link of a deadlock: `device` is stuck at position `index` of its
+/// order, at op `at`, which waits for `needs` (not yet run, on another
+/// device or later on the same one).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Wait {
+    /// The device that waits.
+    pub device: u32,
+    /// Where in its order it is stuck (0-based).
+    pub index: usize,
+    /// The op it is stuck at.
+    pub at: Op,
+    /// The input `at` waits for.
+    pub needs: Op,
+}
+
+fn wait_text(cycle: &[Wait]) -> String {
+    let n = cycle.len();
+    let links: Vec<String> = (0..n)
+        .map(|k| {
+            let w = cycle[k];
+            let next = cycle[(k + 1) % n];
+            let after = if next.at == w.needs { String::new() } else { format!(", which comes after {}", next.at) };
+            format!("device {} waits at {} for {} on device {}{after}", w.device, w.at, w.needs, next.device)
+        })
+        .collect();
+    links.join("; ")
 }
 
 /// Each device's ordered operations for one training step.
@@ -553,9 +610,18 @@ pub fn build(kind: ScheduleKind, shape: Shape) -> Result<Plan, ScheduleError> {
             ScheduleKind::Interleaved => interleaved(shape, d),
             ScheduleKind::ZbH1 => zero_bubble(shape, d, shape.stages - d - 1, d),
             ScheduleKind::ZbH2 => zero_bubble(shape, d, 2 * (shape.stages - d - 1), 2 * d),
+            ScheduleKind::ZbAuto | ScheduleKind::Custom => Vec::new(),
         })
         .collect();
-    Ok(Plan { kind, shape, per_device })
+    match kind {
+        ScheduleKind::Custom => Err(ScheduleError::NeedsOrder),
+        ScheduleKind::ZbAuto => {
+            let n = shape.stages as usize;
+            let unit = auto::Costs { forward: vec![1; n], backward: vec![1; n], weight: vec![1; n], comm: vec![0; n] };
+            Ok(auto::best_by_estimate(shape, &unit, shape.stages))
+        }
+        _ => Ok(Plan { kind, shape, per_device }),
+    }
 }
 
 /// Checks the sizes a schedule needs, without building it.
@@ -574,7 +640,11 @@ pub fn check_shape(kind: ScheduleKind, shape: Shape) -> Result<(), ScheduleError
         return Err(ScheduleError::TooLarge(total));
     }
     match kind {
-        ScheduleKind::FillDrain | ScheduleKind::OneFOneB | ScheduleKind::ZbH1 | ScheduleKind::ZbH2
+        ScheduleKind::FillDrain
+        | ScheduleKind::OneFOneB
+        | ScheduleKind::ZbH1
+        | ScheduleKind::ZbH2
+        | ScheduleKind::ZbAuto
             if shape.chunks != 1 =>
         {
             Err(ScheduleError::ChunksNotSupported { schedule: kind, chunks: shape.chunks })
@@ -586,7 +656,7 @@ pub fn check_shape(kind: ScheduleKind, shape: Shape) -> Result<(), ScheduleError
     }
 }
 
-fn fill_drain(shape: Shape, d: u32) -> Vec<Op> {
+pub(crate) fn fill_drain(shape: Shape, d: u32) -> Vec<Op> {
     let m = shape.micro_batches;
     let mut ops = Vec::with_capacity(shape.ops_per_device());
     ops.extend((0..m).map(|i| Op::forward(i, d)));
@@ -594,7 +664,7 @@ fn fill_drain(shape: Shape, d: u32) -> Vec<Op> {
     ops
 }
 
-fn one_f_one_b(shape: Shape, d: u32) -> Vec<Op> {
+pub(crate) fn one_f_one_b(shape: Shape, d: u32) -> Vec<Op> {
     let (p, m) = (shape.stages, shape.micro_batches);
     let warmup = (p - d - 1).min(m);
     let mut ops = Vec::with_capacity(shape.ops_per_device());
@@ -617,7 +687,7 @@ fn one_f_one_b(shape: Shape, d: u32) -> Vec<Op> {
 /// chosen to give the paper's bubbles with equal per-stage times (for
 /// ZB-H1, `(p-1)(T_F + T_B - T_W)`) and its peak memory (`p`, and
 /// `2p - 1`, micro-batches from F to B on the first device).
-fn zero_bubble(shape: Shape, d: u32, warmup: u32, lag: u32) -> Vec<Op> {
+pub(crate) fn zero_bubble(shape: Shape, d: u32, warmup: u32, lag: u32) -> Vec<Op> {
     let m = shape.micro_batches;
     let warmup = warmup.min(m);
     let mut ops = Vec::with_capacity(shape.ops_per_device());
@@ -761,12 +831,38 @@ pub fn validate(plan: &Plan) -> Result<(), ScheduleError> {
             });
         }
     }
-    for (d, ops) in plan.per_device.iter().enumerate() {
-        if next[d] < ops.len() {
-            return Err(ScheduleError::Deadlock { device: d as u32, op: ops[next[d]] });
-        }
+    match (0..p).find(|&d| next[d] < plan.per_device[d].len()) {
+        None => Ok(()),
+        Some(start) => Err(ScheduleError::Deadlock { cycle: wait_cycle(plan, &next, &done, start) }),
     }
-    Ok(())
+}
+
+/// The cycle of waits among the stuck devices (`next[d]` is where device `d`
+/// stopped; `done` marks the ops that ran), found by following, from device
+/// `start`, each stuck op's first missing input to the device that owns it:
+/// that device is stuck too (the input has not run), so the walk must come
+/// back to a device it has seen.
+fn wait_cycle(plan: &Plan, next: &[usize], done: &[bool], start: usize) -> Vec<Wait> {
+    let shape = plan.shape;
+    let mut seen = vec![usize::MAX; next.len()];
+    let mut path: Vec<Wait> = Vec::new();
+    let mut d = start;
+    while seen[d] == usize::MAX {
+        seen[d] = path.len();
+        let at = plan.per_device[d][next[d]];
+        let mut needs = None;
+        at.each_input(&shape, |e| {
+            if needs.is_none() && !done[shape.op_index(e.op)] {
+                needs = Some(e.op);
+            }
+        });
+        // A stuck op always has a missing input (otherwise it would have run).
+        let Some(needs) = needs else { break };
+        path.push(Wait { device: d as u32, index: next[d], at, needs });
+        d = shape.device_of(needs.stage) as usize;
+    }
+    let from = seen[d].min(path.len());
+    path.split_off(from)
 }
 
 /// Micro-batches whose stash each virtual stage holds at once at most, read
@@ -792,10 +888,71 @@ pub fn peak_stashes(plan: &Plan) -> Vec<u64> {
     peak
 }
 
+/// What each virtual stage holds at once, read off the device orders: the
+/// pairs (micro-batches between their forward's start and their backward's
+/// end, micro-batches between a split backward's end and its weight pass's
+/// end) that no other point of the order exceeds in both. Memory on a stage
+/// is at most the largest `a * stash + w * weight_stash` over its pairs (one
+/// pair `(peak_stashes, 0)` with a fused backward).
+pub fn peak_holds(plan: &Plan) -> Vec<Vec<(u64, u64)>> {
+    let n = plan.shape.virtual_stages() as usize;
+    let (mut a, mut w) = (vec![0u64; n], vec![0u64; n]);
+    let mut front: Vec<Vec<(u64, u64)>> = vec![vec![(0, 0)]; n];
+    let note = |front: &mut Vec<(u64, u64)>, x: (u64, u64)| {
+        if front.iter().any(|&(p, q)| p >= x.0 && q >= x.1) {
+            return;
+        }
+        front.retain(|&(p, q)| !(x.0 >= p && x.1 >= q));
+        front.push(x);
+    };
+    for ops in &plan.per_device {
+        for op in ops {
+            let s = op.stage as usize;
+            match op.kind {
+                OpKind::Forward => a[s] += 1,
+                OpKind::Backward => {
+                    a[s] = a[s].saturating_sub(1);
+                    if plan.shape.split_backward {
+                        w[s] += 1;
+                    }
+                }
+                OpKind::Weight => w[s] = w[s].saturating_sub(1),
+                _ => {}
+            }
+            note(&mut front[s], (a[s], w[s]));
+        }
+    }
+    for f in &mut front {
+        f.sort_unstable();
+    }
+    front
+}
+
+/// The most bytes `holds` (one stage's [`peak_holds`]) can reach with these
+/// sizes per micro-batch.
+pub fn held_bytes(holds: &[(u64, u64)], stash_bytes: u128, weight_stash_bytes: u128) -> u128 {
+    holds.iter().map(|&(a, w)| a as u128 * stash_bytes + w as u128 * weight_stash_bytes).max().unwrap_or(0)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
     use proptest::prelude::*;
+
+    #[test]
+    fn peak_holds_count_both_kinds_of_memory() {
+        // 1F1B: p - d micro-batches on device d, nothing held for W.
+        let plan = build(ScheduleKind::OneFOneB, Shape::new(4, 8, 1)).unwrap();
+        assert_eq!(peak_holds(&plan), vec![vec![(4, 0)], vec![(3, 0)], vec![(2, 0)], vec![(1, 0)]]);
+        // ZB-H1 on the last device: F0 B0 F1 B1 F2 B2 F3 B3 W0 ...: one
+        // micro-batch between F and B while up to 3 wait for W (lag d = 3),
+        // and 4 held for W after the fourth B.
+        let plan = build(ScheduleKind::ZbH1, Shape::new(4, 8, 1)).unwrap();
+        let last = &peak_holds(&plan)[3];
+        assert!(last.contains(&(1, 3)) && last.contains(&(0, 4)), "{last:?}");
+        assert_eq!(held_bytes(last, 10, 1), 13);
+        assert_eq!(held_bytes(last, 1, 10), 40);
+    }
 
     fn names(ops: &[Op]) -> String {
         ops.iter().map(|o| o.to_string()).collect::<Vec<_>>().join(" ")
@@ -872,6 +1029,39 @@ mod tests {
         let mut dead = good.clone();
         dead.per_device[1].sort_by_key(|o| std::cmp::Reverse(o.kind));
         assert!(matches!(validate(&dead), Err(ScheduleError::Deadlock { .. })));
+    }
+
+    #[test]
+    fn a_deadlock_is_reported_as_its_cycle_of_waits() {
+        // Two devices, two micro-batches, 1F1B with device 1's order swapped
+        // around: device 1 wants B0 first, which needs F0 on device 1 itself,
+        // which comes after it; so the cycle is device 1 alone.
+        let shape = Shape::new(2, 1, 1);
+        let plan = Plan {
+            kind: ScheduleKind::FillDrain,
+            shape,
+            per_device: vec![vec![Op::forward(0, 0), Op::backward(0, 0)], vec![Op::backward(0, 1), Op::forward(0, 1)]],
+        };
+        let err = validate(&plan).unwrap_err();
+        assert_eq!(err.to_string(), "deadlock: device 1 waits at B0@1 for F0@1 on device 1, which comes after B0@1");
+        // A two-device swap: device 0 runs B0 before F1, device 1 wants F1
+        // before B0.
+        let plan = Plan {
+            kind: ScheduleKind::FillDrain,
+            shape: Shape::new(2, 2, 1),
+            per_device: vec![
+                vec![Op::forward(0, 0), Op::backward(0, 0), Op::forward(1, 0), Op::backward(1, 0)],
+                vec![Op::forward(0, 1), Op::forward(1, 1), Op::backward(0, 1), Op::backward(1, 1)],
+            ],
+        };
+        let ScheduleError::Deadlock { cycle } = validate(&plan).unwrap_err() else { panic!("a deadlock") };
+        let text = ScheduleError::Deadlock { cycle: cycle.clone() }.to_string();
+        assert_eq!(
+            text,
+            "deadlock: device 0 waits at B0@0 for B0@1 on device 1, which comes after F1@1; \
+             device 1 waits at F1@1 for F1@0 on device 0, which comes after B0@0"
+        );
+        assert_eq!((cycle[0].index, cycle[1].index), (1, 1));
     }
 
     #[test]
@@ -969,14 +1159,15 @@ mod tests {
 
     proptest! {
         #[test]
-        fn every_built_plan_is_valid(p in 1u32..7, mult in 1u32..5, extra in 0u32..3, v in 1u32..4, k in 0usize..3) {
+        fn every_built_plan_is_valid(p in 1u32..7, mult in 1u32..5, extra in 0u32..3, v in 1u32..4, k in 0usize..ScheduleKind::ALL.len()) {
             let kind = ScheduleKind::ALL[k];
             let m = if kind == ScheduleKind::Interleaved { p * mult } else { p * mult + extra };
             let v = if kind == ScheduleKind::Interleaved { v } else { 1 };
             let plan = build(kind, Shape::new(p, m, v)).unwrap();
             prop_assert_eq!(validate(&plan), Ok(()));
+            prop_assert_eq!(plan.kind, kind);
             for ops in &plan.per_device {
-                prop_assert_eq!(ops.len(), Shape::new(p, m, v).ops_per_device());
+                prop_assert_eq!(ops.len(), plan.shape.ops_per_device());
             }
         }
 

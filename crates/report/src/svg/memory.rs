@@ -119,7 +119,7 @@ pub fn render(run: &MemoryRun<'_>, options: &MemoryOptions) -> Result<String, Re
                 .draw_series(std::iter::once(Rectangle::new([(start_ms, 0.0), (end_ms, base)], STATE.filled())))
                 .map_err(draw_err)?;
             if !memory.stash_bytes.is_empty() {
-                let timeline = activation_timeline(trace, &memory.stash_bytes, d);
+                let timeline = activation_timeline(trace, memory, d);
                 let mut points = Vec::with_capacity(2 * timeline.len() + 2);
                 let mut level = base;
                 points.push((start_ms, base));
