@@ -18,3 +18,4 @@ $baton run scenarios/two-boxes.yaml --svg docs/two-boxes-packed.svg >/dev/null
 $baton run scenarios/two-boxes.yaml --set placement=spread --svg docs/two-boxes-spread.svg >/dev/null
 $baton run scenarios/replicas.yaml --svg docs/replicas.svg >/dev/null
 $baton layout scenarios/layout.yaml --global-batch 256 --svg docs/layout.svg >/dev/null
+$baton compare scenarios/zero-bubble.yaml --vary pipeline.schedule=1f1b,zb-h1,zb-h2,zb-auto --svg docs/zero-bubble.svg >/dev/null
