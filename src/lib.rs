@@ -163,7 +163,9 @@ pub fn memory_inputs(s: &Scenario) -> MemoryInputs {
 /// Each piece's gradient buckets: its layers in reverse model order, grouped
 /// until a bucket holds at least `gradients.bucket` bytes (parameters x
 /// `gradients.bytes_per_param`; the last may be smaller), each final when its
-/// layers' share of the piece's backward time has run (last layer first).
+/// layers' share of the piece's backward time has run (last layer first;
+/// with a split backward, their share of the weight-gradient time W, since
+/// W is the piece's last gradient op).
 /// A piece without parameters has no bucket; a layer sharing weights with
 /// the first layer counts its copy on any device but the first's. Returns
 /// also, per piece, the bucket holding each of its layers (in model order).
@@ -174,18 +176,22 @@ pub fn gradient_buckets(s: &Scenario) -> (Vec<Vec<BucketSpec>>, Vec<Vec<u32>>) {
     let mut layer_bucket = Vec::new();
     let mut first = 0usize;
     let tensor = s.parallel.tensor > 1;
+    // With a split backward the last gradient op is W, which runs the
+    // layers' weight gradients (last layer first) as plain compute.
+    let split = s.shape().split_backward;
+    let grad_ns = |l: &baton_scenario::LayerCost| if split { l.weight_ns.min(l.backward_ns) } else { l.backward_ns };
     for (k, &n) in s.pipeline.split.iter().enumerate() {
         let copy = k % p != 0;
         let layers = &s.tensor_layers[first..first + n as usize];
         first += n as usize;
-        let total_back: u128 = layers.iter().map(|l| l.backward_ns as u128).sum();
+        let total_back: u128 = layers.iter().map(|l| grad_ns(l) as u128).sum();
         let mut buckets: Vec<BucketSpec> = Vec::new();
         let mut which = vec![0u32; layers.len()];
         let (mut params, mut back) = (0u128, 0u128);
         let mut open = false;
         for (i, l) in layers.iter().enumerate().rev() {
             params += l.params as u128 + if copy { l.tied_params as u128 } else { 0 };
-            back += l.backward_ns as u128;
+            back += grad_ns(l) as u128;
             open = true;
             which[i] = buckets.len() as u32;
             if params * bpp as u128 >= s.gradients.bucket_bytes as u128 {
@@ -205,7 +211,7 @@ pub fn gradient_buckets(s: &Scenario) -> (Vec<Vec<BucketSpec>>, Vec<Vec<u32>>) {
         // With tensor groups a bucket is final when the backward segments of
         // its layers have run: after the segment that ends the last of them
         // the backward reaches (the one nearest the model's input).
-        if tensor {
+        if tensor && !split {
             let (_, done) = piece_segments(s, k);
             for (b, spec) in buckets.iter_mut().enumerate() {
                 spec.ready_segment = (0..layers.len()).filter(|&i| which[i] as usize == b).map(|i| done[i]).max();

@@ -456,3 +456,27 @@ fn hand_written_deadlocks_are_refused_with_their_cycle() {
     let err = text(&run_baton(&["run", &s]).stderr);
     assert!(err.contains("o.order:3:1: pipeline.order: device 2 misses B1"), "{err}");
 }
+
+#[test]
+fn with_a_split_backward_a_bucket_is_final_when_its_weight_gradients_are() {
+    // Worked by hand. One stage, two replicas, one micro-batch, two layers:
+    // forward 100 ns each, backward 300 ns of which W is 100 ns (layer 0)
+    // and 200 ns (layer 1); 500 parameters each at 2 bytes make one 1,000 B
+    // bucket per layer. ZB-H1 on one stage: F0 0-200, B0 200-500 (the
+    // backwards less W: 200 + 100), W0 500-800, W running the last layer
+    // first. Layer 1's bucket is final when its 200 ns of W have run, at
+    // 700; layer 0's at 800. A ring of two at 10 GB/s: 500 B rounds of
+    // 50 ns, 100 ns a bucket: 700-800 and 800-900. The step ends at 900.
+    let text = "model:\n  layers:\n    - { name: a, forward: 100ns, backward: 300ns, weight: 100ns, activation: 0B, params: 500 }\n\
+                \x20   - { name: b, forward: 100ns, backward: 300ns, weight: 200ns, activation: 0B, params: 500 }\n\
+                cluster:\n  devices: 2\n  link: { latency: 0ns, bandwidth: 10GB/s }\n\
+                pipeline: { stages: 1, micro_batches: 1, schedule: zb-h1 }\n\
+                parallel: { data: 2 }\n\
+                gradients: { sync: ring, bucket: 1000B, overlap: true }\n";
+    let r = baton::simulate(&parse(text, "b.yaml", "b", &[]).unwrap()).unwrap().report;
+    let mut spans: Vec<(u32, f64, f64)> =
+        r.collectives.iter().map(|c| (c.bucket, (c.start_ms * 1e6).round(), (c.end_ms * 1e6).round())).collect();
+    spans.sort_by(|a, b| a.partial_cmp(b).unwrap());
+    assert_eq!(spans, vec![(0, 700.0, 800.0), (1, 800.0, 900.0)]);
+    assert_eq!(r.step_time_ns, 900);
+}
