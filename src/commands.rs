@@ -486,9 +486,15 @@ pub fn layout(r: &LayoutRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comm
         .schedules
         .iter()
         .map(|x| {
-            x.parse::<baton_schedule::ScheduleKind>().map_err(|_| {
-                bad(format!("--schedules: unknown schedule `{x}`; expected fill-drain, 1f1b or interleaved"))
-            })
+            match x.parse::<baton_schedule::ScheduleKind>() {
+                Ok(baton_schedule::ScheduleKind::Custom) => Err(bad(
+                    "--schedules: custom needs an order file written for one layout; give it in the scenario and use baton run".into(),
+                )),
+                Ok(k) => Ok(k),
+                Err(_) => Err(bad(format!(
+                    "--schedules: unknown schedule `{x}`; expected fill-drain, 1f1b, interleaved, zb-h1, zb-h2 or zb-auto"
+                ))),
+            }
         })
         .collect::<Result<Vec<_>, _>>()?;
     if r.micro_batch_sizes.contains(&0) || r.chunks.contains(&0) {

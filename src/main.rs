@@ -38,7 +38,9 @@ enum Command {
         baton run scenarios/interleaved.yaml --json - | jq .step_time_ms\n  \
         baton run scenarios/heavy-head.yaml --memory-svg memory.svg --strict\n  \
         baton run scenarios/heavy-head.yaml --show-layers --layers-csv layers.csv\n  \
-        baton run scenarios/replicas.yaml --svg replicas.svg --devices 0-7\n\n\
+        baton run scenarios/replicas.yaml --svg replicas.svg --devices 0-7\n  \
+        baton run scenarios/zero-bubble.yaml --set pipeline.schedule=zb-auto\n  \
+        baton run scenarios/zero-bubble.yaml --set pipeline.schedule=custom --set pipeline.order=zero-bubble-drain.order\n\n\
         Exit status: 0 success, 2 invalid scenario or usage, 3 over memory capacity with --strict, 1 anything else.", outputs_note!()))]
     Run(RunArgs),
     /// Find the split of the layers into stages that minimises the bottleneck
@@ -91,10 +93,13 @@ enum Command {
     /// Write each device's order of operations for the scenario's schedule, one line per device.
     #[command(after_help = concat!("Examples:\n  \
         baton order scenarios/unbalanced-split.yaml\n  \
-        baton order scenarios/unbalanced-split.yaml --set pipeline.schedule=zb-h1 --out zb-h1.order\n\n\
+        baton order scenarios/unbalanced-split.yaml --set pipeline.schedule=zb-h1 --out zb-h1.order\n  \
+        baton order scenarios/zero-bubble.yaml --set pipeline.schedule=zb-auto\n\n\
         Syntax: `<device>: tok tok ...`, one token per op in the order the device runs them:\n\
-        F3 forward of micro-batch 3, B3 its backward (with zb-h1 and zb-h2 the input gradient),\n\
-        W3 its weight gradient, F3.1 with several chunks per device (chunk 1); # starts a comment.", outputs_note!()))]
+        F3 forward of micro-batch 3, B3 its backward (with a split backward the input gradient),\n\
+        W3 its weight gradient, F3.1 with several chunks per device (chunk 1); # starts a comment.\n\
+        Edit it and run it with --set pipeline.schedule=custom --set pipeline.order=PATH (relative to the\n\
+        scenario file); a device's order may go on over several lines that start with its number.", outputs_note!()))]
     Order(OrderArgs),
     /// Print a JSON Schema (draft 2020-12) of the scenario format, for editors
     /// that complete and check YAML files.

@@ -654,6 +654,18 @@ pub fn applied_text(
             edits.push(("model.profile", yaml_text(&rel.to_string_lossy())));
         }
     }
+    // So must a custom order file.
+    if let (Some((order, _)), Some(dest_dir)) = (&scenario.pipeline.order, dest_dir(dest)) {
+        let written = text_at(&text, path, &["pipeline", "order"]);
+        if written.as_deref().is_some_and(|w| Path::new(w).is_relative()) {
+            let target = std::fs::canonicalize(order)
+                .map_err(|e| PlanError::Apply(format!("cannot find the order {}: {e}", order.display())))?;
+            let from = std::fs::canonicalize(&dest_dir)
+                .map_err(|e| PlanError::Apply(format!("cannot find {}: {e}", dest_dir.display())))?;
+            let rel = relative_path(&from, &target);
+            edits.push(("pipeline.order", yaml_text(&rel.to_string_lossy())));
+        }
+    }
     let file = path.display().to_string();
     let mut new_text =
         baton_scenario::edit::set_values(&text, &file, &edits).map_err(|e| PlanError::Apply(e.to_string()))?;

@@ -480,3 +480,25 @@ fn with_a_split_backward_a_bucket_is_final_when_its_weight_gradients_are() {
     assert_eq!(spans, vec![(0, 700.0, 800.0), (1, 800.0, 900.0)]);
     assert_eq!(r.step_time_ns, 900);
 }
+
+#[test]
+fn split_apply_keeps_a_custom_order_reachable_from_the_copy() {
+    // The copy lives in another directory: its `pipeline.order` is rewritten
+    // relative to it, and the copy runs the same order.
+    let dir = tempfile::tempdir().unwrap();
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let demo = std::fs::read_to_string(root.join("scenarios/zero-bubble.yaml")).unwrap();
+    let custom = demo.replacen("  schedule: 1f1b\n", "  schedule: custom\n  order: drain.order\n", 1);
+    assert_ne!(custom, demo);
+    std::fs::write(dir.path().join("s.yaml"), custom).unwrap();
+    std::fs::copy(root.join("scenarios/zero-bubble-drain.order"), dir.path().join("drain.order")).unwrap();
+    std::fs::create_dir(dir.path().join("sub")).unwrap();
+    let s = dir.path().join("s.yaml").display().to_string();
+    let copy = dir.path().join("sub/copy.yaml").display().to_string();
+    let out = run_baton(&["split", &s, "--apply", &copy]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    assert!(std::fs::read_to_string(&copy).unwrap().contains("order: ../drain.order"));
+    let out = run_baton(&["run", &copy]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    assert!(text(&out.stdout).contains("schedule custom"));
+}
