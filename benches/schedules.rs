@@ -29,13 +29,7 @@ fn schedules(c: &mut Criterion) {
     std::fs::write(dir.path().join("zb-h1.order"), order).expect("writes the order");
     let mut group = c.benchmark_group("schedules");
     group.sample_size(10).measurement_time(Duration::from_secs(6)).warm_up_time(Duration::from_secs(1));
-    let cases = [
-        ("1f1b", ""),
-        ("zb-h1", ""),
-        ("zb-h2", ""),
-        ("custom", "  order: zb-h1.order\n"),
-        ("zb-auto", ""),
-    ];
+    let cases = [("1f1b", ""), ("zb-h1", ""), ("zb-h2", ""), ("custom", "  order: zb-h1.order\n"), ("zb-auto", "")];
     for (schedule, extra) in cases {
         let s = scenario(dir.path(), schedule, extra);
         let probe = baton::simulate(&s).expect("simulates");

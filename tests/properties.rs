@@ -449,8 +449,14 @@ proptest! {
             // One replica without tied weights: the pipeline runs exactly as
             // without synchronisation (an update, if any, only follows it).
             prop_assert!(trace.collectives.is_empty());
-            let plan = baton::schedule::build(s.pipeline.schedule, s.shape()).unwrap();
-            let alone = baton::executor::simulate(plan, &baton::stage_costs(&s), baton::topology(&s)).unwrap();
+            // The plan that ran (zb-auto's choice among its candidates; a
+            // fused choice runs the scenario's costs as 1F1B's).
+            let plan = trace.plan.clone();
+            let mut costs_of = s.clone();
+            if !plan.shape.split_backward {
+                costs_of.pipeline.schedule = baton::schedule::ScheduleKind::OneFOneB;
+            }
+            let alone = baton::executor::simulate(plan, &baton::stage_costs(&costs_of), baton::topology(&s)).unwrap();
             for (w, recs) in trace.ops.iter().enumerate() {
                 let planned: Vec<_> = recs.iter().filter(|r| !r.op.kind.is_device_work()).copied().collect();
                 prop_assert_eq!(&planned, &alone.ops[w]);

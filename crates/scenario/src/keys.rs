@@ -306,16 +306,6 @@ pub const PIPELINE: &[Key] = &[
         Type::Choice(&["fill-drain", "1f1b", "interleaved", "zb-h1", "zb-h2", "zb-auto", "custom"]),
         "The pipeline schedule; custom reads each device's order from pipeline.order.",
     ),
-    key(
-        "order",
-        Type::Path,
-        "With schedule custom: a text file of each device's order, one line per device (`0: F0 F1 B0 ...`; see baton order), relative to the scenario file.",
-    ),
-    key(
-        "max_in_flight",
-        whole(1, u32::MAX as i64),
-        "zb-auto: most micro-batches a device holds at once (from a forward's start to the end of its last backward op); stages (1F1B's peak) when left out.",
-    ),
     with_default(
         "chunks",
         whole(1, u32::MAX as i64),
@@ -333,6 +323,16 @@ pub const PIPELINE: &[Key] = &[
         Type::Bool,
         Default::Bool(false),
         "A device that sends waits until the data has arrived before its next operation.",
+    ),
+    key(
+        "order",
+        Type::Path,
+        "With schedule custom: a text file of each device's order, one line per device (`0: F0 F1 B0 ...`; see baton order), relative to the scenario file.",
+    ),
+    key(
+        "max_in_flight",
+        whole(1, u32::MAX as i64),
+        "zb-auto: most micro-batches a device holds at once (from a forward's start to the end of its last backward op); stages (1F1B's peak) when left out.",
     ),
 ];
 

@@ -1839,7 +1839,7 @@ pipeline:
         assert!(e.to_string().starts_with("t.yaml:12:3: pipeline.micro_batches: missing"), "{e}");
         let text = EXAMPLE.replace("  chunks: 1\n", "  chunk: 1\n");
         let e = parse_with(&text, &[]).unwrap_err();
-        assert_eq!(e.to_string(), "t.yaml:16:3: pipeline.chunk: unknown key `chunk`; expected one of: stages, split, micro_batches, schedule, chunks, micro_batch_size, blocking_sends");
+        assert_eq!(e.to_string(), "t.yaml:16:3: pipeline.chunk: unknown key `chunk`; expected one of: stages, split, micro_batches, schedule, chunks, micro_batch_size, blocking_sends, order, max_in_flight");
         let e = parse_with(&EXAMPLE.replace("cluster:", "klaster:"), &[]).unwrap_err();
         assert_eq!(e.key(), Some("klaster"));
     }

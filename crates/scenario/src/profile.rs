@@ -202,7 +202,7 @@ mod tests {
     fn writes_what_it_reads() {
         let layers = vec![LayerCost {
             weight_ns: 0,
-            weight_stash_bytes: 0,
+            weight_stash_bytes: 7,
             tensor_bytes: 0,
             forward_split: (1, 2),
             backward_split: (1, 2),
