@@ -309,4 +309,21 @@ fn order_writes_each_devices_ops_one_token_each() {
     let out = baton(&["order", "scenarios/unbalanced-split.yaml", "--out", path.to_str().unwrap()]);
     assert_eq!(out.status.code(), Some(0));
     assert_eq!(std::fs::read_to_string(&path).unwrap(), order);
+    // A custom order is written back as it was read (comments aside).
+    let custom = baton(&[
+        "order",
+        "scenarios/zero-bubble.yaml",
+        "--set",
+        "pipeline.schedule=custom",
+        "--set",
+        "pipeline.order=zero-bubble-drain.order",
+    ]);
+    assert_eq!(custom.status.code(), Some(0), "{}", text(&custom.stderr));
+    let file = std::fs::read_to_string("scenarios/zero-bubble-drain.order").unwrap();
+    let ops = |t: &str| t.lines().filter(|l| !l.starts_with('#')).map(String::from).collect::<Vec<_>>();
+    assert_eq!(ops(&text(&custom.stdout)), ops(&file));
+    // zb-auto's order is the one it chose, named in the header.
+    let auto = text(&baton(&["order", "scenarios/zero-bubble.yaml", "--set", "pipeline.schedule=zb-auto"]).stdout);
+    assert!(auto.starts_with("# Quill-3") && auto.lines().next().unwrap().contains("schedule zb-auto (chose "), "{auto}");
+    assert_eq!(ops(&auto).len(), 4);
 }
