@@ -324,6 +324,9 @@ fn order_writes_each_devices_ops_one_token_each() {
     assert_eq!(ops(&text(&custom.stdout)), ops(&file));
     // zb-auto's order is the one it chose, named in the header.
     let auto = text(&baton(&["order", "scenarios/zero-bubble.yaml", "--set", "pipeline.schedule=zb-auto"]).stdout);
-    assert!(auto.starts_with("# Quill-3") && auto.lines().next().unwrap().contains("schedule zb-auto (chose "), "{auto}");
+    assert!(
+        auto.starts_with("# Quill-3") && auto.lines().next().unwrap().contains("schedule zb-auto (chose "),
+        "{auto}"
+    );
     assert_eq!(ops(&auto).len(), 4);
 }

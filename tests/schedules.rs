@@ -502,3 +502,38 @@ fn split_apply_keeps_a_custom_order_reachable_from_the_copy() {
     assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
     assert!(text(&out.stdout).contains("schedule custom"));
 }
+
+#[test]
+fn schedule_keys_that_do_not_fit_together_are_refused() {
+    let refused = |args: &[&str], needle: &str| {
+        let out = run_baton(args);
+        let err = text(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{err}");
+        assert!(err.contains(needle), "stderr lacks `{needle}`:\n{err}");
+    };
+    let demo = "scenarios/zero-bubble.yaml";
+    refused(&["run", demo, "--set", "pipeline.schedule=custom"], "custom needs pipeline.order");
+    refused(
+        &["run", demo, "--set", "pipeline.order=zero-bubble-drain.order"],
+        "applies to schedule custom only, but the schedule is 1f1b",
+    );
+    refused(&["run", demo, "--set", "pipeline.max_in_flight=3"], "applies to schedule zb-auto only");
+    refused(
+        &["run", demo, "--set", "pipeline.schedule=custom", "--set", "pipeline.order=missing.order"],
+        "cannot read",
+    );
+    // The order is for 12 micro-batches; with 13 the last one is missing.
+    refused(
+        &[
+            "run",
+            demo,
+            "--set",
+            "pipeline.schedule=custom",
+            "--set",
+            "pipeline.order=zero-bubble-drain.order",
+            "--set",
+            "pipeline.micro_batches=13",
+        ],
+        "device 0 misses F12 B12 W12",
+    );
+}
