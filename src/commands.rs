@@ -194,6 +194,8 @@ pub struct RunRequest<'a> {
     pub view: View,
     /// The devices the Gantt chart shows (`None`: its default).
     pub devices: Option<Vec<u32>>,
+    /// Print the critical path after the summary.
+    pub critical_path: bool,
 }
 
 /// `baton run`: outputs `--svg`, `--memory-svg`, `--layers-csv`, `--trace`, `--json`.
@@ -254,6 +256,10 @@ pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandErr
         text.push('\n');
     }
     text.push_str(&baton_report::text::render(report, &Default::default()));
+    if r.critical_path {
+        text.push('\n');
+        text.push_str(&baton_report::critical::render_text(trace, &report.critical_path));
+    }
     let over = report.over_capacity();
     let then = (r.strict && !over.is_empty()).then(|| {
         let list: Vec<String> = over.iter().map(u32::to_string).collect();

@@ -39,6 +39,7 @@ enum Command {
         baton run scenarios/heavy-head.yaml --memory-svg memory.svg --strict\n  \
         baton run scenarios/heavy-head.yaml --show-layers --layers-csv layers.csv\n  \
         baton run scenarios/replicas.yaml --svg replicas.svg --devices 0-7\n  \
+        baton run scenarios/unbalanced-split.yaml --critical-path\n  \
         baton run scenarios/zero-bubble.yaml --set pipeline.schedule=zb-auto\n  \
         baton run scenarios/zero-bubble.yaml --set pipeline.schedule=custom --set pipeline.order=zero-bubble-drain.order\n\n\
         Exit status: 0 success, 2 invalid scenario or usage, 3 over memory capacity with --strict, 1 anything else.", outputs_note!()))]
@@ -351,6 +352,10 @@ struct RunArgs {
     /// the profile or the transformer formulas), e.g. --show-layers.
     #[arg(long)]
     show_layers: bool,
+    /// Print the chain of ops, transfers and waits that sets the step time
+    /// (each device's run of ops compacted), e.g. --critical-path.
+    #[arg(long)]
+    critical_path: bool,
     /// Write the per-layer cost table as a profile CSV that `model: { profile: PATH }`
     /// reads back exactly, e.g. --layers-csv layers.csv.
     #[arg(long, value_name = "PATH|-")]
@@ -409,6 +414,7 @@ fn main() -> ExitCode {
                 max_memory: a.max_memory,
                 view: a.chart.view(),
                 devices: a.devices.as_ref().map(|l| l.0.clone()),
+                critical_path: a.critical_path,
             };
             finish(commands::run(&r, &mut o), o)
         }),

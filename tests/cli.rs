@@ -86,7 +86,7 @@ fn run_writes_all_outputs() {
 
     let trace = std::fs::read_to_string(&csv).unwrap();
     let mut lines = trace.lines();
-    assert_eq!(lines.next(), Some("device,kind,micro_batch,stage,start_ns,end_ns"));
+    assert_eq!(lines.next(), Some("device,kind,micro_batch,stage,start_ns,end_ns,slack_ns"));
     let rows: Vec<&str> = lines.collect();
     // 4 devices x 8 micro-batches x 2 ops, and 3 boundaries x 8 x 2 sends.
     assert_eq!(rows.len(), 64 + 48);

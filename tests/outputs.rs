@@ -175,7 +175,7 @@ fn dash_is_standard_output_for_every_output_option() {
     let starts: &[(&str, &str)] = &[
         ("--json", "{"),
         ("--svg", "<svg"),
-        ("--trace", "device,kind,micro_batch,stage,start_ns,end_ns"),
+        ("--trace", "device,kind,micro_batch,stage,start_ns,end_ns,slack_ns"),
         ("--memory-svg", "<svg"),
         ("--layers-csv", "name,forward_ms"),
     ];

@@ -237,6 +237,13 @@ impl Trace {
         (d, &self.ops[d as usize][i as usize])
     }
 
+    /// Where replica `replica`'s `op` ran: (device of its group's rank 0,
+    /// index in that device's `ops`; every rank of a group runs its ops in
+    /// the same order).
+    pub fn position_in(&self, replica: u32, op: Op) -> (u32, u32) {
+        self.op_index[self.slot(replica, op)]
+    }
+
     /// The device that ran rank 0 of replica `replica`'s pipeline device `d`.
     pub fn device_of(&self, replica: u32, d: u32) -> u32 {
         (replica * self.plan.shape.stages + d) * self.tensor.max(1)
@@ -260,6 +267,17 @@ impl Trace {
         }
         let t = self.transfer_index[self.slot(replica, op)];
         (t != NONE).then(|| &self.transfers[t as usize])
+    }
+
+    /// The index in [`Trace::transfers`] of the (first, with tensor groups)
+    /// transfer that carried replica `replica`'s `op`'s output to another
+    /// device, if any.
+    pub fn outgoing_index_in(&self, replica: u32, op: Op) -> Option<usize> {
+        if op.kind.is_device_work() {
+            return None;
+        }
+        let t = self.transfer_index[self.slot(replica, op)];
+        (t != NONE).then_some(t as usize)
     }
 
     /// The data from another stage that replica 0's `op` waited for longest.

@@ -349,6 +349,9 @@ pub struct Report {
     pub gaps: Vec<Gap>,
     /// Every gradient collective, in the order they started.
     pub collectives: Vec<CollectiveReport>,
+    /// The chain of ops, transfers and waits that sets the step time, first
+    /// link first ([`crate::critical`]).
+    pub critical_path: Vec<crate::critical::PathEntry>,
     /// `zb-auto` only: the order it chose among those it tried, and how far
     /// the step is above the busiest device's total work (a lower bound).
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -602,6 +605,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
             .collect(),
         gaps,
         collectives,
+        critical_path: crate::critical::Graph::of(trace).critical_path(),
         schedule_choice: None,
     }
 }

@@ -14,20 +14,25 @@ const SYNC: u8 = SEND + 1;
 /// The kind number of a tensor-parallel all-reduce's transfer row.
 const TENSOR: u8 = SEND + 2;
 
-/// Writes the CSV trace: header `device,kind,micro_batch,stage,start_ns,end_ns`,
+/// One row: start, end, device, kind number, micro-batch, stage, slack.
+type Row = (u64, u64, u32, u8, u32, u32, Option<u64>);
+
+/// Writes the CSV trace: header `device,kind,micro_batch,stage,start_ns,end_ns,slack_ns`,
 /// one row per operation and per transfer (`kind` is the op kind's name,
 /// `forward`, `backward`, `weight`, `encode` or `update`, or `send` for a
 /// pipeline transfer, `sync` for a collective's, `tensor` for a tensor
 /// group's all-reduce; for a transfer `device` is the sender and `end_ns` the
 /// arrival; a send's `stage` is the sending virtual stage, a sync's
 /// `micro_batch` the bucket and `stage` the piece, a tensor row's the op's
-/// micro-batch and stage).
+/// micro-batch and stage; `slack_ns`, for ops and sends, how much later it
+/// could end without moving the step's end ([`crate::critical`]), empty for
+/// collective and tensor transfers).
 /// Rows are ordered by start, then end, device, kind.
 pub fn write<W: io::Write>(trace: &Trace, out: W) -> Result<(), ReportError> {
-    let mut rows: Vec<(u64, u64, u32, u8, u32, u32)> =
-        Vec::with_capacity(trace.ops.iter().map(Vec::len).sum::<usize>() + trace.transfers.len());
+    let (op_slack, transfer_slack) = crate::critical::Graph::of(trace).slack();
+    let mut rows: Vec<Row> = Vec::with_capacity(trace.ops.iter().map(Vec::len).sum::<usize>() + trace.transfers.len());
     for (d, recs) in trace.ops.iter().enumerate() {
-        for r in recs {
+        for (i, r) in recs.iter().enumerate() {
             rows.push((
                 r.start.as_ns(),
                 r.end.as_ns(),
@@ -35,30 +40,31 @@ pub fn write<W: io::Write>(trace: &Trace, out: W) -> Result<(), ReportError> {
                 r.op.kind.index() as u8,
                 r.op.micro_batch,
                 r.op.stage,
+                Some(op_slack[d][i]),
             ));
         }
     }
-    for t in &trace.transfers {
-        rows.push((t.start.as_ns(), t.end.as_ns(), t.src, SEND, t.micro_batch, t.from_stage));
+    for (k, t) in trace.transfers.iter().enumerate() {
+        rows.push((t.start.as_ns(), t.end.as_ns(), t.src, SEND, t.micro_batch, t.from_stage, Some(transfer_slack[k])));
     }
     for t in &trace.tensor_transfers {
-        rows.push((t.start.as_ns(), t.end.as_ns(), t.src, TENSOR, t.op.micro_batch, t.op.stage));
+        rows.push((t.start.as_ns(), t.end.as_ns(), t.src, TENSOR, t.op.micro_batch, t.op.stage, None));
     }
     for t in &trace.sync_transfers {
         let c = &trace.collectives[t.collective as usize];
-        rows.push((t.start.as_ns(), t.end.as_ns(), t.src, SYNC, c.bucket, c.piece));
+        rows.push((t.start.as_ns(), t.end.as_ns(), t.src, SYNC, c.bucket, c.piece, None));
     }
     rows.sort_unstable();
     let mut w = ::csv::Writer::from_writer(out);
-    w.write_record(["device", "kind", "micro_batch", "stage", "start_ns", "end_ns"])?;
-    for (start, end, device, kind, mb, stage) in rows {
+    w.write_record(["device", "kind", "micro_batch", "stage", "start_ns", "end_ns", "slack_ns"])?;
+    for (start, end, device, kind, mb, stage, slack) in rows {
         let kind = match kind {
             SEND => "send",
             SYNC => "sync",
             TENSOR => "tensor",
             k => OpKind::ALL[k as usize].as_str(),
         };
-        w.serialize((device, kind, mb, stage, start, end))?;
+        w.serialize((device, kind, mb, stage, start, end, slack))?;
     }
     w.flush()?;
     Ok(())

@@ -47,6 +47,7 @@
 #![warn(missing_docs)]
 
 mod analysis;
+pub mod critical;
 pub mod csv;
 pub mod json;
 pub mod svg;
@@ -151,9 +152,15 @@ mod tests {
         csv::write(&tr, &mut out).unwrap();
         let text = String::from_utf8(out).unwrap();
         let lines: Vec<&str> = text.lines().collect();
-        assert_eq!(lines[0], "device,kind,micro_batch,stage,start_ns,end_ns");
+        assert_eq!(lines[0], "device,kind,micro_batch,stage,start_ns,end_ns,slack_ns");
         assert_eq!(lines.len(), 1 + 8 + 4);
-        assert_eq!(lines[1], "0,forward,0,0,0,10");
+        // By hand: device 0 F0 0-10, F1 10-20, B0 40-60, B1 70-90; device 1
+        // F0 10-20, B0 20-40, F1 40-50, B1 50-70. F0 on device 0 starts the
+        // chain that ends the step at 90: no slack. F1 on device 0 (10-20)
+        // feeds F1 on device 1, which could start as late as 40 (its device
+        // is busy with B0 until then): 20 ns of slack.
+        assert_eq!(lines[1], "0,forward,0,0,0,10,0");
+        assert!(lines.contains(&"0,forward,1,0,10,20,20"), "{text}");
         assert!(lines.iter().any(|l| l.starts_with("0,send,0,0,10,")));
         let json = json::render(&build(&tr, &Labels::default()), &json::JsonOptions::default()).unwrap();
         let v: serde_json::Value = serde_json::from_str(&json).unwrap();

@@ -32,6 +32,8 @@ use crate::{Report, ReportError};
 const FORWARD: Rgb = (0x2b, 0x6c, 0xb0);
 const BACKWARD: Rgb = (0xe3, 0x8b, 0x2c);
 const WEIGHT: Rgb = (0x00, 0x9e, 0x73);
+/// The outline of the critical path's ops and transfers.
+const CRITICAL: &str = "#1a1a1a";
 /// Compressing or decompressing gradients: a pale olive.
 const ENCODE: Rgb = (0xb5, 0xb3, 0x5c);
 /// The optimizer update: a dark teal-grey.
@@ -389,6 +391,12 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
             legend.push(("gradient sync receive".into(), format!("fill=\"{}\"", hex(SYNC_RECEIVE))));
         }
     }
+    if runs.iter().any(|r| !r.report.critical_path.is_empty()) {
+        legend.push((
+            "critical path (outlined)".into(),
+            format!("fill=\"none\" stroke=\"{CRITICAL}\" stroke-width=\"1.6\""),
+        ));
+    }
     let margin = 12.0;
     let mut legend_pos = Vec::with_capacity(legend.len());
     let (mut lx, mut row) = (margin, 0usize);
@@ -715,6 +723,33 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         }
         body.push_str("</g>\n");
     }
+    // The critical path, outlined over the ops (and, with communication
+    // lanes, the data in flight) it runs through.
+    body.push_str(&format!("<g id=\"critical\" fill=\"none\" stroke=\"{CRITICAL}\" stroke-width=\"1.6\">\n"));
+    for (r, run) in runs.iter().enumerate() {
+        let t0 = run.trace.start().as_ns();
+        let lane = |d: u32| layouts[r].of_device.get(d as usize).copied().flatten().map(|l| first_lane[r] + l);
+        for e in &run.report.critical_path {
+            let (y, h) = match (e.kind, e.to_device()) {
+                ("send", Some(dst)) if comm => match lane(dst) {
+                    Some(l) => (lane_y(l) + lane_h + 2.0 + comm_h / 2.0 + (comm_h / 2.0 - comm_row) / 2.0, comm_row),
+                    None => continue,
+                },
+                ("send", _) | ("sync", _) => continue,
+                _ => match lane(e.device) {
+                    Some(l) => (lane_y(l), lane_h),
+                    None => continue,
+                },
+            };
+            let Some((x0, x1)) = span(e.start_ns() - t0, e.end_ns() - t0) else { continue };
+            let _ = writeln!(
+                body,
+                "<rect x=\"{x0:.2}\" y=\"{y:.2}\" width=\"{:.2}\" height=\"{h:.2}\"/>",
+                (x1 - x0).max(0.5)
+            );
+        }
+    }
+    body.push_str("</g>\n");
     // Legend and captions.
     let legend_y = title_h + plot_h + 6.0;
     body.push_str("<g id=\"legend\" font-family=\"sans-serif\" font-size=\"12\">\n");
