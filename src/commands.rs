@@ -196,6 +196,10 @@ pub struct RunRequest<'a> {
     pub devices: Option<Vec<u32>>,
     /// Print the critical path after the summary.
     pub critical_path: bool,
+    /// Re-simulate with each stage (and layer) and link faster.
+    pub what_if: Option<crate::whatif::Scope>,
+    /// The factor `--what-if` multiplies a target's time by.
+    pub what_if_factor: f64,
 }
 
 /// `baton run`: outputs `--svg`, `--memory-svg`, `--layers-csv`, `--trace`, `--json`.
@@ -220,7 +224,16 @@ pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandErr
             )));
         }
     }
-    let outcome = crate::simulate(&scenario)?;
+    if !(r.what_if_factor > 0.0 && r.what_if_factor < 1.0) {
+        return Err(CommandError::Chart(format!(
+            "--what-if-factor must be between 0 and 1 (0.9: each part 10% faster), found {}",
+            r.what_if_factor
+        )));
+    }
+    let mut outcome = crate::simulate(&scenario)?;
+    if let Some(scope) = r.what_if {
+        outcome.report.what_if = crate::whatif::analyse(&scenario, &outcome, r.what_if_factor, scope)?;
+    }
     let (trace, report) = (&outcome.trace, &outcome.report);
     check_view(&r.view, &["--svg", "--memory-svg"], outputs, Some(report.step_time_ns))?;
     if outputs.wants("--svg") {
@@ -259,6 +272,10 @@ pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandErr
     if r.critical_path {
         text.push('\n');
         text.push_str(&baton_report::critical::render_text(trace, &report.critical_path));
+    }
+    if r.what_if.is_some() {
+        text.push('\n');
+        text.push_str(&crate::whatif::render_text(&report.what_if, report.step_time_ns));
     }
     let over = report.over_capacity();
     let then = (r.strict && !over.is_empty()).then(|| {

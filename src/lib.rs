@@ -12,6 +12,7 @@ pub mod compare;
 pub mod layout;
 pub mod planner;
 pub mod sweep;
+pub mod whatif;
 
 pub use baton_engine as engine;
 pub use baton_executor as executor;
@@ -940,9 +941,14 @@ pub fn auto_costs(s: &Scenario) -> baton_schedule::auto::Costs {
 /// for `zb-auto`, plays each of its candidate orders and keeps the fastest
 /// (the first of equals), noting the choice in the report.
 fn play(s: &Scenario, fast: bool, one_replica: bool) -> Result<SimulatedStep, SimulateError> {
+    play_on(s, fast, one_replica, &topology(s))
+}
+
+/// [`play`] on this topology (the scenario's, or one with a link changed).
+fn play_on(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Result<SimulatedStep, SimulateError> {
     let tensor_of = |x: &Scenario| if fast { tensor_config_fast(x) } else { tensor_config(x) };
     if s.pipeline.schedule != baton_schedule::ScheduleKind::ZbAuto {
-        return play_plan(s, fixed_plan(s)?, tensor_of(s).as_ref(), one_replica);
+        return play_plan(s, fixed_plan(s)?, tensor_of(s).as_ref(), one_replica, topo);
     }
     let costs = auto_costs(s);
     let shape = s.shape();
@@ -951,12 +957,12 @@ fn play(s: &Scenario, fast: bool, one_replica: bool) -> Result<SimulatedStep, Si
     let mut chosen = "";
     for c in baton_schedule::auto::candidates(shape, &costs, s.pipeline.max_in_flight) {
         let step = if c.plan.shape.split_backward {
-            play_plan(s, c.plan, tensor_of(s).as_ref(), one_replica)?
+            play_plan(s, c.plan, tensor_of(s).as_ref(), one_replica, topo)?
         } else {
             // The fused order runs the scenario as 1F1B (B and W in one op).
             let mut fused = s.clone();
             fused.pipeline.schedule = baton_schedule::ScheduleKind::OneFOneB;
-            let mut step = play_plan(&fused, c.plan, tensor_of(&fused).as_ref(), one_replica)?;
+            let mut step = play_plan(&fused, c.plan, tensor_of(&fused).as_ref(), one_replica, topo)?;
             step.trace.plan.kind = baton_schedule::ScheduleKind::ZbAuto;
             step.report.schedule = baton_schedule::ScheduleKind::ZbAuto.name().to_string();
             step
@@ -1003,12 +1009,13 @@ fn play_plan(
     plan: baton_schedule::Plan,
     tensor: Option<&TensorConfig>,
     one_replica: bool,
+    topo: &Topology,
 ) -> Result<SimulatedStep, SimulateError> {
     let variation =
         RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends, one_replica };
     let sync = sync_config(s);
     let trace =
-        baton_executor::simulate_parallel(plan, &stage_costs(s), topology(s), variation, sync.as_ref(), tensor)?;
+        baton_executor::simulate_parallel(plan, &stage_costs(s), topo.clone(), variation, sync.as_ref(), tensor)?;
     let report = baton_report::build(&trace, &labels(s));
     Ok(SimulatedStep { trace, report })
 }
@@ -1016,4 +1023,10 @@ fn play_plan(
 /// Simulates one training step of `s` and reports on it.
 pub fn simulate(s: &Scenario) -> Result<SimulatedStep, SimulateError> {
     play(s, false, false)
+}
+
+/// [`simulate`] on `topo` instead of the scenario's own topology (built by
+/// [`topology`] and then changed, e.g. one link made faster).
+pub fn simulate_on(s: &Scenario, topo: &Topology) -> Result<SimulatedStep, SimulateError> {
+    play_on(s, false, false, topo)
 }

@@ -40,6 +40,8 @@ enum Command {
         baton run scenarios/heavy-head.yaml --show-layers --layers-csv layers.csv\n  \
         baton run scenarios/replicas.yaml --svg replicas.svg --devices 0-7\n  \
         baton run scenarios/unbalanced-split.yaml --critical-path\n  \
+        baton run scenarios/unbalanced-split.yaml --what-if\n  \
+        baton run scenarios/unbalanced-split.yaml --what-if layers --what-if-factor 0.5\n  \
         baton run scenarios/zero-bubble.yaml --set pipeline.schedule=zb-auto\n  \
         baton run scenarios/zero-bubble.yaml --set pipeline.schedule=custom --set pipeline.order=zero-bubble-drain.order\n\n\
         Exit status: 0 success, 2 invalid scenario or usage, 3 over memory capacity with --strict, 1 anything else.", outputs_note!()))]
@@ -356,6 +358,15 @@ struct RunArgs {
     /// (each device's run of ops compacted), e.g. --critical-path.
     #[arg(long)]
     critical_path: bool,
+    /// Re-simulate with each stage's time (with `layers`, also each layer's)
+    /// and each busy link's cut by --what-if-factor, and rank them by how
+    /// much the step shortens, e.g. --what-if or --what-if layers.
+    #[arg(long, value_name = "stages|layers", num_args = 0..=1, default_missing_value = "stages", value_parser = ["stages", "layers"])]
+    what_if: Option<String>,
+    /// The factor --what-if multiplies a part's time by (between 0 and 1),
+    /// e.g. --what-if-factor 0.5.
+    #[arg(long, value_name = "F", default_value_t = 0.9)]
+    what_if_factor: f64,
     /// Write the per-layer cost table as a profile CSV that `model: { profile: PATH }`
     /// reads back exactly, e.g. --layers-csv layers.csv.
     #[arg(long, value_name = "PATH|-")]
@@ -415,6 +426,14 @@ fn main() -> ExitCode {
                 view: a.chart.view(),
                 devices: a.devices.as_ref().map(|l| l.0.clone()),
                 critical_path: a.critical_path,
+                what_if: a.what_if.as_deref().map(|w| {
+                    if w == "layers" {
+                        baton::whatif::Scope::Layers
+                    } else {
+                        baton::whatif::Scope::Stages
+                    }
+                }),
+                what_if_factor: a.what_if_factor,
             };
             finish(commands::run(&r, &mut o), o)
         }),

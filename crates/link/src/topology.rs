@@ -187,6 +187,23 @@ impl Topology {
         self.links[id.0 as usize]
     }
 
+    /// Replaces link `id`'s latency and bandwidth (every route through it
+    /// takes the new latency).
+    pub fn set_link(&mut self, id: LinkId, spec: LinkSpec) {
+        self.links[id.0 as usize] = spec;
+        let n = self.devices as usize;
+        for pair in 0..n * n {
+            let (a, b) = (self.route_start[pair] as usize, self.route_start[pair + 1] as usize);
+            self.route_latency_ns[pair] =
+                self.route_links[a..b].iter().map(|l| self.links[l.0 as usize].latency_ns).sum();
+        }
+    }
+
+    /// The id of the link named `name`, if any.
+    pub fn link_named(&self, name: &str) -> Option<LinkId> {
+        self.names.iter().position(|n| n == name).map(|i| LinkId(i as u32))
+    }
+
     /// A link's name, e.g. `dev0->dev1`, `node0-card1 up`.
     pub fn link_name(&self, id: LinkId) -> &str {
         &self.names[id.0 as usize]

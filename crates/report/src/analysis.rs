@@ -352,10 +352,35 @@ pub struct Report {
     /// The chain of ops, transfers and waits that sets the step time, first
     /// link first ([`crate::critical`]).
     pub critical_path: Vec<crate::critical::PathEntry>,
+    /// With `--what-if`: how much the step shortens when each stage, layer
+    /// or link takes less time, ranked by gain (empty otherwise, and then
+    /// left out of the JSON).
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub what_if: Vec<WhatIf>,
     /// `zb-auto` only: the order it chose among those it tried, and how far
     /// the step is above the busiest device's total work (a lower bound).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub schedule_choice: Option<ScheduleChoice>,
+}
+
+/// One re-simulation of `--what-if`.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct WhatIf {
+    /// `stage N`, `layer NAME` or `link NAME` (as in `links[]`).
+    pub target: String,
+    /// The factor its time was multiplied by (0.9: 10% less).
+    pub factor: f64,
+    /// The re-simulated step time, in milliseconds.
+    pub step_time_ms: f64,
+    /// How much shorter the step is than the run's, in milliseconds (negative
+    /// when it got longer).
+    pub gain_ms: f64,
+    /// The work the change removes, in milliseconds: the stage's or layer's
+    /// compute on one device of one pipeline, or the link's busy time, times
+    /// `1 - factor`.
+    pub saved_ms: f64,
+    /// `gain_ms / saved_ms` (0 when nothing is saved).
+    pub gain_per_ms_saved: f64,
 }
 
 /// One order `zb-auto` tried and its simulated step.
@@ -606,6 +631,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         gaps,
         collectives,
         critical_path: crate::critical::Graph::of(trace).critical_path(),
+        what_if: Vec::new(),
         schedule_choice: None,
     }
 }
