@@ -202,7 +202,7 @@ pub struct RunRequest<'a> {
     pub what_if_factor: f64,
 }
 
-/// `baton run`: outputs `--svg`, `--memory-svg`, `--layers-csv`, `--trace`, `--json`.
+/// `baton run`: outputs `--svg`, `--memory-svg`, `--layers-csv`, `--trace`, `--events`, `--json`.
 pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandError> {
     let scenario = baton_scenario::load(r.scenario, r.sets)?;
     let making = Making {
@@ -259,6 +259,7 @@ pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandErr
         baton_scenario::profile::write(&scenario.layers, w).map_err(std::io::Error::other)
     })?;
     outputs.write_with("--trace", |w| baton_report::csv::write(trace, w).map_err(std::io::Error::other))?;
+    outputs.write_with("--events", |w| baton_report::events::write(trace, report, w).map_err(std::io::Error::other))?;
     if outputs.wants("--json") {
         let json = baton_report::json::render(report, &Default::default()).map_err(render("encode the report"))?;
         outputs.write("--json", json.as_bytes())?;

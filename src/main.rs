@@ -339,9 +339,13 @@ struct RunArgs {
     #[arg(long, value_name = "PATH|-")]
     json: Option<PathBuf>,
     /// Write every operation and transfer as CSV to PATH
-    /// (device,kind,micro_batch,stage,start_ns,end_ns), e.g. --trace trace.csv.
+    /// (device,kind,micro_batch,stage,start_ns,end_ns,slack_ns), e.g. --trace trace.csv.
     #[arg(long, value_name = "PATH|-")]
     trace: Option<PathBuf>,
+    /// Write the run in the Trace Event Format (JSON) for general-purpose
+    /// trace viewers, critical path flagged, e.g. --events run.json.
+    #[arg(long, value_name = "PATH|-")]
+    events: Option<PathBuf>,
     /// Override a value of the scenario by its dotted key path before it is
     /// checked; repeatable, e.g. --set pipeline.micro_batches=16 --set pipeline.schedule=fill-drain.
     #[arg(long = "set", value_name = "KEY=VALUE")]
@@ -413,6 +417,7 @@ fn main() -> ExitCode {
             memory(&a.memory_svg),
             layers(&a.layers_csv),
             trace(&a.trace),
+            ("--events", "trace events", &a.events),
             json(&a.json, "report"),
         ])
         .and_then(|mut o| {

@@ -259,3 +259,69 @@ fn dev_stdout_is_standard_output() {
     let v: serde_json::Value = serde_json::from_slice(&std::fs::read(&file).unwrap()).unwrap();
     assert_eq!(v["micro_batches"], 8);
 }
+
+#[test]
+fn trace_events_carry_the_formats_required_fields() {
+    // The Trace Event Format (the JSON trace format documented for
+    // Chromium's tracing; its fields here from memory of that document): an
+    // object whose `traceEvents` array holds events with `ph`, `pid`, `tid`
+    // and `name`; complete events (`ph: "X"`) add `ts` and `dur` in
+    // microseconds (and a `cat`); metadata events (`ph: "M"`) name
+    // processes and threads in `args.name`.
+    let out = baton(&["run", "scenarios/replicas.yaml", "--events", "-", "--json", "/dev/null"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let events = v["traceEvents"].as_array().unwrap();
+    let report = baton::simulate(&baton::scenario::load(std::path::Path::new("scenarios/replicas.yaml"), &[]).unwrap())
+        .unwrap()
+        .report;
+    let mut named_threads = std::collections::HashSet::new();
+    let mut counts: std::collections::HashMap<String, usize> = Default::default();
+    let mut critical = 0;
+    for e in events {
+        let ph = e["ph"].as_str().unwrap();
+        assert!(e["name"].is_string() && e["pid"].is_u64() && e["tid"].is_u64(), "{e}");
+        match ph {
+            "M" => {
+                let name = e["name"].as_str().unwrap();
+                assert!(
+                    ["process_name", "process_sort_index", "thread_name", "thread_sort_index"].contains(&name),
+                    "{e}"
+                );
+                if name == "thread_name" {
+                    assert!(e["args"]["name"].is_string());
+                    named_threads.insert((e["pid"].as_u64().unwrap(), e["tid"].as_u64().unwrap()));
+                }
+            }
+            "X" => {
+                assert!(e["ts"].as_f64().unwrap() >= 0.0 && e["dur"].as_f64().unwrap() >= 0.0, "{e}");
+                assert!(
+                    e["cat"].is_string() && e["args"]["micro_batch"].is_u64() && e["args"]["stage"].is_u64(),
+                    "{e}"
+                );
+                assert!(named_threads.contains(&(e["pid"].as_u64().unwrap(), e["tid"].as_u64().unwrap())), "{e}");
+                *counts.entry(e["cat"].as_str().unwrap().to_string()).or_default() += 1;
+                if e["args"]["critical"] == true {
+                    critical += 1;
+                }
+            }
+            other => panic!("unexpected phase {other}"),
+        }
+    }
+    let ops: usize = ["forward", "backward", "weight", "encode", "update"]
+        .iter()
+        .map(|k| counts.get(*k).copied().unwrap_or(0))
+        .sum();
+    assert_eq!(ops, report.ops);
+    assert_eq!(counts["send"], report.transfers);
+    assert_eq!(counts["sync"], report.sync_transfers);
+    // The critical path's ops and sends are flagged, and nothing else.
+    assert_eq!(critical, report.critical_path.iter().filter(|e| e.kind != "sync").count());
+    // Times: the last event ends at the step's end (microseconds).
+    let end = events
+        .iter()
+        .filter(|e| e["ph"] == "X")
+        .map(|e| e["ts"].as_f64().unwrap() + e["dur"].as_f64().unwrap())
+        .fold(0.0, f64::max);
+    assert!((end - report.step_time_ms * 1000.0).abs() < 1e-3, "{end}");
+}

@@ -49,6 +49,7 @@
 mod analysis;
 pub mod critical;
 pub mod csv;
+pub mod events;
 pub mod json;
 pub mod svg;
 pub mod text;
