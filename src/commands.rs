@@ -200,6 +200,8 @@ pub struct RunRequest<'a> {
     pub what_if: Option<crate::whatif::Scope>,
     /// The factor `--what-if` multiplies a target's time by.
     pub what_if_factor: f64,
+    /// Independent draws of the variability to summarise (`--trials`).
+    pub trials: Option<u32>,
 }
 
 /// `baton run`: outputs `--svg`, `--memory-svg`, `--layers-csv`, `--trace`, `--events`, `--json`.
@@ -234,6 +236,21 @@ pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandErr
     if let Some(scope) = r.what_if {
         outcome.report.what_if = crate::whatif::analyse(&scenario, &outcome, r.what_if_factor, scope)?;
     }
+    if outputs.wants("--trials-svg") && r.trials.is_none() {
+        return Err(CommandError::Chart("--trials-svg draws the draws of --trials N; add --trials".into()));
+    }
+    let mut trial_times = Vec::new();
+    if let Some(n) = r.trials {
+        if n == 0 || n > crate::trials::MAX_TRIALS {
+            return Err(CommandError::Chart(format!(
+                "--trials takes 1 to {} draws, found {n}",
+                crate::trials::MAX_TRIALS
+            )));
+        }
+        let (t, times) = crate::trials::run(&scenario, n)?;
+        outcome.report.trials = Some(t);
+        trial_times = times;
+    }
     let (trace, report) = (&outcome.trace, &outcome.report);
     check_view(&r.view, &["--svg", "--memory-svg"], outputs, Some(report.step_time_ns))?;
     if outputs.wants("--svg") {
@@ -259,6 +276,13 @@ pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandErr
         baton_scenario::profile::write(&scenario.layers, w).map_err(std::io::Error::other)
     })?;
     outputs.write_with("--trace", |w| baton_report::csv::write(trace, w).map_err(std::io::Error::other))?;
+    if let Some(t) = &report.trials {
+        if outputs.wants("--trials-svg") {
+            let chart = crate::trials::chart(&scenario, t, &trial_times);
+            let svg = baton_report::svg::histogram::render(&chart).map_err(render("draw the histogram"))?;
+            outputs.write("--trials-svg", svg.as_bytes())?;
+        }
+    }
     outputs.write_with("--events", |w| baton_report::events::write(trace, report, w).map_err(std::io::Error::other))?;
     if outputs.wants("--json") {
         let json = baton_report::json::render(report, &Default::default()).map_err(render("encode the report"))?;
@@ -277,6 +301,10 @@ pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandErr
     if r.what_if.is_some() {
         text.push('\n');
         text.push_str(&crate::whatif::render_text(&report.what_if, report.step_time_ns));
+    }
+    if let Some(t) = &report.trials {
+        text.push('\n');
+        text.push_str(&crate::trials::render_text(t, scenario.seed));
     }
     let over = report.over_capacity();
     let then = (r.strict && !over.is_empty()).then(|| {

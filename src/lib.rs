@@ -12,6 +12,7 @@ pub mod compare;
 pub mod layout;
 pub mod planner;
 pub mod sweep;
+pub mod trials;
 pub mod whatif;
 
 pub use baton_engine as engine;
@@ -539,7 +540,21 @@ pub fn labels(s: &Scenario) -> Labels {
         memory: memory_inputs(s),
         flops: model_flops_per_step(s).zip(s.cluster.device.peak_flop_per_s.map(|p| p as f64)),
         sequence: s.parallel.sequence,
+        variability: variability_note(s),
     }
+}
+
+/// Stragglers and rare slow ops in words (empty when there are none).
+pub fn variability_note(s: &Scenario) -> String {
+    let mut parts = Vec::new();
+    if !s.cluster.stragglers.is_empty() {
+        let list: Vec<String> = s.cluster.stragglers.iter().map(|(d, f)| format!("device {d} x{f}")).collect();
+        parts.push(format!("stragglers {}", list.join(", ")));
+    }
+    if s.cluster.slow_chance > 0.0 {
+        parts.push(format!("{}% of ops x{} slower", s.cluster.slow_chance * 100.0, s.cluster.slow_factor));
+    }
+    parts.join("; ")
 }
 
 /// Model FLOPs of one step over all replicas, for the transformer form:
@@ -767,7 +782,7 @@ pub fn step_lower_bound_ns(s: &Scenario) -> u64 {
 /// the replicas apart and [`simulate_fast`] plays replica 0 alone.
 pub fn replicas_look_alike(s: &Scenario) -> bool {
     let (d, p, t) = (s.parallel.data, s.pipeline.stages, s.parallel.tensor.max(1));
-    if d <= 1 || s.cluster.jitter > 0.0 {
+    if d <= 1 || s.cluster.jitter > 0.0 || s.cluster.slow_chance > 0.0 || !s.cluster.stragglers.is_empty() {
         return false;
     }
     let topology = topology(s);
@@ -1011,8 +1026,15 @@ fn play_plan(
     one_replica: bool,
     topo: &Topology,
 ) -> Result<SimulatedStep, SimulateError> {
-    let variation =
-        RunOptions { jitter: s.cluster.jitter, seed: s.seed, blocking_sends: s.pipeline.blocking_sends, one_replica };
+    let variation = RunOptions {
+        jitter: s.cluster.jitter,
+        seed: s.seed,
+        blocking_sends: s.pipeline.blocking_sends,
+        one_replica,
+        stragglers: s.cluster.stragglers.clone(),
+        slow_chance: s.cluster.slow_chance,
+        slow_factor: s.cluster.slow_factor,
+    };
     let sync = sync_config(s);
     let trace =
         baton_executor::simulate_parallel(plan, &stage_costs(s), topo.clone(), variation, sync.as_ref(), tensor)?;

@@ -42,6 +42,7 @@ enum Command {
         baton run scenarios/unbalanced-split.yaml --critical-path\n  \
         baton run scenarios/unbalanced-split.yaml --what-if\n  \
         baton run scenarios/unbalanced-split.yaml --what-if layers --what-if-factor 0.5\n  \
+        baton run scenarios/unbalanced-split.yaml --set cluster.jitter=0.05 --trials 1000 --trials-svg trials.svg\n  \
         baton run scenarios/zero-bubble.yaml --set pipeline.schedule=zb-auto\n  \
         baton run scenarios/zero-bubble.yaml --set pipeline.schedule=custom --set pipeline.order=zero-bubble-drain.order\n\n\
         Exit status: 0 success, 2 invalid scenario or usage, 3 over memory capacity with --strict, 1 anything else.", outputs_note!()))]
@@ -371,6 +372,15 @@ struct RunArgs {
     /// e.g. --what-if-factor 0.5.
     #[arg(long, value_name = "F", default_value_t = 0.9)]
     what_if_factor: f64,
+    /// Simulate N independent draws of the variability (seeds seed to
+    /// seed + N - 1, in parallel) and report the step time's p50, p90, p99,
+    /// max and mean, e.g. --trials 1000.
+    #[arg(long, value_name = "N")]
+    trials: Option<u32>,
+    /// Draw the histogram of the --trials step times as SVG to PATH, e.g.
+    /// --trials-svg trials.svg.
+    #[arg(long, value_name = "PATH|-")]
+    trials_svg: Option<PathBuf>,
     /// Write the per-layer cost table as a profile CSV that `model: { profile: PATH }`
     /// reads back exactly, e.g. --layers-csv layers.csv.
     #[arg(long, value_name = "PATH|-")]
@@ -418,6 +428,7 @@ fn main() -> ExitCode {
             layers(&a.layers_csv),
             trace(&a.trace),
             ("--events", "trace events", &a.events),
+            ("--trials-svg", "histogram", &a.trials_svg),
             json(&a.json, "report"),
         ])
         .and_then(|mut o| {
@@ -439,6 +450,7 @@ fn main() -> ExitCode {
                     }
                 }),
                 what_if_factor: a.what_if_factor,
+                trials: a.trials,
             };
             finish(commands::run(&r, &mut o), o)
         }),

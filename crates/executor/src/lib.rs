@@ -694,7 +694,7 @@ impl Model for Executor<'_> {
 }
 
 /// How a step is run: compute-time variation and whether sends block.
-#[derive(Clone, Copy, Debug, Default, PartialEq)]
+#[derive(Clone, Debug, Default, PartialEq)]
 pub struct RunOptions {
     /// Each op's compute time is scaled by a factor drawn uniformly from
     /// `[1 - jitter, 1 + jitter]`; 0 means every op takes exactly its cost.
@@ -714,6 +714,14 @@ pub struct RunOptions {
     /// (no jitter, each replica's pipeline on links of its own with the same
     /// speeds); the caller decides.
     pub one_replica: bool,
+    /// Devices (topology device ids, `w * t + k`) whose every op takes this
+    /// many times longer; a tensor group runs at its slowest rank's pace.
+    pub stragglers: Vec<(u32, f64)>,
+    /// The chance that an op is a rare slow one, drawn per op after its
+    /// jitter factor from the same generator.
+    pub slow_chance: f64,
+    /// How many times longer a rare slow op takes.
+    pub slow_factor: f64,
 }
 
 /// Simulates one step of `plan` with every op taking exactly its cost.
@@ -785,12 +793,32 @@ pub fn simulate_parallel(
     if topology.devices() < needed {
         return Err(ExecError::TopologyDevices { devices: topology.devices(), stages: needed });
     }
-    let jitter = (options.jitter > 0.0).then(|| {
+    if options.slow_chance > 0.0 && !(options.slow_chance <= 1.0 && options.slow_factor >= 1.0) {
+        return Err(ExecError::Jitter(options.slow_chance));
+    }
+    let varied = options.jitter > 0.0 || options.slow_chance > 0.0 || !options.stragglers.is_empty();
+    let jitter = varied.then(|| {
         use rand::RngExt;
         let mut rng = baton_engine::seeded_rng(options.seed);
-        let j = options.jitter;
+        let (j, chance) = (options.jitter, options.slow_chance);
+        // A worker's group runs at its slowest rank's pace.
+        let slowdown = |w: usize| {
+            options.stragglers.iter().filter(|&&(d, _)| (d as usize) / t == w).map(|&(_, f)| f).fold(1.0f64, f64::max)
+        };
         (0..workers)
-            .map(|w| plan.per_device[w % p].iter().map(|_| rng.random_range(1.0 - j..=1.0 + j)).collect())
+            .map(|w| {
+                let fixed = slowdown(w);
+                plan.per_device[w % p]
+                    .iter()
+                    .map(|_| {
+                        let mut f = if j > 0.0 { rng.random_range(1.0 - j..=1.0 + j) } else { 1.0 };
+                        if chance > 0.0 && rng.random_range(0.0..1.0) < chance {
+                            f *= options.slow_factor;
+                        }
+                        f * fixed
+                    })
+                    .collect()
+            })
             .collect()
     });
     let slots = shape.op_slots();

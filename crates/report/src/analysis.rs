@@ -307,6 +307,10 @@ pub struct Report {
     pub seed: u64,
     /// Compute-time jitter (0: none).
     pub jitter: f64,
+    /// Compute variation besides jitter, in words (empty: none; then left
+    /// out of the JSON).
+    #[serde(skip_serializing_if = "String::is_empty")]
+    pub variability: String,
     /// Step time in milliseconds.
     pub step_time_ms: f64,
     /// Step time in nanoseconds.
@@ -357,10 +361,55 @@ pub struct Report {
     /// left out of the JSON).
     #[serde(skip_serializing_if = "Vec::is_empty")]
     pub what_if: Vec<WhatIf>,
+    /// With `--trials N`: the step time over N draws of the variability
+    /// (left out of the JSON otherwise).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub trials: Option<Trials>,
     /// `zb-auto` only: the order it chose among those it tried, and how far
     /// the step is above the busiest device's total work (a lower bound).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub schedule_choice: Option<ScheduleChoice>,
+}
+
+/// The step time over independent draws (`--trials`), percentiles by the
+/// nearest-rank method: the p-th percentile of n sorted values is the one at
+/// rank `ceil(p / 100 x n)` (1-based).
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Trials {
+    /// Draws (seeds `seed` to `seed + count - 1`).
+    pub count: u32,
+    /// Median step time, in milliseconds.
+    pub p50_ms: f64,
+    /// 90th percentile.
+    pub p90_ms: f64,
+    /// 99th percentile.
+    pub p99_ms: f64,
+    /// The longest.
+    pub max_ms: f64,
+    /// The mean.
+    pub mean_ms: f64,
+}
+
+impl Trials {
+    /// The figures of these step times (ns; at least one).
+    pub fn of(step_ns: &[u64]) -> Option<Trials> {
+        let mut v = step_ns.to_vec();
+        v.sort_unstable();
+        let n = v.len();
+        if n == 0 {
+            return None;
+        }
+        let rank = |p: u64| v[((p as usize * n).div_ceil(100)).clamp(1, n) - 1];
+        let sum: u128 = v.iter().map(|&x| x as u128).sum();
+        Some(Trials {
+            count: n as u32,
+            p50_ms: ms(rank(50)),
+            p90_ms: ms(rank(90)),
+            p99_ms: ms(rank(99)),
+            max_ms: ms(v[n - 1]),
+            mean_ms: sum as f64 / n as f64 / 1e6,
+        })
+    }
 }
 
 /// One re-simulation of `--what-if`.
@@ -443,6 +492,9 @@ pub struct Labels {
     pub flops: Option<(f64, f64)>,
     /// Whether the tensor groups use sequence parallelism (shown only).
     pub sequence: bool,
+    /// Compute variation besides jitter, in words (stragglers, rare slow
+    /// ops), or empty.
+    pub variability: String,
 }
 
 /// What the memory model needs beyond the trace.
@@ -588,6 +640,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         chunks: shape.chunks,
         seed: labels.seed,
         jitter: labels.jitter,
+        variability: labels.variability.clone(),
         step_time_ms: ms(step_ns),
         step_time_ns: step_ns,
         bubble_fraction: if denom == 0.0 { 0.0 } else { total_idle as f64 / denom },
@@ -632,6 +685,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         collectives,
         critical_path: crate::critical::Graph::of(trace).critical_path(),
         what_if: Vec::new(),
+        trials: None,
         schedule_choice: None,
     }
 }

@@ -48,6 +48,9 @@ pub fn render(report: &Report, options: &TextOptions) -> String {
         report.seed,
         if report.jitter > 0.0 { format!(", compute jitter +-{}%", report.jitter * 100.0) } else { String::new() }
     );
+    if !report.variability.is_empty() {
+        let _ = writeln!(s, "variability: {}", report.variability);
+    }
     if let Some(c) = &report.schedule_choice {
         let tried: Vec<String> =
             c.tried.iter().map(|t| format!("{} {}", t.order, format_ns((t.step_ms * 1e6).round() as u64))).collect();

@@ -257,6 +257,41 @@ pub const CLUSTER: &[Key] = &[
         "Each op's compute time is multiplied by a factor drawn uniformly from [1 - jitter, 1 + jitter].",
     ),
     key("device", Type::Section(DEVICE), "One accelerator's speed and memory."),
+    key(
+        "variability",
+        Type::Section(VARIABILITY),
+        "How compute times vary: jitter, slower devices, rare slow ops (with --trials, many draws).",
+    ),
+];
+
+/// `cluster.variability`.
+pub const VARIABILITY: &[Key] = &[
+    key(
+        "jitter",
+        Type::Number { min: 0.0, min_exclusive: false, max: 1.0, max_exclusive: true },
+        "Each op's compute time is multiplied by a factor drawn uniformly from [1 - jitter, 1 + jitter] (instead of cluster.jitter).",
+    ),
+    key("stragglers", Type::List(STRAGGLER), "Devices that are always slower, each with its slowdown."),
+    key(
+        "slow_chance",
+        Type::Number { min: 0.0, min_exclusive: false, max: 1.0, max_exclusive: false },
+        "Chance that an op is a rare slow one (0 when left out).",
+    ),
+    key(
+        "slow_factor",
+        Type::Number { min: 1.0, min_exclusive: false, max: 1000.0, max_exclusive: false },
+        "How many times longer a rare slow op takes (2 when left out).",
+    ),
+];
+
+/// `cluster.variability.stragglers[]`.
+pub const STRAGGLER: &[Key] = &[
+    required("device", whole(0, MAX_DEVICES - 1), "The device, numbered as in the report (devices[].device)."),
+    required(
+        "slowdown",
+        Type::Number { min: 1.0, min_exclusive: false, max: 1000.0, max_exclusive: false },
+        "How many times longer each of its ops takes.",
+    ),
 ];
 
 /// `cluster.link` and `cluster.device_link`.

@@ -268,6 +268,13 @@ pub struct Cluster {
     /// `[1 - jitter, 1 + jitter]` with the scenario's seed; 0 (the default)
     /// makes every op take exactly its cost.
     pub jitter: f64,
+    /// Devices (numbered as in the report) whose ops always take longer,
+    /// with the factor (`cluster.variability.stragglers`).
+    pub stragglers: Vec<(u32, f64)>,
+    /// The chance that an op is a rare slow one.
+    pub slow_chance: f64,
+    /// How many times longer a rare slow op takes.
+    pub slow_factor: f64,
 }
 
 /// The `pipeline` section: stages, split, micro-batches and schedule.
@@ -926,6 +933,18 @@ fn from_tree(
         server_devices: Vec::new(),
     };
     check_sync(&top, &mut scenario)?;
+    let used = scenario.workers() + scenario.server_devices.len() as u32;
+    if let Some(&(d, _)) = scenario.cluster.stragglers.iter().find(|&&(d, _)| d >= used) {
+        let origin = top.get("cluster").map(|(_, n)| n.origin.clone()).unwrap_or(Origin::Default);
+        return Err(cx.err(
+            "cluster.variability.stragglers",
+            &origin,
+            format!(
+                "device {d} is not in the step: it uses {used} devices, numbered 0 to {} as in the report",
+                used - 1
+            ),
+        ));
+    }
     if let Some(bound) = step_bound_ns(&scenario).filter(|&b| b > MAX_STEP_NS) {
         let origin = top
             .get("pipeline")
@@ -1381,7 +1400,54 @@ fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
         let (link, _) = c.req("link", |l| read_link(l, false))?;
         (devices, Fabric::Flat { link })
     };
-    let jitter = c.opt("jitter", |a| a.fraction())?.unwrap_or(0.0);
+    let mut jitter = c.opt("jitter", |a| a.fraction())?.unwrap_or(0.0);
+    let (mut stragglers, mut slow_chance, mut slow_factor) = (Vec::new(), 0.0, 2.0);
+    if let Some(v) = c.opt("variability", |v| {
+        let v_at = v;
+        let v = v.map(keys::VARIABILITY)?;
+        let j = v.opt("jitter", |a| a.fraction())?;
+        if j.is_some() && c.get("jitter").is_some() {
+            return Err(v_at.err("give jitter once: cluster.jitter or cluster.variability.jitter, not both"));
+        }
+        let number = |a: Field<'_>, lo: f64, hi: f64| -> Result<f64, ScenarioError> {
+            let x = a.number()?;
+            if (lo..=hi).contains(&x) {
+                Ok(x)
+            } else {
+                Err(a.err(format!("must be from {lo} to {hi}, found {x}")))
+            }
+        };
+        let chance = v.opt("slow_chance", |a| number(a, 0.0, 1.0))?;
+        let factor = v.opt("slow_factor", |a| number(a, 1.0, 1000.0))?;
+        let list = v.opt("stragglers", |list| {
+            let Value::Seq(items) = &list.node.value else {
+                return Err(
+                    list.err(format!("expected a list of {{ device, slowdown }}, found {}", list.node.value.kind()))
+                );
+            };
+            let mut out: Vec<(u32, f64)> = Vec::new();
+            for (i, item) in items.iter().enumerate() {
+                let path = format!("{}.{i}", list.path);
+                let at = Field { cx: list.cx, path: &path, node: item, def: None };
+                let m = at.map(keys::STRAGGLER)?;
+                let device = m.req("device", |a| a.whole().map(|x| x as u32))?;
+                let slowdown = m.req("slowdown", |a| number(a, 1.0, 1000.0))?;
+                if out.iter().any(|&(d, _)| d == device) {
+                    return Err(at.err(format!("device {device} is listed twice")));
+                }
+                out.push((device, slowdown));
+            }
+            Ok(out)
+        })?;
+        Ok((j, list.unwrap_or_default(), chance, factor))
+    })? {
+        if let Some(j) = v.0 {
+            jitter = j;
+        }
+        stragglers = v.1;
+        slow_chance = v.2.unwrap_or(0.0);
+        slow_factor = v.3.unwrap_or(2.0);
+    }
     let device = c
         .opt("device", |d| {
             let d = d.map(keys::DEVICE)?;
@@ -1400,7 +1466,7 @@ fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
             })
         })?
         .unwrap_or_default();
-    Ok(Cluster { devices, fabric, jitter, device })
+    Ok(Cluster { devices, fabric, jitter, device, stragglers, slow_chance, slow_factor })
 }
 
 fn read_training(t: Field<'_>) -> Result<Training, ScenarioError> {

@@ -8,6 +8,7 @@
 //! written as plain SVG in the chart's pixel coordinates.
 
 pub mod gantt;
+pub mod histogram;
 pub mod line;
 pub mod memory;
 
