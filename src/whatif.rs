@@ -119,6 +119,7 @@ pub fn analyse(s: &Scenario, base: &SimulatedStep, factor: f64, scope: Scope) ->
                     target: name,
                     factor,
                     step_time_ms: step_ns as f64 / 1e6,
+                    step_time_ns: step_ns,
                     gain_ms,
                     saved_ms,
                     gain_per_ms_saved: if saved_ms > 0.0 { gain_ms / saved_ms } else { 0.0 },

@@ -421,6 +421,8 @@ pub struct WhatIf {
     pub factor: f64,
     /// The re-simulated step time, in milliseconds.
     pub step_time_ms: f64,
+    /// The same in nanoseconds.
+    pub step_time_ns: u64,
     /// How much shorter the step is than the run's, in milliseconds (negative
     /// when it got longer).
     pub gain_ms: f64,

@@ -50,7 +50,8 @@ pub struct PathEntry {
     pub(crate) end_ns: u64,
     #[serde(skip)]
     pub(crate) op: Option<Op>,
-    #[serde(skip)]
+    /// A send's receiving device (`null` for the rest).
+    #[serde(rename = "to_device")]
     pub(crate) to_device: Option<u32>,
     #[serde(skip)]
     pub(crate) link: Option<u32>,
@@ -397,7 +398,7 @@ pub fn render_text(trace: &Trace, path: &[PathEntry]) -> String {
         k += 1;
     }
     format!(
-        "critical path ({} in {} links):\n  {}\n",
+        "critical path ({} in {} links, each op, send and wait; a device's run of ops on one line):\n  {}\n",
         baton_engine::format_ns(total),
         path.len(),
         parts.join("\n  -> ")
