@@ -251,6 +251,10 @@ pub fn run(r: &RunRequest<'_>, outputs: &mut Outputs) -> Result<Done, CommandErr
         outcome.report.trials = Some(t);
         trial_times = times;
     }
+    // The critical path costs about a simulation again: only when shown.
+    if r.critical_path || outputs.wants("--json") || outputs.wants("--svg") || outputs.wants("--events") {
+        outcome.add_critical_path();
+    }
     let (trace, report) = (&outcome.trace, &outcome.report);
     check_view(&r.view, &["--svg", "--memory-svg"], outputs, Some(report.step_time_ns))?;
     if outputs.wants("--svg") {
@@ -482,7 +486,7 @@ pub fn compare(
         }
     }
     check_view(&view, &["--svg"], outputs, None)?;
-    let comparison = Comparison::run(&runs)?;
+    let comparison = Comparison::run_with(&runs, outputs.wants("--svg") || outputs.wants("--json"))?;
     check_view(&view, &["--svg"], outputs, comparison.longest_step_ns())?;
     if outputs.wants("--svg") {
         outputs.write("--svg", comparison.chart(comm_lanes, view).map_err(render("draw the chart"))?.as_bytes())?;

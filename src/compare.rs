@@ -113,7 +113,16 @@ fn label(i: usize) -> String {
 impl Comparison {
     /// Simulates each `(source, scenario)`.
     pub fn run(runs: &[Candidate]) -> Result<Self, SimulateError> {
-        let outcomes = runs.iter().map(|c| simulate(&c.scenario)).collect::<Result<Vec<_>, _>>()?;
+        Self::run_with(runs, false)
+    }
+
+    /// [`Comparison::run`], with each run's critical path when `critical`
+    /// (for the chart's outline and the JSON).
+    pub fn run_with(runs: &[Candidate], critical: bool) -> Result<Self, SimulateError> {
+        let outcomes = runs
+            .iter()
+            .map(|c| simulate(&c.scenario).map(|o| if critical { o.with_critical_path() } else { o }))
+            .collect::<Result<Vec<_>, _>>()?;
         Ok(Comparison {
             sources: runs.iter().map(|c| c.source.clone()).collect(),
             notes: runs.iter().map(|c| c.note.clone()).collect(),

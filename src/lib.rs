@@ -40,6 +40,20 @@ pub struct SimulatedStep {
     pub report: Report,
 }
 
+impl SimulatedStep {
+    /// Fills the report's critical path ([`baton_report::critical`]), which
+    /// [`simulate`] leaves empty since it costs about as much again.
+    pub fn with_critical_path(mut self) -> Self {
+        self.add_critical_path();
+        self
+    }
+
+    /// [`SimulatedStep::with_critical_path`] in place.
+    pub fn add_critical_path(&mut self) {
+        self.report.critical_path = baton_report::critical::Graph::of(&self.trace).critical_path();
+    }
+}
+
 /// Why a scenario could not be simulated.
 #[derive(Debug, Error)]
 pub enum SimulateError {

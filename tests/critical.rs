@@ -29,7 +29,7 @@ fn equal_stages_put_m_plus_p_minus_1_slots_on_the_path() {
     // through exactly those: m + p - 1 forwards and m + p - 1 backwards.
     for schedule in ["fill-drain", "1f1b"] {
         for (p, m) in [(4, 8), (3, 5), (5, 2)] {
-            let step = baton::simulate(&equal(p, m, schedule, 3, 7)).unwrap();
+            let step = baton::simulate(&equal(p, m, schedule, 3, 7)).unwrap().with_critical_path();
             let path = &step.report.critical_path;
             let sum: f64 = path.iter().map(|e| e.end_ms - e.start_ms).sum();
             assert!((sum - step.report.step_time_ms).abs() < 1e-9, "{schedule} {p} {m}");
@@ -48,7 +48,7 @@ fn equal_stages_put_m_plus_p_minus_1_slots_on_the_path() {
 
 #[test]
 fn the_text_compacts_runs_on_one_device() {
-    let step = baton::simulate(&equal(4, 8, "1f1b", 3, 7)).unwrap();
+    let step = baton::simulate(&equal(4, 8, "1f1b", 3, 7)).unwrap().with_critical_path();
     let text = baton::report::critical::render_text(&step.trace, &step.report.critical_path);
     // The last device runs every micro-batch's forward and backward in turn.
     assert!(text.contains("device 3: F0..F7, B0..B7 (80.000 us)"), "{text}");
@@ -158,7 +158,7 @@ proptest! {
              pipeline: {{ stages: {p}, micro_batches: {m}, schedule: {schedule}, chunks: {v} }}\n"
         );
         let s = parse(&text, "r.yaml", "r", &[]).unwrap();
-        let step = baton::simulate(&s).unwrap();
+        let step = baton::simulate(&s).unwrap().with_critical_path();
         let (trace, report) = (&step.trace, &step.report);
         let path = &report.critical_path;
         prop_assert!(!path.is_empty());
@@ -278,7 +278,7 @@ proptest! {
              pipeline: {{ stages: {p}, micro_batches: {m}, schedule: {schedule} }}\n"
         );
         let s = parse(&text, "w.yaml", "w", &[]).unwrap();
-        let base = baton::simulate(&s).unwrap();
+        let base = baton::simulate(&s).unwrap().with_critical_path();
         let on_path: Vec<u32> = base.report.critical_path.iter().filter(|e| e.kind != "send" && e.kind != "sync").map(|e| e.device).collect();
         let w = baton::whatif::analyse(&s, &base, 0.95, baton::whatif::Scope::Stages).unwrap();
         for d in 0..p {

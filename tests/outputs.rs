@@ -274,6 +274,7 @@ fn trace_events_carry_the_formats_required_fields() {
     let events = v["traceEvents"].as_array().unwrap();
     let report = baton::simulate(&baton::scenario::load(std::path::Path::new("scenarios/replicas.yaml"), &[]).unwrap())
         .unwrap()
+        .with_critical_path()
         .report;
     let mut named_threads = std::collections::HashSet::new();
     let mut counts: std::collections::HashMap<String, usize> = Default::default();

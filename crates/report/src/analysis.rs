@@ -354,7 +354,9 @@ pub struct Report {
     /// Every gradient collective, in the order they started.
     pub collectives: Vec<CollectiveReport>,
     /// The chain of ops, transfers and waits that sets the step time, first
-    /// link first ([`crate::critical`]).
+    /// link first ([`crate::critical`]); [`build`] leaves it empty (it costs
+    /// about as much as the simulation): fill it with
+    /// `critical::Graph::of(trace).critical_path()` when an output needs it.
     pub critical_path: Vec<crate::critical::PathEntry>,
     /// With `--what-if`: how much the step shortens when each stage, layer
     /// or link takes less time, ranked by gain (empty otherwise, and then
@@ -685,7 +687,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
             .collect(),
         gaps,
         collectives,
-        critical_path: crate::critical::Graph::of(trace).critical_path(),
+        critical_path: Vec::new(),
         what_if: Vec::new(),
         trials: None,
         schedule_choice: None,

@@ -81,6 +81,12 @@ pub struct Graph<'a> {
     /// The devices whose step ends after their last op, one tail node each.
     tail_device: Vec<u32>,
     shares: usize,
+    /// Every node's (start, end) in ns.
+    spans: Vec<(u64, u64)>,
+    /// Node `id`'s predecessors are `preds[pred_start[id]..pred_start[id + 1]]`
+    /// (the op before on its device first when there is one).
+    pred_start: Vec<u32>,
+    preds: Vec<u32>,
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -109,7 +115,89 @@ impl<'a> Graph<'a> {
                 }
             }
         }
-        Graph { trace, offset, ops, tail_device, shares: trace.tensor.max(1) as usize }
+        let mut g = Graph {
+            trace,
+            offset,
+            ops,
+            tail_device,
+            shares: trace.tensor.max(1) as usize,
+            spans: Vec::new(),
+            pred_start: Vec::new(),
+            preds: Vec::new(),
+        };
+        let n = g.len();
+        let spans: Vec<(u64, u64)> = (0..n).map(|id| g.span_of(id)).collect();
+        // Edges (predecessor, node): each op after the one before it on its
+        // device; each send after its producer, and its consumer after the
+        // last share of it (a tensor group waits for every rank's share);
+        // with blocking sends, an op after its device's previous send; a
+        // tail after its device's last op. (Data between stages on the same
+        // device needs no edge: the device's order already implies it.)
+        let mut edges: Vec<(u32, u32)> = Vec::with_capacity(2 * n);
+        for (d, recs) in trace.ops.iter().enumerate() {
+            for i in 1..recs.len() {
+                let id = g.offset[d] + i;
+                edges.push(((id - 1) as u32, id as u32));
+            }
+        }
+        let shares = g.shares;
+        let p = trace.plan.shape.stages.max(1);
+        let replica_of = |device: u32| device / shares as u32 / p;
+        let mut k = 0;
+        while k < trace.transfers.len() {
+            let end = (k + shares).min(trace.transfers.len());
+            let last = (k..end).max_by_key(|&x| (trace.transfers[x].end, std::cmp::Reverse(x))).unwrap_or(k);
+            for x in k..end {
+                let r = &trace.transfers[x];
+                let replica = replica_of(r.src);
+                let (_, pi) = trace.position_in(replica, r.producer());
+                edges.push(((g.offset[r.src as usize] + pi as usize) as u32, (g.ops + x) as u32));
+                let (_, ci) = trace.position_in(replica, r.consumer());
+                edges.push(((g.ops + last) as u32, (g.offset[r.dst as usize] + ci as usize) as u32));
+            }
+            k = end;
+        }
+        if trace.blocking_sends {
+            for (d, recs) in trace.ops.iter().enumerate() {
+                for i in 1..recs.len() {
+                    if let Some(t) = trace.outgoing_index_in(replica_of(d as u32), recs[i - 1].op) {
+                        let x = t + (d % shares);
+                        if x < trace.transfers.len() {
+                            edges.push(((g.ops + x) as u32, (g.offset[d] + i) as u32));
+                        }
+                    }
+                }
+            }
+        }
+        for (k, &d) in g.tail_device.iter().enumerate() {
+            let last = g.offset[d as usize] + trace.ops[d as usize].len() - 1;
+            edges.push((last as u32, (g.ops + trace.transfers.len() + k) as u32));
+        }
+        let mut pred_start = vec![0u32; n + 1];
+        for &(_, y) in &edges {
+            pred_start[y as usize + 1] += 1;
+        }
+        for id in 0..n {
+            pred_start[id + 1] += pred_start[id];
+        }
+        let mut fill = pred_start.clone();
+        let mut preds = vec![0u32; edges.len()];
+        for &(x, y) in &edges {
+            preds[fill[y as usize] as usize] = x;
+            fill[y as usize] += 1;
+        }
+        g.spans = spans;
+        g.pred_start = pred_start;
+        g.preds = preds;
+        g
+    }
+
+    fn span(&self, id: usize) -> (u64, u64) {
+        self.spans[id]
+    }
+
+    fn preds_of(&self, id: usize) -> &[u32] {
+        &self.preds[self.pred_start[id] as usize..self.pred_start[id + 1] as usize]
     }
 
     fn len(&self) -> usize {
@@ -127,7 +215,7 @@ impl<'a> Graph<'a> {
         }
     }
 
-    fn span(&self, id: usize) -> (u64, u64) {
+    fn span_of(&self, id: usize) -> (u64, u64) {
         match self.node(id) {
             Node::Op(d, i) => {
                 let r = &self.trace.ops[d as usize][i as usize];
@@ -144,81 +232,27 @@ impl<'a> Graph<'a> {
         }
     }
 
-    fn replica_of(&self, device: u32) -> u32 {
-        device / self.shares as u32 / self.trace.plan.shape.stages.max(1)
-    }
-
-    /// Calls `f` with each predecessor of `id`, the data dependency first.
-    fn each_pred(&self, id: usize, mut f: impl FnMut(usize)) {
-        let trace = self.trace;
-        match self.node(id) {
-            Node::Op(d, i) => {
-                let r = &trace.ops[d as usize][i as usize];
-                if !r.op.kind.is_device_work() {
-                    let replica = self.replica_of(d);
-                    if let Some(dep) = trace.dependency_in(replica, r.op) {
-                        match dep.transfer {
-                            Some(t) => {
-                                // A tensor group's ranks wait for the last share.
-                                let last = (t..(t + self.shares).min(trace.transfers.len()))
-                                    .max_by_key(|&k| (trace.transfers[k].end, std::cmp::Reverse(k)))
-                                    .unwrap_or(t);
-                                f(self.ops + last);
-                            }
-                            None => {
-                                let (pd, pi) = trace.position_in(replica, dep.producer);
-                                let rank = d % self.shares as u32;
-                                f(self.offset[(pd + rank) as usize] + pi as usize);
-                            }
-                        }
-                    }
-                }
-                if i > 0 {
-                    if trace.blocking_sends {
-                        let prev = &trace.ops[d as usize][i as usize - 1];
-                        if let Some(t) = trace.outgoing_index_in(self.replica_of(d), prev.op) {
-                            let k = t + (d as usize % self.shares);
-                            if k < trace.transfers.len() {
-                                f(self.ops + k);
-                            }
-                        }
-                    }
-                    f(id - 1);
-                }
-            }
-            Node::Transfer(t) => {
-                let rec = &trace.transfers[t];
-                let replica = self.replica_of(rec.src);
-                let (_, pi) = trace.position_in(replica, rec.producer());
-                f(self.offset[rec.src as usize] + pi as usize);
-            }
-            Node::Tail(d) => {
-                let n = trace.ops[d as usize].len();
-                f(self.offset[d as usize] + n - 1);
-            }
-        }
-    }
-
     /// Every node's latest finish (ns) that keeps the step's end.
     fn latest_finish(&self) -> Vec<u64> {
         let n = self.len();
         let step_end = self.trace.end().as_ns();
         let mut out_degree = vec![0u32; n];
-        for id in 0..n {
-            self.each_pred(id, |p| out_degree[p] += 1);
+        for &p in &self.preds {
+            out_degree[p as usize] += 1;
         }
         let mut latest = vec![step_end; n];
         let mut ready: Vec<usize> = (0..n).filter(|&id| out_degree[id] == 0).collect();
         while let Some(y) = ready.pop() {
-            let (start, end) = self.span(y);
+            let (start, end) = self.spans[y];
             let latest_start = latest[y].saturating_sub(end - start);
-            self.each_pred(y, |x| {
+            for &x in self.preds_of(y) {
+                let x = x as usize;
                 latest[x] = latest[x].min(latest_start);
                 out_degree[x] -= 1;
                 if out_degree[x] == 0 {
                     ready.push(x);
                 }
-            });
+            }
         }
         latest
     }
@@ -269,7 +303,8 @@ impl<'a> Graph<'a> {
                 Node::Op(_, i) if i > 0 => Some(x - 1),
                 _ => None,
             };
-            self.each_pred(x, |p| {
+            for &p in self.preds_of(x) {
+                let p = p as usize;
                 let end = self.span(p).1;
                 if end == start && slack(p) == 0 && (tight.is_none() || Some(p) == same_device) {
                     tight = Some(p);
@@ -277,7 +312,7 @@ impl<'a> Graph<'a> {
                 if latest_pred.is_none_or(|q| end > self.span(q).1) {
                     latest_pred = Some(p);
                 }
-            });
+            }
             let next = tight.or(latest_pred);
             let from = next.map_or(t0, |p| self.span(p).1);
             if from < start {
