@@ -5,9 +5,11 @@
 //! device work included), per pipeline transfer, and, for a device whose
 //! step ends after its last op (gradient synchronisation, the update), a
 //! `sync` tail from that op's end to the device's end. A node's
-//! predecessors are the op before it on its device, the transfer (or, on the
-//! same device, the op) that brought the data it needed from another stage,
-//! and with blocking sends the previous op's transfer. Durations are the
+//! predecessors are the op before it on its device, the transfer that
+//! brought the data it needed from another device (the last rank's share
+//! for a tensor group; data from a stage on the same device needs no edge,
+//! the device's order implies it), and with blocking sends the previous
+//! op's transfer. Durations are the
 //! realised ones. A node's **slack** is how much later it could end without
 //! moving the step's end, every other duration fixed: the latest finish
 //! `LF(x) = min over successors y of (LF(y) - duration(y))`, `LF = step end`
@@ -51,7 +53,6 @@ pub struct PathEntry {
     #[serde(skip)]
     pub(crate) op: Option<Op>,
     /// A send's receiving device (`null` for the rest).
-    #[serde(rename = "to_device")]
     pub(crate) to_device: Option<u32>,
     #[serde(skip)]
     pub(crate) link: Option<u32>,
@@ -293,7 +294,7 @@ impl<'a> Graph<'a> {
         let Some(mut x) = (0..n).find(|&id| self.span(id).1 == step_end && slack(id) == 0) else {
             return Vec::new();
         };
-        let mut path = vec![self.entry(x, None)];
+        let mut path = vec![self.entry(x)];
         loop {
             let (start, _) = self.span(x);
             let mut tight = None;
@@ -322,7 +323,7 @@ impl<'a> Graph<'a> {
             }
             match next {
                 Some(p) => {
-                    path.push(self.entry(p, None));
+                    path.push(self.entry(p));
                     x = p;
                 }
                 None => break,
@@ -352,7 +353,7 @@ impl<'a> Graph<'a> {
         }
     }
 
-    fn entry(&self, id: usize, _: Option<()>) -> PathEntry {
+    fn entry(&self, id: usize) -> PathEntry {
         let (start, end) = self.span(id);
         match self.node(id) {
             Node::Op(d, i) => {
