@@ -672,6 +672,20 @@ pub fn memory_estimate_bytes(s: &Scenario, making: Making) -> u64 {
         .saturating_add(if making.chart { charted * CHART_BYTES_PER_ELEMENT } else { 0 })
 }
 
+/// The time `bytes` take from topology device `a` to `b` when nothing else
+/// shares the route: its latency plus the bytes at its narrowest link.
+fn route_alone_ns(topology: &Topology, a: u32, b: u32, bytes: u64) -> u64 {
+    let slowest = topology.route(a, b).iter().map(|&l| topology.link(l).bytes_per_s).min();
+    let push = slowest.map_or(0, |bw| {
+        if bw == LinkSpec::UNLIMITED {
+            0
+        } else {
+            (bytes as u128 * 1_000_000_000).div_ceil(bw as u128).min(u64::MAX as u128) as u64
+        }
+    });
+    topology.route_latency(a, b).as_ns().saturating_add(push)
+}
+
 /// For each pipeline device, the time one transfer of `bytes` takes between
 /// neighbours of its tensor groups' rings when nothing else shares the links
 /// (route latency + bytes at the route's narrowest link), over every replica's
@@ -686,15 +700,7 @@ fn ring_hop_ns(s: &Scenario, topology: &Topology, bytes: u64) -> Vec<(u64, u64)>
                 let first = (r * p + stage) * t;
                 for k in 0..t {
                     let (a, b) = (first + k, first + (k + 1) % t);
-                    let slowest = topology.route(a, b).iter().map(|&l| topology.link(l).bytes_per_s).min();
-                    let push = slowest.map_or(0, |bw| {
-                        if bw == LinkSpec::UNLIMITED {
-                            0
-                        } else {
-                            (bytes as u128 * 1_000_000_000).div_ceil(bw as u128) as u64
-                        }
-                    });
-                    let ns = topology.route_latency(a, b).as_ns() + push;
+                    let ns = route_alone_ns(topology, a, b, bytes);
                     lo = lo.min(ns);
                     hi = hi.max(ns);
                 }
@@ -952,15 +958,7 @@ pub fn auto_costs(s: &Scenario) -> baton_schedule::auto::Costs {
             }
             let (a, b) = (k as u32 * t, (k as u32 + 1) * t);
             let bytes = costs.get(k).map_or(0, |c| c.send_bytes);
-            let slowest = topology.route(a, b).iter().map(|&l| topology.link(l).bytes_per_s).min();
-            let push = slowest.map_or(0, |bw| {
-                if bw == LinkSpec::UNLIMITED {
-                    0
-                } else {
-                    (bytes as u128 * 1_000_000_000).div_ceil(bw as u128).min(u64::MAX as u128) as u64
-                }
-            });
-            topology.route_latency(a, b).as_ns().saturating_add(push)
+            route_alone_ns(&topology, a, b, bytes)
         })
         .collect();
     baton_schedule::auto::Costs { forward, backward, weight, comm }
