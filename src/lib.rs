@@ -11,6 +11,7 @@ pub mod commands;
 pub mod compare;
 pub mod layout;
 pub mod planner;
+mod steps;
 pub mod sweep;
 pub mod trials;
 pub mod whatif;
@@ -612,9 +613,9 @@ pub struct Making {
     pub chart: bool,
 }
 
-/// The operations and transfers one step of `s` runs: every op of the plan,
+/// The operations and transfers `s` runs: per step, every op of the plan,
 /// and two transfers (activation and gradient) per micro-batch for every
-/// boundary between pieces on different devices.
+/// boundary between pieces on different devices; times `pipeline.steps`.
 pub fn step_elements(s: &Scenario) -> (u64, u64) {
     let shape = s.shape();
     let p = s.pipeline.stages as u64;
@@ -634,7 +635,11 @@ pub fn step_elements(s: &Scenario) -> (u64, u64) {
     } else {
         0
     };
-    (shape.ops().saturating_mul(d * t), pipeline.saturating_add(collective_transfers(s)).saturating_add(tensor))
+    let steps = s.pipeline.steps.max(1) as u64;
+    (
+        shape.ops().saturating_mul(d * t).saturating_mul(steps),
+        pipeline.saturating_add(collective_transfers(s)).saturating_add(tensor).saturating_mul(steps),
+    )
 }
 
 /// An upper bound on the point-to-point transfers of the step's gradient
@@ -973,6 +978,14 @@ fn play(s: &Scenario, fast: bool, one_replica: bool) -> Result<SimulatedStep, Si
 
 /// [`play`] on this topology (the scenario's, or one with a link changed).
 fn play_on(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Result<SimulatedStep, SimulateError> {
+    if s.pipeline.steps > 1 || !s.pipeline.flush {
+        return steps::play(s, fast, one_replica, topo);
+    }
+    play_one(s, fast, one_replica, topo)
+}
+
+/// One flushed step of `s`.
+pub(crate) fn play_one(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Result<SimulatedStep, SimulateError> {
     let tensor_of = |x: &Scenario| if fast { tensor_config_fast(x) } else { tensor_config(x) };
     if s.pipeline.schedule != baton_schedule::ScheduleKind::ZbAuto {
         return play_plan(s, fixed_plan(s)?, tensor_of(s).as_ref(), one_replica, topo);
@@ -1002,8 +1015,22 @@ fn play_on(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Resu
         }
     }
     let mut best = best.ok_or(baton_schedule::ScheduleError::Zero { what: "max_in_flight" })?;
-    let busiest_ns = best
-        .trace
+    let step_ns = best.report.step_time_ns;
+    best.report.schedule_choice = Some(schedule_choice(s, &best.trace, chosen, tried, step_ns));
+    Ok(best)
+}
+
+/// What `zb-auto` chose for `s`: `chosen` among `tried`, with how far
+/// `step_ns` is above the busiest device's work in `trace` (per step when
+/// the trace holds several).
+pub(crate) fn schedule_choice(
+    s: &Scenario,
+    trace: &Trace,
+    chosen: &'static str,
+    tried: Vec<baton_report::Tried>,
+    step_ns: u64,
+) -> baton_report::ScheduleChoice {
+    let busiest_ns = trace
         .ops
         .iter()
         .map(|recs| {
@@ -1013,9 +1040,9 @@ fn play_on(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Resu
                 .sum::<u64>()
         })
         .max()
-        .unwrap_or(0);
-    let step_ns = best.report.step_time_ns;
-    best.report.schedule_choice = Some(baton_report::ScheduleChoice {
+        .unwrap_or(0)
+        / s.pipeline.steps.max(1) as u64;
+    baton_report::ScheduleChoice {
         chosen,
         tried,
         max_in_flight: s.pipeline.max_in_flight,
@@ -1026,19 +1053,33 @@ fn play_on(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Resu
         } else {
             100.0 * step_ns.saturating_sub(busiest_ns) as f64 / busiest_ns as f64
         },
-    });
-    Ok(best)
+    }
 }
 
 /// Plays `plan` for `s`.
-fn play_plan(
+pub(crate) fn play_plan(
     s: &Scenario,
     plan: baton_schedule::Plan,
     tensor: Option<&TensorConfig>,
     one_replica: bool,
     topo: &Topology,
 ) -> Result<SimulatedStep, SimulateError> {
-    let variation = RunOptions {
+    let sync = sync_config(s);
+    let trace = baton_executor::simulate_parallel(
+        plan,
+        &stage_costs(s),
+        topo.clone(),
+        run_options(s, one_replica),
+        sync.as_ref(),
+        tensor,
+    )?;
+    let report = baton_report::build(&trace, &labels(s));
+    Ok(SimulatedStep { trace, report })
+}
+
+/// How `s`'s ops vary and whether its sends block.
+pub(crate) fn run_options(s: &Scenario, one_replica: bool) -> RunOptions {
+    RunOptions {
         jitter: s.cluster.jitter,
         seed: s.seed,
         blocking_sends: s.pipeline.blocking_sends,
@@ -1046,12 +1087,8 @@ fn play_plan(
         stragglers: s.cluster.stragglers.clone(),
         slow_chance: s.cluster.slow_chance,
         slow_factor: s.cluster.slow_factor,
-    };
-    let sync = sync_config(s);
-    let trace =
-        baton_executor::simulate_parallel(plan, &stage_costs(s), topo.clone(), variation, sync.as_ref(), tensor)?;
-    let report = baton_report::build(&trace, &labels(s));
-    Ok(SimulatedStep { trace, report })
+        step_updates: None,
+    }
 }
 
 /// Simulates one training step of `s` and reports on it.

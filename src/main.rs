@@ -381,6 +381,11 @@ struct RunArgs {
     /// --trials-svg trials.svg.
     #[arg(long, value_name = "PATH|-")]
     trials_svg: Option<PathBuf>,
+    /// Simulate N training steps back to back (the same as --set
+    /// pipeline.steps=N; see pipeline.flush and pipeline.weight_versions),
+    /// e.g. --steps 4.
+    #[arg(long, value_name = "N")]
+    steps: Option<u32>,
     /// Write the per-layer cost table as a profile CSV that `model: { profile: PATH }`
     /// reads back exactly, e.g. --layers-csv layers.csv.
     #[arg(long, value_name = "PATH|-")]
@@ -432,9 +437,11 @@ fn main() -> ExitCode {
             json(&a.json, "report"),
         ])
         .and_then(|mut o| {
+            let sets: Vec<String> =
+                a.sets.iter().cloned().chain(a.steps.map(|n| format!("pipeline.steps={n}"))).collect();
             let r = RunRequest {
                 scenario: &a.scenario,
-                sets: &a.sets,
+                sets: &sets,
                 show_layers: a.show_layers,
                 comm_lanes: !a.no_comm_lanes,
                 strict: a.strict,

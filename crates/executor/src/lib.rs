@@ -321,6 +321,109 @@ impl Trace {
     }
 }
 
+impl Trace {
+    /// Steps simulated one after another with a barrier between them, as
+    /// one trace: step `k` starts when steps `0..k` have all ended (their
+    /// ops, synchronisation and updates), its times move by that much, its
+    /// plan ops' micro-batches are renumbered `k * m + i`, and its records'
+    /// indices follow the earlier steps'. Every part must have run a plan of
+    /// the same shape on the same devices.
+    pub fn concat(parts: Vec<Trace>) -> Result<Trace, ExecError> {
+        let mut parts = parts.into_iter();
+        let Some(first) = parts.next() else {
+            return Err(ExecError::Sync("no steps to join".into()));
+        };
+        let shape = first.plan.shape;
+        let m = shape.micro_batches;
+        let mut out = first;
+        let mut offset = out.end().saturating_since(SimTime::ZERO);
+        for (k, part) in (1u32..).zip(parts) {
+            if part.plan.shape != shape || part.ops.len() != out.ops.len() || part.link_stats.len() != out.link_stats.len() {
+                return Err(ExecError::Sync("the steps to join did not run the same shape on the same devices".into()));
+            }
+            let at = |t: SimTime| t + offset;
+            let mb = k * m;
+            let plan_op = |op: Op| if op.kind.is_device_work() { op } else { Op { micro_batch: op.micro_batch + mb, ..op } };
+            for (d, ops) in part.plan.per_device.iter().enumerate() {
+                out.plan.per_device[d].extend(ops.iter().map(|&op| plan_op(op)));
+            }
+            for (w, recs) in part.ops.iter().enumerate() {
+                out.ops[w].extend(recs.iter().map(|r| OpRecord { op: plan_op(r.op), start: at(r.start), end: at(r.end) }));
+            }
+            out.transfers.extend(part.transfers.iter().map(|r| TransferRecord {
+                micro_batch: r.micro_batch + mb,
+                start: at(r.start),
+                sent: at(r.sent),
+                end: at(r.end),
+                ..*r
+            }));
+            for (a, b) in out.link_stats.iter_mut().zip(&part.link_stats) {
+                a.bytes += b.bytes;
+                a.busy_ns += b.busy_ns;
+                a.peak_concurrent = a.peak_concurrent.max(b.peak_concurrent);
+            }
+            out.events += part.events;
+            let coll_base = out.collectives.len() as u32;
+            out.collectives.extend(part.collectives.iter().map(|c| CollectiveRecord {
+                start: at(c.start),
+                end: at(c.end),
+                ..c.clone()
+            }));
+            out.sync_transfers.extend(part.sync_transfers.iter().map(|r| SyncTransferRecord {
+                collective: r.collective + coll_base,
+                start: at(r.start),
+                sent: at(r.sent),
+                end: at(r.end),
+                ..*r
+            }));
+            for (a, b) in out.device_end.iter_mut().zip(&part.device_end) {
+                *a = at(*b);
+            }
+            for (a, b) in out.last_collective.iter_mut().zip(&part.last_collective) {
+                if let Some(c) = b {
+                    *a = Some(c + coll_base);
+                }
+            }
+            out.tensor_transfers.extend(part.tensor_transfers.iter().map(|r| TensorTransferRecord {
+                op: plan_op(r.op),
+                start: at(r.start),
+                sent: at(r.sent),
+                end: at(r.end),
+                ..*r
+            }));
+            for (a, b) in out.tensor_comm_ns.iter_mut().zip(&part.tensor_comm_ns) {
+                *a += b;
+            }
+            offset = out.end().saturating_since(SimTime::ZERO);
+        }
+        // The dense indices, for the joined shape.
+        let steps = out.plan.per_device.first().map_or(1, |o| o.len() / shape.ops_per_device().max(1)) as u32;
+        let joined = Shape { micro_batches: m * steps.max(1), ..shape };
+        out.plan.shape = joined;
+        let (p, t, replicas) = (shape.stages as usize, out.tensor.max(1) as usize, out.replicas.max(1) as usize);
+        let slots = joined.op_slots();
+        let mut op_index = vec![(0u32, 0u32); slots * replicas];
+        for g in 0..out.ops.len() / t {
+            let base = (g / p) * slots;
+            for (i, r) in out.ops[g * t].iter().enumerate() {
+                if !r.op.kind.is_device_work() {
+                    op_index[base + joined.op_index(r.op)] = ((g * t) as u32, i as u32);
+                }
+            }
+        }
+        // A producer's first transfer: transfers run in start order, so the
+        // first record of an op's output is the one the index keeps.
+        let mut transfer_index = vec![NONE; slots * replicas];
+        for (i, r) in out.transfers.iter().enumerate().rev() {
+            let replica = (r.src as usize / t) / p;
+            transfer_index[replica * slots + joined.op_index(r.producer())] = i as u32;
+        }
+        out.op_index = op_index;
+        out.transfer_index = transfer_index;
+        Ok(out)
+    }
+}
+
 /// Why a step could not be simulated.
 #[derive(Debug, Error, PartialEq)]
 pub enum ExecError {
@@ -513,6 +616,10 @@ struct Executor<'a> {
     /// Devices per tensor group.
     t: usize,
     tensor: Option<tensor::State>,
+    /// Updates inside a run of several steps (only when they take time).
+    step_updates: Option<StepUpdates>,
+    /// Per worker: step updates queued so far.
+    updates_done: Vec<u32>,
 }
 
 type Sched = Scheduler<Event, Deadline>;
@@ -603,6 +710,14 @@ impl Executor<'_> {
         }
         if self.sync.is_some() {
             self.sync_op_done(w, index, sched);
+        }
+        if let Some(u) = &self.step_updates {
+            let k = self.updates_done[w];
+            if u.after[d].get(k as usize) == Some(&(index as u32)) {
+                self.updates_done[w] += 1;
+                let op = Op { kind: OpKind::Update, micro_batch: k, stage: d as u32 };
+                self.work[w].push_back(Work { op, duration: u.duration, then: sync::Then::StepUpdated });
+            }
         }
         self.try_start(w, sched);
     }
@@ -722,6 +837,22 @@ pub struct RunOptions {
     pub slow_chance: f64,
     /// How many times longer a rare slow op takes.
     pub slow_factor: f64,
+    /// Several steps in one plan: where each worker updates its weights.
+    /// Only without gradient synchronisation (whose own update ends a
+    /// single step).
+    pub step_updates: Option<StepUpdates>,
+}
+
+/// Optimizer updates inside a plan of several consecutive steps: device
+/// work of kind `update` (micro-batch = the step) that a device runs right
+/// after the op at each listed position of its order, before its next op.
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct StepUpdates {
+    /// Per pipeline device: the positions in its order after which it
+    /// updates, ascending (see `baton_schedule::steps::update_positions`).
+    pub after: Vec<Vec<u32>>,
+    /// Time of one update (0: nothing is recorded).
+    pub duration: SimDuration,
 }
 
 /// Simulates one step of `plan` with every op taking exactly its cost.
@@ -795,6 +926,18 @@ pub fn simulate_parallel(
     }
     if options.slow_chance > 0.0 && !(options.slow_chance <= 1.0 && options.slow_factor >= 1.0) {
         return Err(ExecError::Jitter(options.slow_chance));
+    }
+    if let Some(u) = &options.step_updates {
+        if sync.is_some() {
+            return Err(ExecError::Sync("updates inside a run of steps cannot be combined with gradient synchronisation".into()));
+        }
+        if u.after.len() != p
+            || u.after.iter().enumerate().any(|(d, a)| {
+                a.windows(2).any(|w| w[0] >= w[1]) || a.last().is_some_and(|&i| i as usize >= plan.per_device[d].len())
+            })
+        {
+            return Err(ExecError::Sync("step updates must list ascending positions of each device's order".into()));
+        }
     }
     let varied = options.jitter > 0.0 || options.slow_chance > 0.0 || !options.stragglers.is_empty();
     let jitter = varied.then(|| {
@@ -874,6 +1017,8 @@ pub fn simulate_parallel(
         sync: sync_state,
         t,
         tensor: tensor.filter(|_| t > 1).map(|c| tensor::State::new(c.clone(), workers)),
+        step_updates: options.step_updates.clone().filter(|u| u.duration > SimDuration::ZERO),
+        updates_done: vec![0; workers],
     };
     let mut sched = Scheduler::with_capacity(2 * workers + 16);
     for w in 0..workers {

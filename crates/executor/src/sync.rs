@@ -213,6 +213,9 @@ pub(crate) enum Then {
     Decoded { coll: u32 },
     /// The worker's optimizer update is done.
     Updated,
+    /// The worker's update at the end of one of several steps is done
+    /// (nothing waits for it but the worker's next op).
+    StepUpdated,
 }
 
 /// A collective graph with what playing it needs.
@@ -942,6 +945,7 @@ impl Executor<'_> {
                 }
             }
             Then::Updated => self.updated(w, sched),
+            Then::StepUpdated => {}
         }
     }
 }

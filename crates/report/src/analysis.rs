@@ -371,6 +371,54 @@ pub struct Report {
     /// the step is above the busiest device's total work (a lower bound).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub schedule_choice: Option<ScheduleChoice>,
+    /// Several steps back to back, or steps without a flush (left out of
+    /// the JSON for one flushed step). Then `step_time_ms` and every
+    /// device's busy and idle time cover the whole run, `micro_batches` and
+    /// `global_batch` are per step, and this section has each step's time.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub steps: Option<Steps>,
+}
+
+/// Consecutive steps (`pipeline.steps`, `pipeline.flush`,
+/// `pipeline.weight_versions`).
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Steps {
+    /// Steps simulated.
+    pub count: u32,
+    /// Whether a global barrier separated them.
+    pub flush: bool,
+    /// `one`, `stash` or `double`.
+    pub weight_versions: &'static str,
+    /// Each step's time in milliseconds: from the previous step's end (0
+    /// for the first) to the moment every device has finished the step's
+    /// ops, synchronisation and update.
+    pub step_ms: Vec<f64>,
+    /// Each step's time in nanoseconds.
+    pub step_ns: Vec<u64>,
+    /// All steps, first op to last end, in milliseconds.
+    pub total_ms: f64,
+    /// `total_ms / count`.
+    pub mean_ms: f64,
+    /// The mean of the steps after the first (the first when there is one).
+    pub steady_ms: f64,
+    /// Per virtual stage: the weights its micro-batches read.
+    pub stages: Vec<StepStage>,
+}
+
+/// One virtual stage's weights over consecutive steps.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct StepStage {
+    /// The virtual stage.
+    pub stage: u32,
+    /// The pipeline device that runs it.
+    pub device: u32,
+    /// The most steps its weights lag behind (0: each step reads the
+    /// weights after the previous step's update).
+    pub staleness_steps: u32,
+    /// The most versions of its weights kept at once.
+    pub weight_versions: u32,
+    /// Bytes the versions beyond the first add to its device's memory.
+    pub extra_bytes: u64,
 }
 
 /// The step time over independent draws (`--trials`), percentiles by the
@@ -691,6 +739,7 @@ pub fn build(trace: &Trace, labels: &Labels) -> Report {
         what_if: Vec::new(),
         trials: None,
         schedule_choice: None,
+        steps: None,
     }
 }
 

@@ -86,9 +86,32 @@ pub fn render(report: &Report, options: &TextOptions) -> String {
         );
     }
     let _ = writeln!(s);
-    let _ = writeln!(s, "step time        {}", format_ns(report.step_time_ns));
-    let _ = writeln!(s, "bubble fraction  {:.2}% (idle / (devices x step time))", report.bubble_fraction * 100.0);
-    if replicas > 1 {
+    match &report.steps {
+        Some(st) => {
+            let _ = writeln!(
+                s,
+                "step time        {} mean, {} after the first step ({} step{} in {})",
+                format_ns((st.mean_ms * 1e6).round() as u64),
+                format_ns((st.steady_ms * 1e6).round() as u64),
+                st.count,
+                if st.count == 1 { "" } else { "s" },
+                format_ns(report.step_time_ns),
+            );
+            steps_lines(&mut s, st);
+        }
+        None => {
+            let _ = writeln!(s, "step time        {}", format_ns(report.step_time_ns));
+        }
+    }
+    let whole = if report.steps.is_some() { "time of the steps" } else { "step time" };
+    let _ = writeln!(s, "bubble fraction  {:.2}% (idle / (devices x {whole}))", report.bubble_fraction * 100.0);
+    if let Some(st) = &report.steps {
+        let _ = writeln!(
+            s,
+            "throughput       {:.2} samples/s ({} steps x global batch {} / time of the steps)",
+            report.samples_per_s, st.count, report.global_batch
+        );
+    } else if replicas > 1 {
         let _ = writeln!(
             s,
             "throughput       {:.2} samples/s (global batch {} = {} replicas x {} micro-batches x {} samples, / step time)",
@@ -222,4 +245,34 @@ pub fn render(report: &Report, options: &TextOptions) -> String {
         }
     }
     s
+}
+
+/// The steps' section: each step's time, and without a flush each stage's
+/// weights.
+fn steps_lines(s: &mut String, st: &crate::Steps) {
+    const SHOWN: usize = 12;
+    let mut times: Vec<String> = st.step_ns.iter().take(SHOWN).map(|&n| format_ns(n)).collect();
+    if st.step_ns.len() > SHOWN {
+        times.push(format!("... ({} more)", st.step_ns.len() - SHOWN));
+    }
+    let how = if st.flush {
+        "a flush between steps".to_string()
+    } else {
+        format!("no flush, weight versions {}", st.weight_versions)
+    };
+    let _ = writeln!(s, "steps            {how}: {}", times.join(", "));
+    if !st.flush {
+        let _ = writeln!(s, "  stage  device  staleness (steps)  weight versions  extra memory");
+        for g in &st.stages {
+            let _ = writeln!(
+                s,
+                "  {:>5}  {:>6}  {:>17}  {:>15}  {}",
+                g.stage,
+                g.device,
+                g.staleness_steps,
+                g.weight_versions,
+                format_bytes(g.extra_bytes)
+            );
+        }
+    }
 }

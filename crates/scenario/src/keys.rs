@@ -369,6 +369,25 @@ pub const PIPELINE: &[Key] = &[
         whole(1, u32::MAX as i64),
         "zb-auto: most micro-batches a device holds at once (from a forward's start to the end of its last backward op); stages (1F1B's peak) when left out.",
     ),
+    with_default("steps", whole(1, 1 << 20), Default::Whole(1), "Training steps simulated back to back (each of micro_batches micro-batches)."),
+    with_default(
+        "flush",
+        Type::Bool,
+        Default::Bool(true),
+        "true: a global barrier between steps (no op of a step starts before every device has finished the previous step, its synchronisation and its update); false: each device goes on as soon as its own order and weights allow (one replica only).",
+    ),
+    with_default(
+        "weight_versions",
+        Type::Choice(&["one", "stash", "double"]),
+        Default::Text("one"),
+        "With flush false: one (each step waits for its device's previous update), stash (PipeDream: a version per micro-batch in flight, the next step's forwards fill the drain) or double (PipeDream-2BW: two versions).",
+    ),
+    with_default(
+        "version_bytes_per_param",
+        whole(1, 64),
+        Default::Whole(2),
+        "Bytes per parameter of each weight version kept beside the model state by stash or double.",
+    ),
 ];
 
 /// `training`.

@@ -300,6 +300,14 @@ pub struct Pipeline {
     /// `zb-auto`'s limit on micro-batches a device holds at once
     /// (`pipeline.max_in_flight`; `stages` when left out).
     pub max_in_flight: u32,
+    /// Training steps simulated back to back (`pipeline.steps`).
+    pub steps: u32,
+    /// A global barrier between steps (`pipeline.flush`).
+    pub flush: bool,
+    /// Weight versions kept when steps run on without a flush.
+    pub weight_versions: baton_schedule::steps::WeightVersions,
+    /// Bytes per parameter of each extra weight version.
+    pub version_bytes_per_param: u32,
 }
 
 /// A validated scenario.
@@ -906,7 +914,8 @@ fn from_tree(
     }
     let training = top.opt("training", read_training)?.unwrap_or_default();
     let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster, base_dir))?;
-    let parallel = top.opt("parallel", |p| read_parallel(p, &cluster, pipeline.stages, &source))?.unwrap_or_default();
+    let parallel =
+        top.opt("parallel", |p| read_parallel(p, &cluster, &pipeline, &source))?.unwrap_or_default();
     let tensor_layers = tensor_layers(&layers, &source, &cluster, &parallel, micro_batch_size);
     let gradients = top.opt("gradients", read_gradients)?.unwrap_or_default();
     let placement = match top.get("placement") {
@@ -1105,9 +1114,10 @@ fn tensor_layers(
 fn read_parallel(
     p: Field<'_>,
     cluster: &Cluster,
-    stages: u32,
+    pipeline: &Pipeline,
     source: &ModelSource,
 ) -> Result<Parallel, ScenarioError> {
+    let stages = pipeline.stages;
     let m = p.map(keys::PARALLEL)?;
     let tensor = m
         .opt("tensor", |a| {
@@ -1142,6 +1152,11 @@ fn read_parallel(
                     format!("{d} replicas x {stages} stages")
                 };
                 return Err(a.err(format!("{shape} need {need} devices, but the cluster has {}", cluster.devices)));
+            }
+            if d > 1 && !pipeline.flush {
+                return Err(a.err(format!(
+                    "{d} replicas synchronise their gradients every step, which baton simulates with pipeline.flush: true only (steps without a flush: one replica)"
+                )));
             }
             Ok(d)
         })?
@@ -1736,6 +1751,31 @@ fn read_pipeline(
             format!("applies to schedule zb-auto only, but the schedule is {schedule}"),
         ));
     }
+    let steps = m.opt("steps", |a| {
+        let v = a.whole()? as u32;
+        let total = baton_schedule::steps::total_micro_batches(micro_batches, v)
+            .and_then(|mb| check_shape(schedule, Shape::new(stages, mb, chunks)))
+            .map_err(|e| a.err(format!("{v} steps of {micro_batches} micro-batches: {e}")));
+        total.map(|_| v)
+    })?
+    .unwrap_or(1);
+    let flush = m.opt("flush", |a| a.boolean())?.unwrap_or(true);
+    let weight_versions = m
+        .opt("weight_versions", |a| {
+            let w = a.str()?.parse::<baton_schedule::steps::WeightVersions>().map_err(|e| a.err(e))?;
+            use baton_schedule::steps::WeightVersions as W;
+            if w != W::One && flush {
+                return Err(a.err(format!("{w} keeps weight versions for steps that run on without a flush; set pipeline.flush: false")));
+            }
+            if w != W::One && matches!(schedule, ScheduleKind::FillDrain | ScheduleKind::Custom) {
+                return Err(a.err(format!(
+                    "{w} runs the schedule on across steps, which {schedule} cannot do (fill-drain would run every step's forwards first; a custom order is one step's); use 1f1b, interleaved or a zero-bubble schedule"
+                )));
+            }
+            Ok(w)
+        })?
+        .unwrap_or(baton_schedule::steps::WeightVersions::One);
+    let version_bytes_per_param = m.opt("version_bytes_per_param", |a| a.whole().map(|v| v as u32))?.unwrap_or(2);
     let order =
         match (schedule, m.get("order")) {
             (ScheduleKind::Custom, None) => return Err(p.cx.err(
@@ -1778,6 +1818,10 @@ fn read_pipeline(
         blocking_sends,
         order,
         max_in_flight,
+        steps,
+        flush,
+        weight_versions,
+        version_bytes_per_param,
     })
 }
 

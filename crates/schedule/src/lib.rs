@@ -43,6 +43,7 @@ use thiserror::Error;
 
 pub mod auto;
 pub mod order;
+pub mod steps;
 
 /// What an operation does: a forward pass, a backward pass (with a split
 /// backward, only its input-gradient part), or a weight-gradient pass.
@@ -551,6 +552,9 @@ pub enum ScheduleError {
     /// `custom` is read from an order file; it has no built-in order.
     #[error("schedule `custom` needs `pipeline.order`, a file of each device's order")]
     NeedsOrder,
+    /// Consecutive steps that cannot run as asked (see [`steps`]).
+    #[error("{0}")]
+    Steps(String),
 }
 
 /// One link of a deadlock: `device` is stuck at position `index` of its

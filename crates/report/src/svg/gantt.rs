@@ -427,10 +427,19 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         } else {
             String::new()
         };
+        let time = match &report.steps {
+            Some(st) => format!(
+                "{} steps in {} (mean {})",
+                st.count,
+                format_ns(report.step_time_ns),
+                format_ns((st.mean_ms * 1e6).round() as u64)
+            ),
+            None => format!("step time {}", format_ns(report.step_time_ns)),
+        };
         let caption = format!(
-            "{}step time {} · bubble {:.2}% · {} · {} stages · {} micro-batches{}{} · seed {}{}",
+            "{}{} · bubble {:.2}% · {} · {} stages · {} micro-batches{}{} · seed {}{}",
             if run.label.is_empty() { String::new() } else { format!("{}: ", run.label) },
-            format_ns(report.step_time_ns),
+            time,
             report.bubble_fraction * 100.0,
             report.schedule,
             report.stages,
