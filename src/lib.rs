@@ -985,7 +985,12 @@ fn play_on(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Resu
 }
 
 /// One flushed step of `s`.
-pub(crate) fn play_one(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Result<SimulatedStep, SimulateError> {
+pub(crate) fn play_one(
+    s: &Scenario,
+    fast: bool,
+    one_replica: bool,
+    topo: &Topology,
+) -> Result<SimulatedStep, SimulateError> {
     let tensor_of = |x: &Scenario| if fast { tensor_config_fast(x) } else { tensor_config(x) };
     if s.pipeline.schedule != baton_schedule::ScheduleKind::ZbAuto {
         return play_plan(s, fixed_plan(s)?, tensor_of(s).as_ref(), one_replica, topo);

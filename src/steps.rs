@@ -26,7 +26,12 @@ use crate::{
 };
 
 /// Plays `s`'s steps.
-pub(crate) fn play(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Result<SimulatedStep, SimulateError> {
+pub(crate) fn play(
+    s: &Scenario,
+    fast: bool,
+    one_replica: bool,
+    topo: &Topology,
+) -> Result<SimulatedStep, SimulateError> {
     if s.pipeline.flush {
         flushed(s, fast, one_replica, topo)
     } else {
@@ -240,7 +245,8 @@ fn finish(report: &mut Report, s: &Scenario, trace: &Trace, step_ns: Vec<u64>, s
     report.micro_batches = s.pipeline.micro_batches;
     report.global_batch /= n;
     let later = &step_ns[1.min(step_ns.len() - 1)..];
-    let steady = if step_ns.len() > 1 { later.iter().sum::<u64>() as f64 / later.len() as f64 } else { step_ns[0] as f64 };
+    let steady =
+        if step_ns.len() > 1 { later.iter().sum::<u64>() as f64 / later.len() as f64 } else { step_ns[0] as f64 };
     report.steps = Some(Steps {
         count: n as u32,
         flush: s.pipeline.flush,

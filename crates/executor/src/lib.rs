@@ -338,17 +338,25 @@ impl Trace {
         let mut out = first;
         let mut offset = out.end().saturating_since(SimTime::ZERO);
         for (k, part) in (1u32..).zip(parts) {
-            if part.plan.shape != shape || part.ops.len() != out.ops.len() || part.link_stats.len() != out.link_stats.len() {
+            if part.plan.shape != shape
+                || part.ops.len() != out.ops.len()
+                || part.link_stats.len() != out.link_stats.len()
+            {
                 return Err(ExecError::Sync("the steps to join did not run the same shape on the same devices".into()));
             }
             let at = |t: SimTime| t + offset;
             let mb = k * m;
-            let plan_op = |op: Op| if op.kind.is_device_work() { op } else { Op { micro_batch: op.micro_batch + mb, ..op } };
+            let plan_op =
+                |op: Op| if op.kind.is_device_work() { op } else { Op { micro_batch: op.micro_batch + mb, ..op } };
             for (d, ops) in part.plan.per_device.iter().enumerate() {
                 out.plan.per_device[d].extend(ops.iter().map(|&op| plan_op(op)));
             }
             for (w, recs) in part.ops.iter().enumerate() {
-                out.ops[w].extend(recs.iter().map(|r| OpRecord { op: plan_op(r.op), start: at(r.start), end: at(r.end) }));
+                out.ops[w].extend(recs.iter().map(|r| OpRecord {
+                    op: plan_op(r.op),
+                    start: at(r.start),
+                    end: at(r.end),
+                }));
             }
             out.transfers.extend(part.transfers.iter().map(|r| TransferRecord {
                 micro_batch: r.micro_batch + mb,
@@ -929,7 +937,9 @@ pub fn simulate_parallel(
     }
     if let Some(u) = &options.step_updates {
         if sync.is_some() {
-            return Err(ExecError::Sync("updates inside a run of steps cannot be combined with gradient synchronisation".into()));
+            return Err(ExecError::Sync(
+                "updates inside a run of steps cannot be combined with gradient synchronisation".into(),
+            ));
         }
         if u.after.len() != p
             || u.after.iter().enumerate().any(|(d, a)| {

@@ -914,8 +914,7 @@ fn from_tree(
     }
     let training = top.opt("training", read_training)?.unwrap_or_default();
     let pipeline = top.req("pipeline", |p| read_pipeline(p, &layers, &cluster, base_dir))?;
-    let parallel =
-        top.opt("parallel", |p| read_parallel(p, &cluster, &pipeline, &source))?.unwrap_or_default();
+    let parallel = top.opt("parallel", |p| read_parallel(p, &cluster, &pipeline, &source))?.unwrap_or_default();
     let tensor_layers = tensor_layers(&layers, &source, &cluster, &parallel, micro_batch_size);
     let gradients = top.opt("gradients", read_gradients)?.unwrap_or_default();
     let placement = match top.get("placement") {
@@ -1751,14 +1750,15 @@ fn read_pipeline(
             format!("applies to schedule zb-auto only, but the schedule is {schedule}"),
         ));
     }
-    let steps = m.opt("steps", |a| {
-        let v = a.whole()? as u32;
-        let total = baton_schedule::steps::total_micro_batches(micro_batches, v)
-            .and_then(|mb| check_shape(schedule, Shape::new(stages, mb, chunks)))
-            .map_err(|e| a.err(format!("{v} steps of {micro_batches} micro-batches: {e}")));
-        total.map(|_| v)
-    })?
-    .unwrap_or(1);
+    let steps = m
+        .opt("steps", |a| {
+            let v = a.whole()? as u32;
+            let total = baton_schedule::steps::total_micro_batches(micro_batches, v)
+                .and_then(|mb| check_shape(schedule, Shape::new(stages, mb, chunks)))
+                .map_err(|e| a.err(format!("{v} steps of {micro_batches} micro-batches: {e}")));
+            total.map(|_| v)
+        })?
+        .unwrap_or(1);
     let flush = m.opt("flush", |a| a.boolean())?.unwrap_or(true);
     let weight_versions = m
         .opt("weight_versions", |a| {
@@ -1949,7 +1949,7 @@ pipeline:
         assert!(e.to_string().starts_with("t.yaml:12:3: pipeline.micro_batches: missing"), "{e}");
         let text = EXAMPLE.replace("  chunks: 1\n", "  chunk: 1\n");
         let e = parse_with(&text, &[]).unwrap_err();
-        assert_eq!(e.to_string(), "t.yaml:16:3: pipeline.chunk: unknown key `chunk`; expected one of: stages, split, micro_batches, schedule, chunks, micro_batch_size, blocking_sends, order, max_in_flight");
+        assert_eq!(e.to_string(), "t.yaml:16:3: pipeline.chunk: unknown key `chunk`; expected one of: stages, split, micro_batches, schedule, chunks, micro_batch_size, blocking_sends, order, max_in_flight, steps, flush, weight_versions, version_bytes_per_param");
         let e = parse_with(&EXAMPLE.replace("cluster:", "klaster:"), &[]).unwrap_err();
         assert_eq!(e.key(), Some("klaster"));
     }

@@ -1,0 +1,225 @@
+//! Consecutive steps (`pipeline.steps`, `pipeline.flush`,
+//! `pipeline.weight_versions`): flushed steps against single steps and
+//! their updates, steps without a flush against the 1F1B and zero-bubble
+//! counts, and PipeDream's and PipeDream-2BW's weight versions.
+
+mod common;
+
+use baton::scenario::{parse, Scenario};
+use common::{baton as run_baton, json, text};
+
+/// `p` stages of one layer each (forward 1 us, backward 2 us, or with
+/// `weight` a split backward of 1 us B and 1 us W), free links, and the
+/// pipeline keys in `extra`.
+fn pipeline(p: u32, m: u32, schedule: &str, extra: &str) -> Scenario {
+    let layer = if schedule.starts_with("zb") {
+        "{ name: l, repeat: REPEAT, forward: 1us, backward: 2us, weight: 1us, activation: 0B, params: 1M }"
+    } else {
+        "{ name: l, repeat: REPEAT, forward: 1us, backward: 2us, activation: 0B, params: 1M }"
+    }
+    .replace("REPEAT", &p.to_string());
+    let text = format!(
+        "model:\n  layers:\n    - {layer}\ncluster:\n  devices: {p}\n  link: {{ latency: 0ns, bandwidth: 1GB/s }}\n\
+         pipeline:\n  stages: {p}\n  micro_batches: {m}\n  schedule: {schedule}\n{extra}"
+    );
+    parse(&text, "s.yaml", "s", &[]).unwrap()
+}
+
+fn steps_of(s: &Scenario) -> baton::report::Steps {
+    baton::simulate(s).unwrap().report.steps.expect("a steps section")
+}
+
+#[test]
+fn flushed_steps_are_single_steps_plus_their_updates() {
+    // Balanced 1F1B, p = 4, m = 8, F = 1, B = 2 (us): one step is
+    // (m + p - 1)(F + B) = 33 us (Narayanan et al., "Efficient Large-Scale
+    // Language Model Training on GPU Clusters Using Megatron-LM", SC 2021,
+    // sec. 2.2). Device 0 ends last; its 5 us update follows: 38 us. With a
+    // barrier, 3 steps take 3 x 38 = 114 us.
+    let mut s = pipeline(4, 8, "1f1b", "  steps: 3\n");
+    s.training.update_ns = 5_000;
+    let run = baton::simulate(&s).unwrap();
+    let st = run.report.steps.clone().unwrap();
+    assert_eq!(st.step_ns, vec![38_000; 3]);
+    assert_eq!(run.report.step_time_ns, 114_000);
+    assert_eq!((st.mean_ms, st.steady_ms, st.total_ms), (0.038, 0.038, 0.114));
+    assert!(st.flush);
+    // No op of step k + 1 starts before step k's last update ends.
+    for recs in &run.trace.ops {
+        for r in recs.iter().filter(|r| !r.op.kind.is_device_work()) {
+            let k = r.op.micro_batch / 8;
+            assert!(r.start.as_ns() >= 38_000 * k as u64, "{r:?}");
+        }
+    }
+    // And one flushed step of the same scenario is the 38 us.
+    let mut one = s.clone();
+    one.pipeline.steps = 1;
+    assert_eq!(baton::simulate(&one).unwrap().report.step_time_ns, 38_000);
+    assert_eq!(run.report.micro_batches, 8);
+    assert_eq!(run.report.ops, 3 * (2 * 8 * 4 + 4));
+}
+
+#[test]
+fn flushed_steps_draw_their_own_variability() {
+    // Step k is drawn with seed + k: the same draw as a single step with
+    // that seed.
+    let mut s = pipeline(4, 8, "1f1b", "  steps: 4\n");
+    s.cluster.jitter = 0.2;
+    let st = steps_of(&s);
+    for k in 0..4u64 {
+        let mut one = s.clone();
+        one.pipeline.steps = 1;
+        one.seed = s.seed + k;
+        assert_eq!(st.step_ns[k as usize], baton::simulate(&one).unwrap().report.step_time_ns);
+    }
+    assert!(st.step_ns.windows(2).any(|w| w[0] != w[1]), "{:?}", st.step_ns);
+}
+
+#[test]
+fn without_a_flush_one_f_one_b_runs_on_as_one_long_pipeline() {
+    // With weight stashing the next step's forwards fill the drain: N steps
+    // are 1F1B over N m micro-batches, (N m + p - 1)(F + B) (SC 2021,
+    // sec. 2.2, with N m micro-batches): (3 x 8 + 3) x 3 = 81 us, of which
+    // the first step takes (m + p - 1)(F + B) = 33 and every later one
+    // m (F + B) = 24: no bubble in the steady state (Narayanan et al.,
+    // "PipeDream", SOSP 2019, sec. 3.2).
+    for mode in ["stash", "double"] {
+        let s = pipeline(4, 8, "1f1b", &format!("  steps: 3\n  flush: false\n  weight_versions: {mode}\n"));
+        let run = baton::simulate(&s).unwrap();
+        let st = run.report.steps.clone().unwrap();
+        assert_eq!(run.report.step_time_ns, 81_000, "{mode}");
+        assert_eq!(st.step_ns, vec![33_000, 24_000, 24_000], "{mode}");
+        assert_eq!(st.steady_ms, 0.024);
+    }
+    // With one weight version each device waits for its own update, and
+    // 1F1B's own drain stays: three times 33.
+    let s = pipeline(4, 8, "1f1b", "  steps: 3\n  flush: false\n  weight_versions: one\n");
+    assert_eq!(steps_of(&s).step_ns, vec![33_000; 3]);
+    // A 5 us update after each device's last op of a step: device 0 ends
+    // last at 33, updates until 38 and only then starts the next step; every
+    // other device has updated by then, so each step takes 38.
+    let mut s = s;
+    s.training.update_ns = 5_000;
+    let run = baton::simulate(&s).unwrap();
+    assert_eq!(run.report.steps.unwrap().step_ns, vec![38_000; 3]);
+    let updates: Vec<(u32, u64, u64)> = run.trace.ops[0]
+        .iter()
+        .filter(|r| r.op.kind == baton::schedule::OpKind::Update)
+        .map(|r| (r.op.micro_batch, r.start.as_ns(), r.end.as_ns()))
+        .collect();
+    assert_eq!(updates, vec![(0, 33_000, 38_000), (1, 71_000, 76_000), (2, 109_000, 114_000)]);
+}
+
+#[test]
+fn zb_h2_without_a_flush_reaches_its_steady_state() {
+    // ZB-H2 at p = 4 with F = B = W = 1 and m = 12: one step takes
+    // 3m + 3 = 39; without a global barrier, each device going on after its
+    // own update, the next step takes 3m = 36: no bubble in the steady state
+    // (Qi et al., "Zero Bubble Pipeline Parallelism", ICLR 2024, sec. 3.2).
+    let s = pipeline(4, 12, "zb-h2", "  steps: 2\n  flush: false\n");
+    assert_eq!(steps_of(&s).step_ns, vec![39_000, 36_000]);
+    // With the flush both steps take 39.
+    let s = pipeline(4, 12, "zb-h2", "  steps: 2\n");
+    assert_eq!(steps_of(&s).step_ns, vec![39_000, 39_000]);
+}
+
+#[test]
+fn pipedream_keeps_a_version_per_micro_batch_in_flight() {
+    // PipeDream (SOSP 2019, sec. 3.3): an update per micro-batch (m = 1),
+    // 1F1B; stage s of p holds p - s micro-batches in flight, stashes that
+    // many weight versions, and its gradient is computed with weights
+    // p - 1 - s updates old. Each extra version is params x
+    // version_bytes_per_param = 1M x 2 bytes on top of the model state.
+    let s = pipeline(4, 1, "1f1b", "  steps: 8\n  flush: false\n  weight_versions: stash\n");
+    let run = baton::simulate(&s).unwrap();
+    let st = run.report.steps.clone().unwrap();
+    let versions: Vec<u32> = st.stages.iter().map(|g| g.weight_versions).collect();
+    let stale: Vec<u32> = st.stages.iter().map(|g| g.staleness_steps).collect();
+    let extra: Vec<u64> = st.stages.iter().map(|g| g.extra_bytes).collect();
+    assert_eq!(versions, vec![4, 3, 2, 1]);
+    assert_eq!(stale, vec![3, 2, 1, 0]);
+    assert_eq!(extra, vec![3 * 2_000_000, 2 * 2_000_000, 2_000_000, 0]);
+    // The memory model adds them: state 16 bytes x 1M plus the extra.
+    let flushed = baton::simulate(&pipeline(4, 1, "1f1b", "  steps: 8\n")).unwrap().report;
+    for (d, e) in extra.iter().enumerate() {
+        assert_eq!(run.report.devices[d].state_bytes, 16_000_000 + e);
+        assert_eq!(flushed.devices[d].state_bytes, 16_000_000);
+    }
+}
+
+#[test]
+fn pipedream_2bw_keeps_two_versions_one_step_stale() {
+    // PipeDream-2BW (Narayanan et al., "Memory-Efficient Pipeline-Parallel
+    // DNN Training", ICML 2021, sec. 3.1): W(t+1) = W(t) - lr grad f(W(t-1)),
+    // a delay of one step on every stage, two versions, with m >= p.
+    let s = pipeline(4, 4, "1f1b", "  steps: 5\n  flush: false\n  weight_versions: double\n");
+    let st = steps_of(&s);
+    assert!(st.stages.iter().all(|g| g.staleness_steps == 1 && g.weight_versions == 2 && g.extra_bytes == 2_000_000));
+    // Fewer micro-batches than stages: the first device would start step
+    // k + 2 before its update of step k.
+    let short = pipeline(4, 2, "1f1b", "  steps: 5\n  flush: false\n  weight_versions: double\n");
+    let e = baton::simulate(&short).unwrap_err().to_string();
+    assert!(e.contains("double weight versions: device 0 starts step 2 before its update of step 0"), "{e}");
+    // Stash on the same pipeline: the first stage's later micro-batches
+    // read the newest weights, its first p - 1 of a step the previous ones.
+    let s = pipeline(4, 4, "1f1b", "  steps: 5\n  flush: false\n  weight_versions: stash\n");
+    let st = steps_of(&s);
+    let stale: Vec<u32> = st.stages.iter().map(|g| g.staleness_steps).collect();
+    assert_eq!(stale, vec![1, 1, 1, 0]);
+}
+
+#[test]
+fn steps_on_the_command_line() {
+    let dir = tempfile::tempdir().unwrap();
+    let out_json = dir.path().join("r.json");
+    let out = run_baton(&[
+        "run",
+        "scenarios/zero-bubble.yaml",
+        "--steps",
+        "3",
+        "--set",
+        "pipeline.flush=false",
+        "--set",
+        "pipeline.weight_versions=stash",
+        "--json",
+        out_json.to_str().unwrap(),
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let stdout = text(&out.stdout);
+    assert!(stdout.contains("steps            no flush, weight versions stash: "), "{stdout}");
+    assert!(stdout.contains("staleness (steps)"), "{stdout}");
+    let v: serde_json::Value = serde_json::from_slice(&std::fs::read(&out_json).unwrap()).unwrap();
+    let st = &v["steps"];
+    assert_eq!(st["count"], 3);
+    assert_eq!(st["flush"], false);
+    assert_eq!(st["weight_versions"], "stash");
+    assert_eq!(st["step_ms"].as_array().unwrap().len(), 3);
+    assert_eq!(st["stages"].as_array().unwrap().len(), 4);
+    let total: f64 = st["step_ms"].as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).sum();
+    assert!((total - v["step_time_ms"].as_f64().unwrap()).abs() < 1e-9);
+    // One flushed step has no steps section.
+    let out = run_baton(&["run", "scenarios/zero-bubble.yaml", "--json", "-"]);
+    assert!(json(&out).get("steps").is_none());
+}
+
+#[test]
+fn refusals_name_the_key() {
+    let cases: [(&[&str], &str); 5] = [
+        (&["--set", "pipeline.weight_versions=stash"], "pipeline.weight_versions (from --set pipeline.weight_versions=stash): stash keeps weight versions for steps that run on without a flush; set pipeline.flush: false"),
+        (&["--set", "pipeline.flush=false", "--set", "pipeline.weight_versions=double", "--set", "pipeline.schedule=fill-drain"], "fill-drain would run every step's forwards first"),
+        (&["--steps", "0"], "pipeline.steps (from --set pipeline.steps=0): must be at least 1, found 0"),
+        (&["--steps", "1048577"], "must be at most 1048576"),
+        (&["--steps", "1000000", "--set", "pipeline.micro_batches=4096"], "steps of 4096 micro-batches: the plan is too large"),
+    ];
+    for (args, want) in cases {
+        let mut all = vec!["run", "scenarios/zero-bubble.yaml"];
+        all.extend_from_slice(args);
+        let out = run_baton(&all);
+        assert_eq!(out.status.code(), Some(2), "{args:?}");
+        let err = text(&out.stderr);
+        assert!(err.contains(want), "{args:?}: {err}");
+    }
+    let out = run_baton(&["run", "scenarios/replicas.yaml", "--set", "pipeline.flush=false"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("parallel.data: 4 replicas synchronise their gradients every step"));
+}
