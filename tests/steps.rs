@@ -55,6 +55,13 @@ fn flushed_steps_are_single_steps_plus_their_updates() {
     let mut one = s.clone();
     one.pipeline.steps = 1;
     assert_eq!(baton::simulate(&one).unwrap().report.step_time_ns, 38_000);
+    // Each step's update is numbered by its step.
+    let updates: Vec<(u32, u64, u64)> = run.trace.ops[0]
+        .iter()
+        .filter(|r| r.op.kind == baton::schedule::OpKind::Update)
+        .map(|r| (r.op.micro_batch, r.start.as_ns(), r.end.as_ns()))
+        .collect();
+    assert_eq!(updates, vec![(0, 33_000, 38_000), (1, 71_000, 76_000), (2, 109_000, 114_000)]);
     assert_eq!(run.report.micro_batches, 8);
     assert_eq!(run.report.ops, 3 * (2 * 8 * 4 + 4));
 }

@@ -325,8 +325,8 @@ impl Trace {
     /// Steps simulated one after another with a barrier between them, as
     /// one trace: step `k` starts when steps `0..k` have all ended (their
     /// ops, synchronisation and updates), its times move by that much, its
-    /// plan ops' micro-batches are renumbered `k * m + i`, and its records'
-    /// indices follow the earlier steps'. Every part must have run a plan of
+    /// plan ops' micro-batches are renumbered `k * m + i` (an update's is
+    /// `k`), and its records' indices follow the earlier steps'. Every part must have run a plan of
     /// the same shape on the same devices.
     pub fn concat(parts: Vec<Trace>) -> Result<Trace, ExecError> {
         let mut parts = parts.into_iter();
@@ -346,8 +346,13 @@ impl Trace {
             }
             let at = |t: SimTime| t + offset;
             let mb = k * m;
-            let plan_op =
-                |op: Op| if op.kind.is_device_work() { op } else { Op { micro_batch: op.micro_batch + mb, ..op } };
+            // An update is numbered by its step; other device work (encode:
+            // the bucket) keeps its number.
+            let plan_op = |op: Op| match op.kind {
+                OpKind::Update => Op { micro_batch: k, ..op },
+                kind if kind.is_device_work() => op,
+                _ => Op { micro_batch: op.micro_batch + mb, ..op },
+            };
             for (d, ops) in part.plan.per_device.iter().enumerate() {
                 out.plan.per_device[d].extend(ops.iter().map(|&op| plan_op(op)));
             }

@@ -954,30 +954,35 @@ fn from_tree(
         ));
     }
     if let Some(bound) = step_bound_ns(&scenario).filter(|&b| b > MAX_STEP_NS) {
+        let several = scenario.pipeline.steps > 1;
+        let key = if several { "steps" } else { "micro_batches" };
         let origin = top
             .get("pipeline")
             .and_then(|(_, p)| match &p.value {
-                Value::Map(e) => e.iter().find(|(k, _, _)| k == "micro_batches").map(|(_, _, n)| n.origin.clone()),
+                Value::Map(e) => e.iter().find(|(k, _, _)| k == key).map(|(_, _, n)| n.origin.clone()),
                 _ => None,
             })
             .unwrap_or(Origin::Default);
         return Err(cx.err(
-            "pipeline.micro_batches",
+            &format!("pipeline.{key}"),
             &origin,
             format!(
-                "the step would last up to {} years of simulated time, more than the simulation's clock holds \
-                 ({} years); use fewer micro-batches, shorter times or larger bandwidths",
+                "the {} would last up to {} years of simulated time, more than the simulation's clock holds \
+                 ({} years); use fewer {}, shorter times or larger bandwidths",
+                if several { "steps" } else { "step" },
                 bound / 31_557_600_000_000_000,
-                MAX_STEP_NS / 31_557_600_000_000_000
+                MAX_STEP_NS / 31_557_600_000_000_000,
+                if several { "steps or micro-batches" } else { "micro-batches" },
             ),
         ));
     }
     Ok(scenario)
 }
 
-/// An upper bound on the step's length: every op of every micro-batch run one
+/// An upper bound on the steps' length: every op of every micro-batch run one
 /// after another, plus two transfers per boundary and micro-batch, each the
-/// largest activation over the slowest link with the longest route's latency.
+/// largest activation over the slowest link with the longest route's latency,
+/// and the update, times `pipeline.steps`.
 /// `None` when the scenario has no layers.
 fn step_bound_ns(s: &Scenario) -> Option<u128> {
     let m = s.pipeline.micro_batches as u128;
@@ -994,7 +999,8 @@ fn step_bound_ns(s: &Scenario) -> Option<u128> {
     let largest = s.layers.iter().map(|l| l.activation_bytes).max()? as u128;
     let transfer = latency + (largest * 1_000_000_000).div_ceil(bandwidth.max(1) as u128);
     let boundaries = s.pipeline.split.len().saturating_sub(1) as u128;
-    Some(m * (work + 2 * boundaries * transfer))
+    let steps = s.pipeline.steps.max(1) as u128;
+    Some(steps * (m * (work + 2 * boundaries * transfer) + s.training.update_ns as u128))
 }
 
 /// `packed` puts stage s on device s; `spread` deals stages out over the
