@@ -569,6 +569,9 @@ pub fn variability_note(s: &Scenario) -> String {
     if s.cluster.slow_chance > 0.0 {
         parts.push(format!("{}% of ops x{} slower", s.cluster.slow_chance * 100.0, s.cluster.slow_factor));
     }
+    if s.cluster.link_jitter > 0.0 {
+        parts.push(format!("link jitter +-{}%", s.cluster.link_jitter * 100.0));
+    }
     parts.join("; ")
 }
 
@@ -762,8 +765,8 @@ pub fn tensor_config_fast(s: &Scenario) -> Option<TensorConfig> {
 /// through the devices before it, nor finish the step before the last
 /// backward has come back through them: `max_k (sum_{j<k} F_j + m (F_k +
 /// B_k) + sum_{j<k} B_j)`. Gradient synchronisation, transfers and waits
-/// only add to it. With compute jitter every time may shrink by the jitter,
-/// and the bound with it.
+/// only add to it. With compute (or link) jitter every time may shrink by
+/// the jitter, and the bound with it.
 pub fn step_lower_bound_ns(s: &Scenario) -> u64 {
     let topology = topology(s);
     let p = s.pipeline.stages as usize;
@@ -796,18 +799,23 @@ pub fn step_lower_bound_ns(s: &Scenario) -> u64 {
         })
         .max()
         .unwrap_or(0);
-    let bound = bound as f64 * (1.0 - s.cluster.jitter);
+    let bound = bound as f64 * (1.0 - s.cluster.jitter.max(s.cluster.link_jitter));
     bound.min(u64::MAX as f64) as u64
 }
 
 /// Whether every replica's pipeline (its transfers between stages and its
 /// tensor groups' all-reduces) runs on links no other replica uses, each
-/// route with the same latencies and bandwidths as replica 0's, and no
-/// compute jitter: then, before the gradient collectives, nothing can tell
+/// route with the same latencies and bandwidths as replica 0's, and nothing
+/// varies: then, before the gradient collectives, nothing can tell
 /// the replicas apart and [`simulate_fast`] plays replica 0 alone.
 pub fn replicas_look_alike(s: &Scenario) -> bool {
     let (d, p, t) = (s.parallel.data, s.pipeline.stages, s.parallel.tensor.max(1));
-    if d <= 1 || s.cluster.jitter > 0.0 || s.cluster.slow_chance > 0.0 || !s.cluster.stragglers.is_empty() {
+    if d <= 1
+        || s.cluster.jitter > 0.0
+        || s.cluster.link_jitter > 0.0
+        || s.cluster.slow_chance > 0.0
+        || !s.cluster.stragglers.is_empty()
+    {
         return false;
     }
     let topology = topology(s);
@@ -863,8 +871,8 @@ pub fn replicas_look_alike(s: &Scenario) -> bool {
 /// of any stage's group; the busiest device does `m` times the largest
 /// piece of the best possible cut (the linear partition of those costs
 /// over the devices; with several chunks per device, at least an even
-/// share and the dearest layer). Anything else only adds. With compute
-/// jitter the bound shrinks by the jitter.
+/// share and the dearest layer). Anything else only adds. With compute (or
+/// link) jitter the bound shrinks by the jitter.
 pub fn layout_lower_bound_ns(s: &Scenario) -> u64 {
     let topology = topology(s);
     let p = s.pipeline.stages as usize;
@@ -891,7 +899,8 @@ pub fn layout_lower_bound_ns(s: &Scenario) -> u64 {
         let total: u64 = weights.iter().sum();
         total.div_ceil(p as u64).max(weights.iter().copied().max().unwrap_or(0))
     };
-    let bound = per_device as f64 * s.pipeline.micro_batches as f64 * (1.0 - s.cluster.jitter);
+    let bound =
+        per_device as f64 * s.pipeline.micro_batches as f64 * (1.0 - s.cluster.jitter.max(s.cluster.link_jitter));
     bound.min(u64::MAX as f64) as u64
 }
 
@@ -1092,6 +1101,7 @@ pub(crate) fn run_options(s: &Scenario, one_replica: bool) -> RunOptions {
         stragglers: s.cluster.stragglers.clone(),
         slow_chance: s.cluster.slow_chance,
         slow_factor: s.cluster.slow_factor,
+        link_jitter: s.cluster.link_jitter,
         step_updates: None,
     }
 }

@@ -77,6 +77,7 @@ fn flushed(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Resu
             device: k % s.pipeline.stages,
             staleness_steps: 0,
             weight_versions: 1,
+            distinct_versions: 1,
             extra_bytes: 0,
         })
         .collect();
@@ -172,6 +173,7 @@ fn unflushed(s: &Scenario, fast: bool, topo: &Topology) -> Result<SimulatedStep,
                 device: k % s.pipeline.stages,
                 staleness_steps: weights.staleness[k as usize],
                 weight_versions: versions,
+                distinct_versions: weights.distinct[k as usize],
                 extra_bytes: (versions.saturating_sub(1) as u64)
                     .saturating_mul(params)
                     .saturating_mul(s.pipeline.version_bytes_per_param as u64),

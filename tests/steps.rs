@@ -145,6 +145,8 @@ fn pipedream_keeps_a_version_per_micro_batch_in_flight() {
     let extra: Vec<u64> = st.stages.iter().map(|g| g.extra_bytes).collect();
     assert_eq!(versions, vec![4, 3, 2, 1]);
     assert_eq!(stale, vec![3, 2, 1, 0]);
+    // One micro-batch per step: every one in flight reads a version of its own.
+    assert!(st.stages.iter().all(|g| g.distinct_versions == g.weight_versions));
     assert_eq!(extra, vec![3 * 2_000_000, 2 * 2_000_000, 2_000_000, 0]);
     // The memory model adds them: state 16 bytes x 1M plus the extra.
     let flushed = baton::simulate(&pipeline(4, 1, "1f1b", "  steps: 8\n")).unwrap().report;
@@ -173,6 +175,11 @@ fn pipedream_2bw_keeps_two_versions_one_step_stale() {
     let st = steps_of(&s);
     let stale: Vec<u32> = st.stages.iter().map(|g| g.staleness_steps).collect();
     assert_eq!(stale, vec![1, 1, 1, 0]);
+    // PipeDream's copy per micro-batch in flight (p - s) is priced, though
+    // the micro-batches of a step share a version: at most the previous
+    // step's and the newest are read at once (the last stage: the newest).
+    let versions: Vec<(u32, u32)> = st.stages.iter().map(|g| (g.weight_versions, g.distinct_versions)).collect();
+    assert_eq!(versions, vec![(4, 2), (3, 2), (2, 2), (1, 1)]);
 }
 
 #[test]

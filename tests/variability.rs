@@ -130,3 +130,58 @@ fn trials_on_the_command_line() {
         "give jitter once",
     );
 }
+
+#[test]
+fn link_jitter_scales_each_transfer_within_its_range() {
+    // Two stages, one micro-batch, forward 100 ns, backward 200 ns, 1000 B
+    // over a 1 GB/s link with 500 ns latency: each transfer alone takes
+    // 500 + 1000 = 1500 ns. With link_jitter 0.4 each takes 1500 x f,
+    // f in [0.6, 1.4] (latency and bytes scaled alike, rounded to whole
+    // ns), and the step is 100 + t1 + 100 + 200 + t2 + 200.
+    let yaml = |v: &str| {
+        format!(
+            "model:\n  layers:\n    - {{ name: l, repeat: 2, forward: 100ns, backward: 200ns, activation: 1000B }}\n\
+             cluster:\n  devices: 2\n  link: {{ latency: 500ns, bandwidth: 1GB/s }}\n{v}\
+             pipeline:\n  stages: 2\n  micro_batches: 1\n  schedule: 1f1b\n"
+        )
+    };
+    let plain = baton::simulate(&parse(&yaml(""), "l.yaml", "l", &[]).unwrap()).unwrap();
+    assert_eq!(plain.report.step_time_ns, 100 + 1500 + 300 + 1500 + 200);
+    let mut seen = Vec::new();
+    for seed in 1..20u64 {
+        let mut s = parse(&yaml("  variability: { link_jitter: 0.4 }\n"), "l.yaml", "l", &[]).unwrap();
+        s.seed = seed;
+        let run = baton::simulate(&s).unwrap();
+        let t: Vec<u64> = run.trace.transfers.iter().map(|r| r.end.as_ns() - r.start.as_ns()).collect();
+        assert_eq!(t.len(), 2);
+        for &x in &t {
+            assert!((900..=2100).contains(&x), "seed {seed}: {x}");
+        }
+        assert_eq!(run.report.step_time_ns, 100 + t[0] + 300 + t[1] + 200);
+        // Compute is untouched.
+        for r in run.trace.ops.iter().flatten() {
+            assert_eq!(
+                r.end.as_ns() - r.start.as_ns(),
+                if r.op.kind == baton::schedule::OpKind::Forward { 100 } else { 200 }
+            );
+        }
+        seen.extend(t);
+    }
+    seen.sort_unstable();
+    seen.dedup();
+    assert!(seen.len() > 20, "the draws vary: {seen:?}");
+}
+
+#[test]
+fn link_jitter_leaves_the_compute_draws_as_they_were() {
+    // Link factors come from their own stream of the seeded generator, so
+    // adding link jitter does not move a single op's jittered time.
+    let j = four("  variability: { jitter: 0.2 }\n");
+    let both = four("  variability: { jitter: 0.2, link_jitter: 0.3 }\n");
+    let a = baton::simulate(&j).unwrap().trace;
+    let b = baton::simulate(&both).unwrap().trace;
+    for (x, y) in a.ops.iter().flatten().zip(b.ops.iter().flatten()) {
+        assert_eq!((x.op, x.end.as_ns() - x.start.as_ns()), (y.op, y.end.as_ns() - y.start.as_ns()));
+    }
+    assert_eq!(baton::simulate(&both).unwrap().report.variability, "link jitter +-30%");
+}

@@ -73,6 +73,16 @@ pub fn seeded_rng(seed: u64) -> SimRng {
     SimRng::seed_from_u64(seed)
 }
 
+/// The same seeded generator on another of its streams: draws that must not
+/// shift the main stream's (links' variation beside compute's) take them
+/// from here, so turning one kind of variation on leaves the other's draws
+/// as they were.
+pub fn seeded_stream(seed: u64, stream: u64) -> SimRng {
+    let mut rng = seeded_rng(seed);
+    rng.set_stream(stream);
+    rng
+}
+
 /// A point in simulated time: nanoseconds since the start of the simulation.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, PartialOrd, Ord, Hash)]
 pub struct SimTime(pub u64);

@@ -533,6 +533,9 @@ struct Transfers {
     pending_sends: Vec<u32>,
     /// Scratch list of transfers whose last byte has left.
     due: Vec<TransferId>,
+    /// With link jitter: its amount and the generator its factors come
+    /// from (the seed's stream 1), drawn as transfers start.
+    link_jitter: Option<(f64, baton_engine::SimRng)>,
 }
 
 impl Transfers {
@@ -582,7 +585,14 @@ impl Transfers {
 
     /// Starts `bytes` from `src` to `dst` on the network, remembering `tag`.
     fn start(&mut self, now: SimTime, src: u32, dst: u32, bytes: u64, tag: u32) {
-        let t = self.net.start(now, src, dst, bytes).0 as usize;
+        let factor = match &mut self.link_jitter {
+            Some((j, rng)) => {
+                use rand::RngExt;
+                rng.random_range(1.0 - *j..=1.0 + *j)
+            }
+            None => 1.0,
+        };
+        let t = self.net.start_varied(now, src, dst, bytes, factor).0 as usize;
         if self.in_flight.len() <= t {
             self.in_flight.resize(t + 1, NONE);
         }
@@ -850,6 +860,11 @@ pub struct RunOptions {
     pub slow_chance: f64,
     /// How many times longer a rare slow op takes.
     pub slow_factor: f64,
+    /// Each transfer's latency and the time its bytes take are scaled by a
+    /// factor drawn uniformly from `[1 - link_jitter, 1 + link_jitter]`, as
+    /// transfers start, from stream 1 of the seeded generator (so compute
+    /// draws stay as they are); 0: none.
+    pub link_jitter: f64,
     /// Several steps in one plan: where each worker updates its weights.
     /// Only without gradient synchronisation (whose own update ends a
     /// single step).
@@ -924,6 +939,9 @@ pub fn simulate_parallel(
     }
     if !(0.0..1.0).contains(&options.jitter) {
         return Err(ExecError::Jitter(options.jitter));
+    }
+    if !(0.0..1.0).contains(&options.link_jitter) {
+        return Err(ExecError::Jitter(options.link_jitter));
     }
     let shape = plan.shape;
     let n_stages = shape.virtual_stages() as usize;
@@ -1023,6 +1041,8 @@ pub fn simulate_parallel(
             blocking_sends: options.blocking_sends,
             pending_sends: vec![0; workers],
             due: Vec::new(),
+            link_jitter: (options.link_jitter > 0.0)
+                .then(|| (options.link_jitter, baton_engine::seeded_stream(options.seed, 1))),
         },
         jitter,
         work: vec![VecDeque::new(); workers],

@@ -46,6 +46,9 @@ struct Flow {
     /// The link that limited the rate for the longest stretch, and how long.
     top: u32,
     top_ns: u64,
+    /// How much longer (or shorter) than usual this transfer's bytes and
+    /// latency take (1: as the links say).
+    factor: f64,
 }
 
 const NO_LINK: u32 = u32::MAX;
@@ -316,10 +319,20 @@ impl Network {
     /// byte leaves; at that time [`Network::take_due`] lists the transfers
     /// to finish.
     pub fn start(&mut self, now: SimTime, src: u32, dst: u32, bytes: u64) -> TransferId {
+        self.start_varied(now, src, dst, bytes, 1.0)
+    }
+
+    /// [`Network::start`] for a transfer whose bytes take `factor` times as
+    /// long as usual to push (as if it were `factor` times as large, so it
+    /// shares links as usual) and whose latency is `factor` times the
+    /// route's (rounded to the nearest nanosecond); the links still count
+    /// `bytes`. `factor` must be positive and finite.
+    pub fn start_varied(&mut self, now: SimTime, src: u32, dst: u32, bytes: u64, factor: f64) -> TransferId {
         let now = now.as_ns();
         let route = self.topo.route_bounds(src, dst);
         let flow = Flow {
-            remaining: bytes as f64,
+            factor,
+            remaining: bytes as f64 * factor,
             rate: 0.0,
             last_ns: now,
             // Not due until it has a rate (instant transfers are set below).
@@ -434,9 +447,9 @@ impl Network {
     pub fn finish(&mut self, now: SimTime, id: TransferId) -> Finished {
         let now = now.as_ns();
         let i = id.0 as usize;
-        let (src, dst, bytes, route, on_links) = {
+        let (src, dst, bytes, route, on_links, factor) = {
             let f = &self.flows[i];
-            (f.src, f.dst, f.bytes, f.route, f.on_links)
+            (f.src, f.dst, f.bytes, f.route, f.on_links, f.factor)
         };
         for r in route.0..route.1 {
             let l = self.topo.route_links[r as usize].0 as usize;
@@ -491,7 +504,11 @@ impl Network {
         self.free.push(id.0);
         self.in_flight -= 1;
         self.next_stale = true;
-        Finished { src, dst, bytes, delivered_at: SimTime(now) + self.topo.route_latency(src, dst), bottleneck }
+        let mut latency = self.topo.route_latency(src, dst);
+        if factor != 1.0 {
+            latency = baton_engine::SimDuration((latency.as_ns() as f64 * factor).round() as u64);
+        }
+        Finished { src, dst, bytes, delivered_at: SimTime(now) + latency, bottleneck }
     }
 
     /// Records that flow `i`'s rate is set by link `limit` from `now` on.

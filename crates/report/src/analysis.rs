@@ -415,8 +415,14 @@ pub struct StepStage {
     /// The most steps its weights lag behind (0: each step reads the
     /// weights after the previous step's update).
     pub staleness_steps: u32,
-    /// The most versions of its weights kept at once.
+    /// The versions of its weights kept: 1 for `one`; for `stash` one per
+    /// micro-batch in flight at the peak (PipeDream's copy per input); 2 for
+    /// `double`.
     pub weight_versions: u32,
+    /// The most distinct versions its micro-batches read at once, with the
+    /// newest (micro-batches of one step share a version, so this can be
+    /// fewer than `weight_versions` with `stash`).
+    pub distinct_versions: u32,
     /// Bytes the versions beyond the first add to its device's memory.
     pub extra_bytes: u64,
 }

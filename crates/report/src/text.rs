@@ -262,15 +262,16 @@ fn steps_lines(s: &mut String, st: &crate::Steps) {
     };
     let _ = writeln!(s, "steps            {how}: {}", times.join(", "));
     if !st.flush {
-        let _ = writeln!(s, "  stage  device  staleness (steps)  weight versions  extra memory");
+        let _ = writeln!(s, "  stage  device  staleness (steps)  weight versions  (distinct)  extra memory");
         for g in &st.stages {
             let _ = writeln!(
                 s,
-                "  {:>5}  {:>6}  {:>17}  {:>15}  {}",
+                "  {:>5}  {:>6}  {:>17}  {:>15}  {:>10}  {}",
                 g.stage,
                 g.device,
                 g.staleness_steps,
                 g.weight_versions,
+                format!("({})", g.distinct_versions),
                 format_bytes(g.extra_bytes)
             );
         }

@@ -282,6 +282,11 @@ pub const VARIABILITY: &[Key] = &[
         Type::Number { min: 1.0, min_exclusive: false, max: 1000.0, max_exclusive: false },
         "How many times longer a rare slow op takes (2 when left out).",
     ),
+    key(
+        "link_jitter",
+        Type::Number { min: 0.0, min_exclusive: false, max: 1.0, max_exclusive: true },
+        "Each transfer's latency and the time its bytes take are multiplied by a factor drawn uniformly from [1 - link_jitter, 1 + link_jitter] (0 when left out).",
+    ),
 ];
 
 /// `cluster.variability.stragglers[]`.

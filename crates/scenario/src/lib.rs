@@ -275,6 +275,9 @@ pub struct Cluster {
     pub slow_chance: f64,
     /// How many times longer a rare slow op takes.
     pub slow_factor: f64,
+    /// Each transfer's latency and byte time are scaled by a factor drawn
+    /// uniformly from `[1 - link_jitter, 1 + link_jitter]`; 0: none.
+    pub link_jitter: f64,
 }
 
 /// The `pipeline` section: stages, split, micro-batches and schedule.
@@ -1421,7 +1424,7 @@ fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
         (devices, Fabric::Flat { link })
     };
     let mut jitter = c.opt("jitter", |a| a.fraction())?.unwrap_or(0.0);
-    let (mut stragglers, mut slow_chance, mut slow_factor) = (Vec::new(), 0.0, 2.0);
+    let (mut stragglers, mut slow_chance, mut slow_factor, mut link_jitter) = (Vec::new(), 0.0, 2.0, 0.0);
     if let Some(v) = c.opt("variability", |v| {
         let v_at = v;
         let v = v.map(keys::VARIABILITY)?;
@@ -1459,7 +1462,8 @@ fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
             }
             Ok(out)
         })?;
-        Ok((j, list.unwrap_or_default(), chance, factor))
+        let links = v.opt("link_jitter", |a| a.fraction())?;
+        Ok((j, list.unwrap_or_default(), chance, factor, links))
     })? {
         if let Some(j) = v.0 {
             jitter = j;
@@ -1467,6 +1471,7 @@ fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
         stragglers = v.1;
         slow_chance = v.2.unwrap_or(0.0);
         slow_factor = v.3.unwrap_or(2.0);
+        link_jitter = v.4.unwrap_or(0.0);
     }
     let device = c
         .opt("device", |d| {
@@ -1486,7 +1491,7 @@ fn read_cluster(c: Field<'_>) -> Result<Cluster, ScenarioError> {
             })
         })?
         .unwrap_or_default();
-    Ok(Cluster { devices, fabric, jitter, device, stragglers, slow_chance, slow_factor })
+    Ok(Cluster { devices, fabric, jitter, device, stragglers, slow_chance, slow_factor, link_jitter })
 }
 
 fn read_training(t: Field<'_>) -> Result<Training, ScenarioError> {

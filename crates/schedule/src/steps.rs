@@ -133,6 +133,11 @@ pub struct StepWeights {
     /// gradient op), as PipeDream stashes a copy per input in flight; with
     /// [`WeightVersions::Double`] 2 (both buffers).
     pub versions: Vec<u32>,
+    /// Per virtual stage: the most distinct versions read at once (the
+    /// newest and every older one a micro-batch in flight still reads),
+    /// which with several micro-batches per step can be fewer than
+    /// `versions` (micro-batches of a step share one).
+    pub distinct: Vec<u32>,
 }
 
 /// The weight versions of `plan` (micro-batches in steps of `m`) under
@@ -223,7 +228,10 @@ pub fn weights(plan: &Plan, m: u32, mode: WeightVersions) -> Result<StepWeights,
             versions.iter_mut().for_each(|v| *v = 2);
         }
     }
-    Ok(StepWeights { staleness, versions })
+    if mode == WeightVersions::One {
+        distinct.iter_mut().for_each(|v| *v = 1);
+    }
+    Ok(StepWeights { staleness, versions, distinct })
 }
 
 #[cfg(test)]
