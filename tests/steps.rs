@@ -237,3 +237,92 @@ fn refusals_name_the_key() {
     assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("parallel.data: 4 replicas synchronise their gradients every step"));
 }
+
+mod random {
+    use super::*;
+    use proptest::prelude::*;
+
+    fn case() -> impl Strategy<Value = (u32, u32, usize, u32, Vec<(u32, u32, u32)>, u32, bool, usize, u32)> {
+        (1u32..5, 1u32..4, 0usize..5, 1u32..4, 0u32..3, 0u32..3, any::<bool>(), 0usize..3).prop_flat_map(
+            |(p, mult, k, steps, jitter, update, flush, mode)| {
+                prop::collection::vec((1u32..200, 0u32..400, 0u32..4_000), p as usize..p as usize + 4)
+                    .prop_map(move |layers| (p, p * mult, k, steps, layers, jitter, flush, mode, update))
+            },
+        )
+    }
+
+    fn scenario(c: &(u32, u32, usize, u32, Vec<(u32, u32, u32)>, u32, bool, usize, u32)) -> Scenario {
+        let (p, m, k, steps, layers, jitter, flush, mode, update) = c;
+        let schedule = ["fill-drain", "1f1b", "interleaved", "zb-h1", "zb-h2"][*k];
+        let mode = if *flush || schedule == "fill-drain" { "one" } else { ["one", "stash", "double"][*mode] };
+        let mut text = String::from("model:\n  layers:\n");
+        for (f, b, a) in layers {
+            let w = if schedule.starts_with("zb") { format!(", weight: {}us", b / 2) } else { String::new() };
+            text += &format!("    - {{ forward: {f}us, backward: {b}us{w}, activation: {a}kB, params: 1M }}\n");
+        }
+        text += &format!(
+            "cluster: {{ devices: {p}, link: {{ latency: 3us, bandwidth: 10GB/s }}, jitter: {} }}\n\
+             pipeline: {{ stages: {p}, micro_batches: {m}, schedule: {schedule}, steps: {steps}, flush: {flush}, weight_versions: {mode} }}\n\
+             training: {{ update: {}us }}\n",
+            *jitter as f64 / 10.0,
+            update * 7
+        );
+        parse(&text, "r.yaml", "r", &[]).unwrap()
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 64, ..ProptestConfig::default() })]
+
+        /// Flushed steps are the single steps (seed + k) one after another;
+        /// without a flush every op of a step runs after its device's
+        /// previous ops; either way each step's time adds up to the run and
+        /// the critical path runs through the joined graph to its end.
+        #[test]
+        fn steps_add_up(c in case()) {
+            let s = scenario(&c);
+            let run = match baton::simulate(&s) {
+                Ok(r) => r,
+                // double with too few micro-batches per step is refused.
+                Err(e) => { prop_assert!(e.to_string().contains("double weight versions"), "{}", e); return Ok(()); }
+            };
+            let run = run.with_critical_path();
+            let Some(st) = run.report.steps.clone() else {
+                // One flushed step is a plain run.
+                prop_assert!(s.pipeline.steps == 1 && s.pipeline.flush);
+                return Ok(());
+            };
+            prop_assert_eq!(st.step_ns.iter().sum::<u64>(), run.report.step_time_ns);
+            let path: u64 = run.report.critical_path.iter().map(|e| ((e.end_ms - e.start_ms) * 1e6).round() as u64).sum();
+            prop_assert!(path.abs_diff(run.report.step_time_ns) <= run.report.critical_path.len() as u64, "{} vs {}", path, run.report.step_time_ns);
+            let m = s.pipeline.micro_batches;
+            if s.pipeline.flush {
+                let mut start = 0u64;
+                for k in 0..s.pipeline.steps {
+                    let mut one = s.clone();
+                    one.pipeline.steps = 1;
+                    one.seed = s.seed + k as u64;
+                    prop_assert_eq!(st.step_ns[k as usize], baton::simulate(&one).unwrap().report.step_time_ns);
+                    for r in run.trace.ops.iter().flatten().filter(|r| !r.op.kind.is_device_work() && r.op.micro_batch / m == k) {
+                        prop_assert!(r.start.as_ns() >= start);
+                    }
+                    start += st.step_ns[k as usize];
+                }
+            }
+            for recs in &run.trace.ops {
+                for w in recs.windows(2) {
+                    prop_assert!(w[1].start >= w[0].end);
+                }
+            }
+            // The joined trace's look-ups find each op's record and each
+            // producer's transfer.
+            for recs in &run.trace.ops {
+                for r in recs.iter().filter(|r| !r.op.kind.is_device_work()) {
+                    prop_assert_eq!(run.trace.record(r.op).1, r);
+                }
+            }
+            for t in &run.trace.transfers {
+                prop_assert_eq!(run.trace.outgoing(t.producer()), Some(t));
+            }
+        }
+    }
+}
