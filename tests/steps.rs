@@ -242,7 +242,11 @@ mod random {
     use super::*;
     use proptest::prelude::*;
 
-    fn case() -> impl Strategy<Value = (u32, u32, usize, u32, Vec<(u32, u32, u32)>, u32, bool, usize, u32)> {
+    /// (p, m, schedule, steps, layers (F us, B us, kB), jitter tenths,
+    /// flush, weight-version mode, update in 7 us units)
+    type Case = (u32, u32, usize, u32, Vec<(u32, u32, u32)>, u32, bool, usize, u32);
+
+    fn case() -> impl Strategy<Value = Case> {
         (1u32..5, 1u32..4, 0usize..5, 1u32..4, 0u32..3, 0u32..3, any::<bool>(), 0usize..3).prop_flat_map(
             |(p, mult, k, steps, jitter, update, flush, mode)| {
                 prop::collection::vec((1u32..200, 0u32..400, 0u32..4_000), p as usize..p as usize + 4)
@@ -251,7 +255,7 @@ mod random {
         )
     }
 
-    fn scenario(c: &(u32, u32, usize, u32, Vec<(u32, u32, u32)>, u32, bool, usize, u32)) -> Scenario {
+    fn scenario(c: &Case) -> Scenario {
         let (p, m, k, steps, layers, jitter, flush, mode, update) = c;
         let schedule = ["fill-drain", "1f1b", "interleaved", "zb-h1", "zb-h2"][*k];
         let mode = if *flush || schedule == "fill-drain" { "one" } else { ["one", "stash", "double"][*mode] };
