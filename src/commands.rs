@@ -630,7 +630,25 @@ pub fn layout(r: &LayoutRequest<'_>, outputs: &mut Outputs) -> Result<Done, Comm
 /// `baton order`: each device's order of operations for the scenario's
 /// schedule, in the order syntax (`--out`, standard output by default).
 pub fn order(scenario: &Path, sets: &[String], outputs: &mut Outputs) -> Result<Done, CommandError> {
-    let s = baton_scenario::load(scenario, sets)?;
+    let full = baton_scenario::load(scenario, sets)?;
+    // One step's order; a note says how several steps run it.
+    let mut s = full.clone();
+    s.pipeline.steps = 1;
+    s.pipeline.flush = true;
+    s.pipeline.weight_versions = baton_schedule::steps::WeightVersions::One;
+    let steps_note = match (full.pipeline.steps, full.pipeline.flush, full.pipeline.weight_versions) {
+        (1, true, _) => String::new(),
+        (n, true, _) => format!("# one step's order; each of the {n} steps runs it after a flush\n"),
+        (n, false, baton_schedule::steps::WeightVersions::One) => {
+            format!("# one step's order; each of the {n} steps runs it on each device after that device's update\n")
+        }
+        (n, false, w) => format!(
+            "# one step's order; with {w} weight versions the devices run the schedule for all {n} x {m} = {} micro-batches at once (--set pipeline.micro_batches={} shows it)\n",
+            n as u64 * full.pipeline.micro_batches as u64,
+            n as u64 * full.pipeline.micro_batches as u64,
+            m = full.pipeline.micro_batches,
+        ),
+    };
     // zb-auto's order is the one its simulation keeps.
     let (plan, chosen) = if s.pipeline.schedule == baton_schedule::ScheduleKind::ZbAuto {
         let step = crate::simulate(&s)?;
@@ -651,6 +669,7 @@ pub fn order(scenario: &Path, sets: &[String], outputs: &mut Outputs) -> Result<
         if shape.split_backward { " (input gradient), W<i> weight gradient" } else { "" },
         if shape.chunks > 1 { "; .c the chunk" } else { "" }
     );
+    text.push_str(&steps_note);
     text.push_str(&baton_schedule::order_text(&plan));
     if outputs.wants("--out") {
         outputs.write("--out", text.as_bytes())?;

@@ -330,3 +330,24 @@ mod random {
         }
     }
 }
+
+#[test]
+fn order_prints_one_step_and_says_how_steps_run_it() {
+    let out = run_baton(&[
+        "order",
+        "scenarios/zero-bubble.yaml",
+        "--set",
+        "pipeline.steps=3",
+        "--set",
+        "pipeline.flush=false",
+        "--set",
+        "pipeline.weight_versions=double",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let t = text(&out.stdout);
+    assert!(
+        t.contains("with double weight versions the devices run the schedule for all 3 x 12 = 36 micro-batches"),
+        "{t}"
+    );
+    assert!(t.lines().any(|l| l.starts_with("0: F0 ") && l.ends_with(" B11")), "{t}");
+}
