@@ -463,6 +463,21 @@ proptest! {
             }
             prop_assert_eq!(&trace.transfers, &alone.transfers);
         }
+        // The critical path runs through the collectives: contiguous, adding
+        // up to the step, and (without compression, whose encode and decode
+        // work interleaves with a collective's transfers) with every wait
+        // explained by an op, a send or a collective.
+        let path = baton::report::critical::Graph::of(trace).critical_path();
+        prop_assert!(!path.is_empty());
+        for w in path.windows(2) {
+            prop_assert_eq!(w[0].end_ns(), w[1].start_ns());
+        }
+        let total: u64 = path.iter().map(|e| e.end_ns() - e.start_ns()).sum();
+        prop_assert_eq!(total, report.step_time_ns);
+        if c.compression == "none" {
+            let unexplained: Vec<_> = path.iter().filter(|e| e.kind == "sync" && e.stage.is_none()).collect();
+            prop_assert!(unexplained.is_empty(), "{:?}", unexplained);
+        }
         let again = baton::simulate(&replica_scenario(&c).unwrap()).unwrap();
         prop_assert!(outputs(trace, report) == outputs(&again.trace, &again.report));
     }

@@ -42,7 +42,7 @@ use thiserror::Error;
 
 mod sync;
 mod tensor;
-pub use sync::{BucketSpec, CollectiveRecord, Compression, Phase, SyncConfig, SyncTransferRecord, TiedSpec};
+pub use sync::{BucketSpec, CollectiveRecord, Compression, Phase, SyncConfig, SyncTransferRecord, TiedSpec, Waited};
 pub use tensor::{Segment, TensorConfig, TensorTransferRecord};
 
 /// Time and data of one virtual stage, per micro-batch.
@@ -377,10 +377,21 @@ impl Trace {
             }
             out.events += part.events;
             let coll_base = out.collectives.len() as u32;
-            out.collectives.extend(part.collectives.iter().map(|c| CollectiveRecord {
-                start: at(c.start),
-                end: at(c.end),
-                ..c.clone()
+            out.collectives.extend(part.collectives.iter().map(|c| {
+                CollectiveRecord {
+                    start: at(c.start),
+                    end: at(c.end),
+                    waited: c
+                        .waited
+                        .iter()
+                        .map(|w| match *w {
+                            Waited::Gradient { worker, at: t } => Waited::Gradient { worker, at: at(t) },
+                            Waited::Update { worker, at: t } => Waited::Update { worker, at: at(t) },
+                            Waited::Collective(k) => Waited::Collective(k + coll_base),
+                        })
+                        .collect(),
+                    ..c.clone()
+                }
             }));
             out.sync_transfers.extend(part.sync_transfers.iter().map(|r| SyncTransferRecord {
                 collective: r.collective + coll_base,

@@ -175,10 +175,37 @@ pub struct CollectiveRecord {
     pub server_bytes_sent: Vec<u64>,
     /// Logical rounds of its transfers.
     pub rounds: u32,
+    /// What it waited for before it could start, in the order each came
+    /// (its group's previous collective, which it also waits for, is not
+    /// listed: see `group_index`).
+    pub waited: Vec<Waited>,
     /// When it started (ready on every member and its group free).
     pub start: SimTime,
     /// When its last transfer arrived (and, compressed, its last decode ended).
     pub end: SimTime,
+}
+
+/// One condition a collective waited for.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Waited {
+    /// A bucket became final on `worker` at `at` (during or at the end of
+    /// its last gradient op of the piece, or of one of its segments).
+    Gradient {
+        /// The worker.
+        worker: u32,
+        /// When.
+        at: SimTime,
+    },
+    /// `worker`'s optimizer update was done at `at` (its update op's end, or
+    /// at once when updates take no time).
+    Update {
+        /// The worker.
+        worker: u32,
+        /// When.
+        at: SimTime,
+    },
+    /// Another collective (index in `Trace::collectives`) ended.
+    Collective(u32),
 }
 
 /// One point-to-point transfer of a collective.
@@ -304,6 +331,8 @@ pub(crate) struct State {
     /// Conditions left per slot: all-reduce / reduce-scatter per global
     /// bucket, then all-gather per global bucket, then tied per replica.
     slot_left: Vec<u32>,
+    /// Per slot: the conditions met so far.
+    slot_waited: Vec<Vec<Waited>>,
     /// Per pipeline device: (index in its order, piece) of each piece's last
     /// gradient op, in order.
     grad_final: Vec<Vec<(usize, u32)>>,
@@ -442,6 +471,7 @@ impl State {
             bucket_base,
             nb,
             groups,
+            slot_waited: vec![Vec::new(); slot_left.len()],
             slot_left,
             grad_final,
             cursor: vec![0; workers],
@@ -512,12 +542,13 @@ impl State {
     }
 
     /// One condition of `slot` is met at `now`.
-    fn satisfy(&mut self, slot: u32, now: SimTime) {
+    fn satisfy(&mut self, slot: u32, now: SimTime, why: Waited) {
         let left = &mut self.slot_left[slot as usize];
         if *left == NEVER || *left == 0 {
             return;
         }
         *left -= 1;
+        self.slot_waited[slot as usize].push(why);
         if *left > 0 {
             return;
         }
@@ -656,13 +687,14 @@ impl Executor<'_> {
         let now = sched.now();
         let st = self.state();
         let (d, p) = (st.d, st.p);
+        let why = Waited::Gradient { worker: w, at: now };
         if d > 1 {
-            st.satisfy(gb, now);
+            st.satisfy(gb, now, why);
         }
         if let Some(t) = st.cfg.tied {
             let r = w / p;
             if gb == st.bucket_base[0] + t.first_bucket || gb == st.bucket_base[t.piece as usize] + t.piece_bucket {
-                st.satisfy(2 * st.nb + r, now);
+                st.satisfy(2 * st.nb + r, now, why);
             }
         }
     }
@@ -727,6 +759,12 @@ impl Executor<'_> {
             .collect();
         let sent = graph.sent_bytes();
         let coll = st.records.len() as u32;
+        let slot = match phase {
+            Phase::Tied => 2 * st.nb + (g as u32 - st.p),
+            Phase::AllGather => st.nb + st.bucket_base[piece as usize] + bucket,
+            Phase::AllReduce | Phase::ReduceScatter => st.bucket_base[piece as usize] + bucket,
+        };
+        let waited = std::mem::take(&mut st.slot_waited[slot as usize]);
         st.records.push(CollectiveRecord {
             group_index: g as u32,
             group: members.clone(),
@@ -740,6 +778,7 @@ impl Executor<'_> {
             wire_bytes_sent: sent[..members.len()].to_vec(),
             server_bytes_sent: sent[members.len()..].iter().map(|&b| b * t as u64).collect(),
             rounds: graph.rounds,
+            waited,
             start: now,
             end: now,
         });
@@ -860,8 +899,8 @@ impl Executor<'_> {
                 if st.d > 1 {
                     let a = st.bucket_base[0] + t.first_bucket;
                     let b = st.bucket_base[t.piece as usize] + t.piece_bucket;
-                    st.satisfy(a, now);
-                    st.satisfy(b, now);
+                    st.satisfy(a, now, Waited::Collective(coll));
+                    st.satisfy(b, now, Waited::Collective(coll));
                 }
             }
         }
@@ -910,7 +949,7 @@ impl Executor<'_> {
         let pp = st.p;
         for s in (0..=st.last_piece).filter(|s| s % pp == dev) {
             for gb in st.bucket_base[s as usize]..st.bucket_base[s as usize + 1] {
-                st.satisfy(nb + gb, now);
+                st.satisfy(nb + gb, now, Waited::Update { worker: w as u32, at: now });
             }
         }
     }

@@ -2,27 +2,33 @@
 //! op's and transfer's slack, and the critical path.
 //!
 //! The graph is the step as it ran: a node per op (every device's ops,
-//! device work included), per pipeline transfer, and, for a device whose
-//! step ends after its last op (gradient synchronisation, the update), a
-//! `sync` tail from that op's end to the device's end. A node's
-//! predecessors are the op before it on its device, the transfer that
-//! brought the data it needed from another device (the last rank's share
-//! for a tensor group; data from a stage on the same device needs no edge,
-//! the device's order implies it), and with blocking sends the previous
-//! op's transfer. Durations are the
+//! device work included), per pipeline transfer, per gradient collective
+//! (unless gradients are compressed: then encode and decode work
+//! interleaves with a collective's transfers and the collectives are left
+//! out), and, for a device whose step ends after its last op and its
+//! collectives, a `sync` tail from that op's end to the device's end. A
+//! node's predecessors are the op before it on its device, the transfer
+//! that brought the data it needed from another device (the last rank's
+//! share for a tensor group; data from a stage on the same device needs no
+//! edge, the device's order implies it), with blocking sends the previous
+//! op's transfer; a collective's are its group's previous collective and
+//! what it waited for (the op during which a bucket became final, the
+//! update, the tied pair's collective), and each member's update follows
+//! it. An edge may carry a lag: a bucket final before its op's end lets
+//! the collective start that much before the op ends. Durations are the
 //! realised ones. A node's **slack** is how much later it could end without
 //! moving the step's end, every other duration fixed: the latest finish
-//! `LF(x) = min over successors y of (LF(y) - duration(y))`, `LF = step end`
-//! for the last nodes, minus its end.
+//! `LF(x) = min over successors y of (LF(y) - duration(y) - lag(x, y))`,
+//! `LF = step end` for the last nodes, minus its end.
 //!
 //! The **critical path** walks back from a node that ends with the step
-//! through predecessors that end exactly when their successor starts and
-//! have no slack (the data dependency first, then the device's order); when
-//! nothing explains a start (device work waiting for a collective), the wait
-//! is a link of its own (`sync`). Its links' durations add up to the step
-//! time exactly. Gradient collectives and tensor all-reduces are not nodes:
-//! a device's tail and its waits for a collective stand for them, and a
-//! tensor op's time includes its all-reduces.
+//! through predecessors that meet their successor exactly (end plus lag
+//! equal to its start) and have no slack (the device's order first, then
+//! the data); an op reached through a negative lag is cut at the instant
+//! its bucket became final. When nothing explains a start (with compressed
+//! gradients), the wait is a link of its own (`sync` with no piece). Its
+//! links' durations add up to the step time exactly. Tensor all-reduces are
+//! not nodes: a tensor op's time includes its all-reduces.
 
 use baton_engine::SimTime;
 use baton_executor::Trace;
@@ -33,14 +39,16 @@ use serde::Serialize;
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct PathEntry {
     /// As in the trace CSV: `forward`, `backward`, `weight`, `encode`,
-    /// `update`, `send`, or `sync` (waiting for, or finishing, the gradient
-    /// synchronisation).
+    /// `update`, `send`, or `sync` (a gradient collective, with its bucket
+    /// and piece; or, with no piece, a wait for the synchronisation that the
+    /// graph does not explain).
     pub kind: &'static str,
     /// The device that ran it (a transfer's sender).
     pub device: u32,
-    /// Its micro-batch (`null` for `sync`).
+    /// Its micro-batch (a collective's bucket; `null` for a wait).
     pub micro_batch: Option<u32>,
-    /// Its virtual stage (a transfer's sending one; `null` for `sync`).
+    /// Its virtual stage (a transfer's sending one, a collective's piece;
+    /// `null` for a wait).
     pub stage: Option<u32>,
     /// Start, in milliseconds from the step's start.
     pub start_ms: f64,
@@ -56,6 +64,9 @@ pub struct PathEntry {
     pub(crate) to_device: Option<u32>,
     #[serde(skip)]
     pub(crate) link: Option<u32>,
+    /// The collective (index in `Trace::collectives`) a `sync` entry is.
+    #[serde(skip)]
+    pub(crate) collective: Option<u32>,
 }
 
 impl PathEntry {
@@ -79,7 +90,12 @@ pub struct Graph<'a> {
     /// First node id of each device's ops.
     offset: Vec<usize>,
     ops: usize,
-    /// The devices whose step ends after their last op, one tail node each.
+    /// Gradient collectives that are nodes (all of them, or none when
+    /// gradients are compressed: encode and decode work interleaves with
+    /// their transfers).
+    colls: usize,
+    /// The devices whose step ends after their last op and their
+    /// collectives, one tail node each.
     tail_device: Vec<u32>,
     shares: usize,
     /// Every node's (start, end) in ns.
@@ -88,12 +104,16 @@ pub struct Graph<'a> {
     /// (the op before on its device first when there is one).
     pred_start: Vec<u32>,
     preds: Vec<u32>,
+    /// Per edge (aligned with `preds`): the successor may start `lag` ns
+    /// after the predecessor's end (negative: a bucket final during the op).
+    lags: Vec<i64>,
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 enum Node {
     Op(u32, u32),
     Transfer(usize),
+    Collective(usize),
     Tail(u32),
 }
 
@@ -107,11 +127,25 @@ impl<'a> Graph<'a> {
             n += recs.len();
         }
         let ops = n;
+        let shares = trace.tensor.max(1) as usize;
+        let compressed = trace.ops.iter().flatten().any(|r| r.op.kind == OpKind::Encode);
+        let colls = if compressed { 0 } else { trace.collectives.len() };
+        // Each device's latest collective end (when collectives are nodes).
+        let mut coll_end = vec![SimTime::ZERO; trace.ops.len()];
+        for c in &trace.collectives[..colls] {
+            for &w in &c.group {
+                for k in 0..shares {
+                    if let Some(e) = coll_end.get_mut(w as usize * shares + k) {
+                        *e = (*e).max(c.end);
+                    }
+                }
+            }
+        }
         let mut tail_device = Vec::new();
         for (d, recs) in trace.ops.iter().enumerate() {
             let end = trace.device_end.get(d).copied().unwrap_or(SimTime::ZERO);
             if let Some(last) = recs.last() {
-                if end > last.end {
+                if end > last.end.max(coll_end[d]) {
                     tail_device.push(d as u32);
                 }
             }
@@ -120,11 +154,13 @@ impl<'a> Graph<'a> {
             trace,
             offset,
             ops,
+            colls,
             tail_device,
-            shares: trace.tensor.max(1) as usize,
+            shares,
             spans: Vec::new(),
             pred_start: Vec::new(),
             preds: Vec::new(),
+            lags: Vec::new(),
         };
         let n = g.len();
         let spans: Vec<(u64, u64)> = (0..n).map(|id| g.span_of(id)).collect();
@@ -134,11 +170,11 @@ impl<'a> Graph<'a> {
         // with blocking sends, an op after its device's previous send; a
         // tail after its device's last op. (Data between stages on the same
         // device needs no edge: the device's order already implies it.)
-        let mut edges: Vec<(u32, u32)> = Vec::with_capacity(2 * n);
+        let mut edges: Vec<(u32, u32, i64)> = Vec::with_capacity(2 * n);
         for (d, recs) in trace.ops.iter().enumerate() {
             for i in 1..recs.len() {
                 let id = g.offset[d] + i;
-                edges.push(((id - 1) as u32, id as u32));
+                edges.push(((id - 1) as u32, id as u32, 0));
             }
         }
         let shares = g.shares;
@@ -152,9 +188,9 @@ impl<'a> Graph<'a> {
                 let r = &trace.transfers[x];
                 let replica = replica_of(r.src);
                 let (_, pi) = trace.position_in(replica, r.producer());
-                edges.push(((g.offset[r.src as usize] + pi as usize) as u32, (g.ops + x) as u32));
+                edges.push(((g.offset[r.src as usize] + pi as usize) as u32, (g.ops + x) as u32, 0));
                 let (_, ci) = trace.position_in(replica, r.consumer());
-                edges.push(((g.ops + last) as u32, (g.offset[r.dst as usize] + ci as usize) as u32));
+                edges.push(((g.ops + last) as u32, (g.offset[r.dst as usize] + ci as usize) as u32, 0));
             }
             k = end;
         }
@@ -164,18 +200,19 @@ impl<'a> Graph<'a> {
                     if let Some(t) = trace.outgoing_index_in(replica_of(d as u32), recs[i - 1].op) {
                         let x = t + (d % shares);
                         if x < trace.transfers.len() {
-                            edges.push(((g.ops + x) as u32, (g.offset[d] + i) as u32));
+                            edges.push(((g.ops + x) as u32, (g.offset[d] + i) as u32, 0));
                         }
                     }
                 }
             }
         }
+        g.collective_edges(&mut edges);
         for (k, &d) in g.tail_device.iter().enumerate() {
             let last = g.offset[d as usize] + trace.ops[d as usize].len() - 1;
-            edges.push((last as u32, (g.ops + trace.transfers.len() + k) as u32));
+            edges.push((last as u32, (g.ops + trace.transfers.len() + g.colls + k) as u32, 0));
         }
         let mut pred_start = vec![0u32; n + 1];
-        for &(_, y) in &edges {
+        for &(_, y, _) in &edges {
             pred_start[y as usize + 1] += 1;
         }
         for id in 0..n {
@@ -183,14 +220,98 @@ impl<'a> Graph<'a> {
         }
         let mut fill = pred_start.clone();
         let mut preds = vec![0u32; edges.len()];
-        for &(x, y) in &edges {
+        let mut lags = vec![0i64; edges.len()];
+        for &(x, y, lag) in &edges {
             preds[fill[y as usize] as usize] = x;
+            lags[fill[y as usize] as usize] = lag;
             fill[y as usize] += 1;
         }
         g.spans = spans;
         g.pred_start = pred_start;
         g.preds = preds;
+        g.lags = lags;
         g
+    }
+
+    /// Edges of the collectives: from the group's previous collective; from
+    /// what each waited for (the op during which a bucket became final, with
+    /// a negative lag when that was before the op's end; the update op, or
+    /// the collective or op whose end let a zero-time update happen; the
+    /// tied pair's collective); to each member's update.
+    fn collective_edges(&self, edges: &mut Vec<(u32, u32, i64)>) {
+        let trace = self.trace;
+        let base = self.ops + trace.transfers.len();
+        let shares = self.shares;
+        let mut last_in_group: std::collections::HashMap<u32, usize> = Default::default();
+        for (ci, c) in trace.collectives[..self.colls].iter().enumerate() {
+            let id = (base + ci) as u32;
+            if let Some(&prev) = last_in_group.get(&c.group_index) {
+                edges.push(((base + prev) as u32, id, 0));
+            }
+            last_in_group.insert(c.group_index, ci);
+            for w in &c.waited {
+                match *w {
+                    baton_executor::Waited::Gradient { worker, at } => {
+                        let d = worker as usize * shares;
+                        if let Some(i) = self.op_containing(d, at, |k| matches!(k, OpKind::Backward | OpKind::Weight)) {
+                            let end = trace.ops[d][i].end.as_ns() as i64;
+                            edges.push(((self.offset[d] + i) as u32, id, at.as_ns() as i64 - end));
+                        }
+                    }
+                    baton_executor::Waited::Update { worker, at } => {
+                        let d = worker as usize * shares;
+                        let upd = self.op_containing(d, at, |k| k == OpKind::Update);
+                        if let Some(i) = upd.filter(|&i| trace.ops[d][i].end == at) {
+                            edges.push(((self.offset[d] + i) as u32, id, 0));
+                        } else if let Some(k) = (0..ci).rev().find(|&k| {
+                            let o = &trace.collectives[k];
+                            o.end == at && o.phase != baton_executor::Phase::AllGather && o.group.contains(&worker)
+                        }) {
+                            edges.push(((base + k) as u32, id, 0));
+                        } else if let Some(i) = self.op_containing(d, at, |k| !k.is_device_work()) {
+                            if trace.ops[d][i].end == at {
+                                edges.push(((self.offset[d] + i) as u32, id, 0));
+                            }
+                        }
+                    }
+                    baton_executor::Waited::Collective(k) => {
+                        if (k as usize) < self.colls {
+                            edges.push(((base + k as usize) as u32, id, 0));
+                        }
+                    }
+                }
+            }
+            if c.phase != baton_executor::Phase::AllGather {
+                for &w in &c.group {
+                    for k in 0..shares {
+                        let d = w as usize * shares + k;
+                        let Some(recs) = trace.ops.get(d) else { continue };
+                        let from = recs.partition_point(|r| r.start < c.end);
+                        if let Some(i) = (from..recs.len()).find(|&i| recs[i].op.kind == OpKind::Update) {
+                            edges.push((id, (self.offset[d] + i) as u32, 0));
+                        }
+                    }
+                }
+            }
+        }
+    }
+
+    /// The last op on device `d` of a kind `want` accepts that runs at `at`
+    /// (started by then and not ended before).
+    fn op_containing(&self, d: usize, at: SimTime, want: impl Fn(OpKind) -> bool) -> Option<usize> {
+        let recs = self.trace.ops.get(d)?;
+        let mut i = recs.partition_point(|r| r.start <= at);
+        while i > 0 {
+            i -= 1;
+            let r = &recs[i];
+            if r.end < at {
+                return None;
+            }
+            if want(r.op.kind) {
+                return Some(i);
+            }
+        }
+        None
     }
 
     fn span(&self, id: usize) -> (u64, u64) {
@@ -201,18 +322,25 @@ impl<'a> Graph<'a> {
         &self.preds[self.pred_start[id] as usize..self.pred_start[id + 1] as usize]
     }
 
+    fn lags_of(&self, id: usize) -> &[i64] {
+        &self.lags[self.pred_start[id] as usize..self.pred_start[id + 1] as usize]
+    }
+
     fn len(&self) -> usize {
-        self.ops + self.trace.transfers.len() + self.tail_device.len()
+        self.ops + self.trace.transfers.len() + self.colls + self.tail_device.len()
     }
 
     fn node(&self, id: usize) -> Node {
+        let transfers = self.trace.transfers.len();
         if id < self.ops {
             let d = self.offset.partition_point(|&o| o <= id) - 1;
             Node::Op(d as u32, (id - self.offset[d]) as u32)
-        } else if id < self.ops + self.trace.transfers.len() {
+        } else if id < self.ops + transfers {
             Node::Transfer(id - self.ops)
+        } else if id < self.ops + transfers + self.colls {
+            Node::Collective(id - self.ops - transfers)
         } else {
-            Node::Tail(self.tail_device[id - self.ops - self.trace.transfers.len()])
+            Node::Tail(self.tail_device[id - self.ops - transfers - self.colls])
         }
     }
 
@@ -224,6 +352,10 @@ impl<'a> Graph<'a> {
             }
             Node::Transfer(t) => {
                 let r = &self.trace.transfers[t];
+                (r.start.as_ns(), r.end.as_ns())
+            }
+            Node::Collective(c) => {
+                let r = &self.trace.collectives[c];
                 (r.start.as_ns(), r.end.as_ns())
             }
             Node::Tail(d) => {
@@ -246,9 +378,9 @@ impl<'a> Graph<'a> {
         while let Some(y) = ready.pop() {
             let (start, end) = self.spans[y];
             let latest_start = latest[y].saturating_sub(end - start);
-            for &x in self.preds_of(y) {
+            for (&x, &lag) in self.preds_of(y).iter().zip(self.lags_of(y)) {
                 let x = x as usize;
-                latest[x] = latest[x].min(latest_start);
+                latest[x] = latest[x].min((latest_start as i64 - lag).max(0) as u64);
                 out_degree[x] -= 1;
                 if out_degree[x] == 0 {
                     ready.push(x);
@@ -297,33 +429,40 @@ impl<'a> Graph<'a> {
         let mut path = vec![self.entry(x)];
         loop {
             let (start, _) = self.span(x);
-            let mut tight = None;
-            let mut latest_pred: Option<usize> = None;
+            let mut tight: Option<(usize, i64)> = None;
+            let mut latest_pred: Option<(usize, i64)> = None;
             // Prefer staying on the device (the op before), then the data.
             let same_device = match self.node(x) {
                 Node::Op(_, i) if i > 0 => Some(x - 1),
                 _ => None,
             };
-            for &p in self.preds_of(x) {
+            let avail = |p: usize, lag: i64| (self.span(p).1 as i64 + lag).max(0) as u64;
+            for (&p, &lag) in self.preds_of(x).iter().zip(self.lags_of(x)) {
                 let p = p as usize;
-                let end = self.span(p).1;
-                if end == start && slack(p) == 0 && (tight.is_none() || Some(p) == same_device) {
-                    tight = Some(p);
+                let at = avail(p, lag);
+                if at == start && slack(p) == 0 && (tight.is_none() || Some(p) == same_device) {
+                    tight = Some((p, lag));
                 }
-                if latest_pred.is_none_or(|q| end > self.span(q).1) {
-                    latest_pred = Some(p);
+                if latest_pred.is_none_or(|(q, l)| at > avail(q, l)) {
+                    latest_pred = Some((p, lag));
                 }
             }
             let next = tight.or(latest_pred);
-            let from = next.map_or(t0, |p| self.span(p).1);
+            let from = next.map_or(t0, |(p, lag)| avail(p, lag));
             if from < start {
                 // Nothing in the graph explains the wait: a collective.
                 let device = path.last().map_or(0, |e| e.device);
                 path.push(self.wait(device, from, start));
             }
             match next {
-                Some(p) => {
-                    path.push(self.entry(p));
+                Some((p, lag)) => {
+                    let mut e = self.entry(p);
+                    if lag < 0 {
+                        // Only the part of the op before the bucket was final.
+                        e.end_ns = from;
+                        e.end_ms = self.ms(from);
+                    }
+                    path.push(e);
                     x = p;
                 }
                 None => break,
@@ -350,6 +489,7 @@ impl<'a> Graph<'a> {
             op: None,
             to_device: None,
             link: None,
+            collective: None,
         }
     }
 
@@ -370,6 +510,7 @@ impl<'a> Graph<'a> {
                     op: Some(r.op),
                     to_device: None,
                     link: None,
+                    collective: None,
                 }
             }
             Node::Transfer(t) => {
@@ -386,6 +527,24 @@ impl<'a> Graph<'a> {
                     op: None,
                     to_device: Some(r.dst),
                     link: r.bottleneck,
+                    collective: None,
+                }
+            }
+            Node::Collective(c) => {
+                let r = &self.trace.collectives[c];
+                PathEntry {
+                    kind: "sync",
+                    device: r.group.first().map_or(0, |&w| w * self.shares as u32),
+                    micro_batch: Some(r.bucket),
+                    stage: Some(r.piece),
+                    start_ms: self.ms(start),
+                    end_ms: self.ms(end),
+                    start_ns: start,
+                    end_ns: end,
+                    op: None,
+                    to_device: None,
+                    link: None,
+                    collective: Some(c as u32),
                 }
             }
             Node::Tail(d) => self.wait(d, start, end),
@@ -428,13 +587,30 @@ pub fn render_text(trace: &Trace, path: &[PathEntry]) -> String {
                     baton_engine::format_ns(ns)
                 )
             }
-            _ => format!("sync on device {} ({})", e.device, baton_engine::format_ns(ns)),
+            _ => match e.collective.and_then(|c| trace.collectives.get(c as usize)) {
+                Some(c) => {
+                    let t = trace.tensor.max(1);
+                    let devices: Vec<String> = c.group.iter().map(|&w| (w * t).to_string()).collect();
+                    let what = if c.phase == baton_executor::Phase::Tied {
+                        c.phase.as_str().to_string()
+                    } else {
+                        format!("{} of piece {} bucket {}", c.phase.as_str(), c.piece, c.bucket)
+                    };
+                    format!(
+                        "{what} among devices {} ({}, {})",
+                        devices.join(", "),
+                        c.algorithm.name(),
+                        baton_engine::format_ns(ns)
+                    )
+                }
+                None => format!("sync on device {} ({})", e.device, baton_engine::format_ns(ns)),
+            },
         };
         parts.push(text);
         k += 1;
     }
     format!(
-        "critical path ({} in {} links, each op, send and wait; a device's run of ops on one line):\n  {}\n",
+        "critical path ({} in {} links, each op, send, collective and wait; a device's run of ops on one line):\n  {}\n",
         baton_engine::format_ns(total),
         path.len(),
         parts.join("\n  -> ")
