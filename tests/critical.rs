@@ -289,3 +289,47 @@ proptest! {
         }
     }
 }
+
+#[test]
+fn the_path_runs_through_the_gradient_collectives_as_worked_by_hand() {
+    // Two replicas of a one-stage pipeline, one micro-batch; two layers of
+    // forward 50 ns, backward 100 ns and 1000 parameters (2 bytes each on
+    // the wire), a bucket per layer, a 1 GB/s link each way, no latency, an
+    // update of 500 ns. F 0..100, B 100..300; the last layer's bucket is
+    // final half-way through B (its share of the backward), at 200. A ring
+    // all-reduce takes 2(p-1) alpha + 2 n (p-1)/p beta (Patarasuk and Yuan,
+    // JPDC 2009, costed as in Thakur, Rabenseifner and Gropp, IJHPCA 2005):
+    // p = 2, n = 2000 B, alpha = 0, beta = 1 ns/B: 2 x 1000 = 2000 ns. Bucket 0: 200..2200; bucket 1 (final at 300)
+    // waits for the group: 2200..4200; the update 4200..4700. The path: F,
+    // B up to the instant bucket 0 was final, both all-reduces, the update:
+    // 100 + 100 + 2000 + 2000 + 500 = 4700.
+    let text = "model:\n  layers:\n\
+        \x20   - { name: a, forward: 50ns, backward: 100ns, activation: 0B, params: 1000 }\n\
+        \x20   - { name: b, forward: 50ns, backward: 100ns, activation: 0B, params: 1000 }\n\
+        cluster:\n  devices: 2\n  link: { latency: 0ns, bandwidth: 1GB/s }\n\
+        pipeline:\n  stages: 1\n  micro_batches: 1\n  schedule: 1f1b\n\
+        parallel:\n  data: 2\n\
+        gradients:\n  sync: ring\n  bucket: 1B\n  bytes_per_param: 2\n\
+        training:\n  update: 500ns\n";
+    let s = parse(text, "c.yaml", "c", &[]).unwrap();
+    let step = baton::simulate(&s).unwrap().with_critical_path();
+    assert_eq!(step.report.step_time_ns, 4_700);
+    let path: Vec<(&str, Option<u32>, u64, u64)> =
+        step.report.critical_path.iter().map(|e| (e.kind, e.micro_batch, e.start_ns(), e.end_ns())).collect();
+    assert_eq!(
+        path,
+        vec![
+            ("forward", Some(0), 0, 100),
+            ("backward", Some(0), 100, 200),
+            ("sync", Some(0), 200, 2_200),
+            ("sync", Some(1), 2_200, 4_200),
+            ("update", Some(0), 4_200, 4_700),
+        ]
+    );
+    // Every op is on a critical path (both replicas' buckets are final
+    // together), so none has slack.
+    let (ops, _) = baton::report::critical::Graph::of(&step.trace).slack();
+    assert!(ops.iter().flatten().all(|&x| x == 0), "{ops:?}");
+    let text = baton::report::critical::render_text(&step.trace, &step.report.critical_path);
+    assert!(text.contains("-> all-reduce of piece 0 bucket 1 among devices 0, 1 (ring, 2.000 us)"), "{text}");
+}
