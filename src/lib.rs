@@ -1078,15 +1078,23 @@ pub(crate) fn play_plan(
     one_replica: bool,
     topo: &Topology,
 ) -> Result<SimulatedStep, SimulateError> {
+    play_plan_drawn(s, plan, tensor, one_replica, topo, 0)
+}
+
+/// [`play_plan`] with its variation drawn from the seed's stream pair
+/// `stream` (see `RunOptions::stream`).
+pub(crate) fn play_plan_drawn(
+    s: &Scenario,
+    plan: baton_schedule::Plan,
+    tensor: Option<&TensorConfig>,
+    one_replica: bool,
+    topo: &Topology,
+    stream: u64,
+) -> Result<SimulatedStep, SimulateError> {
     let sync = sync_config(s);
-    let trace = baton_executor::simulate_parallel(
-        plan,
-        &stage_costs(s),
-        topo.clone(),
-        run_options(s, one_replica),
-        sync.as_ref(),
-        tensor,
-    )?;
+    let mut options = run_options(s, one_replica);
+    options.stream = stream;
+    let trace = baton_executor::simulate_parallel(plan, &stage_costs(s), topo.clone(), options, sync.as_ref(), tensor)?;
     let report = baton_report::build(&trace, &labels(s));
     Ok(SimulatedStep { trace, report })
 }
@@ -1102,6 +1110,7 @@ pub(crate) fn run_options(s: &Scenario, one_replica: bool) -> RunOptions {
         slow_chance: s.cluster.slow_chance,
         slow_factor: s.cluster.slow_factor,
         link_jitter: s.cluster.link_jitter,
+        stream: 0,
         step_updates: None,
     }
 }

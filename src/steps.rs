@@ -2,8 +2,8 @@
 //! barrier between them (`pipeline.flush: true`) or without
 //! (`pipeline.flush: false`, weights as `pipeline.weight_versions` says).
 //!
-//! Flushed steps are simulated one by one (step `k` with seed `seed + k`)
-//! and joined: the barrier means nothing of step `k + 1` can start before
+//! Flushed steps are simulated one by one (step `k` drawing its variation
+//! from the seed's stream pair `k`) and joined: the barrier means nothing of step `k + 1` can start before
 //! the end of step `k`, so each step runs on an idle cluster. Steps without
 //! a flush are one plan of `steps * m` micro-batches (micro-batch `i` of
 //! step `k` is `k * m + i`): one step's order repeated on each device
@@ -21,7 +21,7 @@ use baton_schedule::{ScheduleError, ScheduleKind, Shape};
 use rayon::prelude::*;
 
 use crate::{
-    labels, play_one, play_plan, run_options, schedule_choice, stage_costs, sync_config, tensor_config,
+    labels, play_one, play_plan_drawn, run_options, schedule_choice, stage_costs, sync_config, tensor_config,
     tensor_config_fast, SimulateError, SimulatedStep,
 };
 
@@ -39,29 +39,29 @@ pub(crate) fn play(
     }
 }
 
-/// `s` as its step `k` alone.
-fn step_scenario(s: &Scenario, k: u32) -> Scenario {
+/// `s` as one step alone.
+fn step_scenario(s: &Scenario) -> Scenario {
     let mut one = s.clone();
     one.pipeline.steps = 1;
     one.pipeline.flush = true;
-    one.seed = s.seed.wrapping_add(k as u64);
     one
 }
 
 fn flushed(s: &Scenario, fast: bool, one_replica: bool, topo: &Topology) -> Result<SimulatedStep, SimulateError> {
     let n = s.pipeline.steps.max(1);
-    let mut first = play_one(&step_scenario(s, 0), fast, one_replica, topo)?;
+    let mut first = play_one(&step_scenario(s), fast, one_replica, topo)?;
     // zb-auto keeps the order it chose for the first step.
     let plan = first.trace.plan.clone();
     let rest: Vec<Result<SimulatedStep, SimulateError>> = (1..n)
         .into_par_iter()
         .map(|k| {
-            let mut x = step_scenario(s, k);
+            let mut x = step_scenario(s);
             if x.pipeline.schedule == ScheduleKind::ZbAuto && !plan.shape.split_backward {
                 x.pipeline.schedule = ScheduleKind::OneFOneB;
             }
             let tensor = if fast { tensor_config_fast(&x) } else { tensor_config(&x) };
-            play_plan(&x, plan.clone(), tensor.as_ref(), one_replica, topo)
+            // Step k draws from the seed's stream pair k.
+            play_plan_drawn(&x, plan.clone(), tensor.as_ref(), one_replica, topo, k as u64)
         })
         .collect();
     let choice = first.report.schedule_choice.take();

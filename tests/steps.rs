@@ -68,18 +68,23 @@ fn flushed_steps_are_single_steps_plus_their_updates() {
 
 #[test]
 fn flushed_steps_draw_their_own_variability() {
-    // Step k is drawn with seed + k: the same draw as a single step with
-    // that seed.
+    // Step 0 draws as a single step with the same seed; every later step
+    // from streams of its own, so the steps differ, and differ from the
+    // --trials draws (seed + k), which a repeated seed would make equal.
     let mut s = pipeline(4, 8, "1f1b", "  steps: 4\n");
     s.cluster.jitter = 0.2;
     let st = steps_of(&s);
-    for k in 0..4u64 {
-        let mut one = s.clone();
-        one.pipeline.steps = 1;
-        one.seed = s.seed + k;
-        assert_eq!(st.step_ns[k as usize], baton::simulate(&one).unwrap().report.step_time_ns);
+    let mut one = s.clone();
+    one.pipeline.steps = 1;
+    assert_eq!(st.step_ns[0], baton::simulate(&one).unwrap().report.step_time_ns);
+    let trials = baton::trials::step_times(&one, 4).unwrap();
+    assert_eq!(trials[0], st.step_ns[0]);
+    for k in 1..4 {
+        assert_ne!(st.step_ns[k], trials[k], "step {k}");
     }
     assert!(st.step_ns.windows(2).any(|w| w[0] != w[1]), "{:?}", st.step_ns);
+    // The same seed gives the same steps.
+    assert_eq!(steps_of(&s).step_ns, st.step_ns);
 }
 
 #[test]
@@ -277,7 +282,8 @@ mod random {
     proptest! {
         #![proptest_config(ProptestConfig { cases: 64, ..ProptestConfig::default() })]
 
-        /// Flushed steps are the single steps (seed + k) one after another;
+        /// Flushed steps are single steps one after another (each its own
+        /// draw, the first the single run's);
         /// without a flush every op of a step runs after its device's
         /// previous ops; either way each step's time adds up to the run and
         /// the critical path runs through the joined graph to its end.
@@ -300,12 +306,15 @@ mod random {
             prop_assert!(path.abs_diff(run.report.step_time_ns) <= run.report.critical_path.len() as u64, "{} vs {}", path, run.report.step_time_ns);
             let m = s.pipeline.micro_batches;
             if s.pipeline.flush {
+                let mut one = s.clone();
+                one.pipeline.steps = 1;
+                let single = baton::simulate(&one).unwrap().report.step_time_ns;
                 let mut start = 0u64;
                 for k in 0..s.pipeline.steps {
-                    let mut one = s.clone();
-                    one.pipeline.steps = 1;
-                    one.seed = s.seed + k as u64;
-                    prop_assert_eq!(st.step_ns[k as usize], baton::simulate(&one).unwrap().report.step_time_ns);
+                    // Step 0 is the single step; without jitter every step is.
+                    if k == 0 || s.cluster.jitter == 0.0 {
+                        prop_assert_eq!(st.step_ns[k as usize], single);
+                    }
                     for r in run.trace.ops.iter().flatten().filter(|r| !r.op.kind.is_device_work() && r.op.micro_batch / m == k) {
                         prop_assert!(r.start.as_ns() >= start);
                     }

@@ -873,9 +873,14 @@ pub struct RunOptions {
     pub slow_factor: f64,
     /// Each transfer's latency and the time its bytes take are scaled by a
     /// factor drawn uniformly from `[1 - link_jitter, 1 + link_jitter]`, as
-    /// transfers start, from stream 1 of the seeded generator (so compute
-    /// draws stay as they are); 0: none.
+    /// transfers start, from a stream of the seeded generator of their own
+    /// (so compute draws stay as they are); 0: none.
     pub link_jitter: f64,
+    /// Which of the seed's streams the draws come from: compute factors
+    /// from stream `2 * stream`, link factors from `2 * stream + 1` (0: the
+    /// seed's first two; flushed step `k` of several uses `k`, so steps
+    /// and `--trials` draws never share their numbers).
+    pub stream: u64,
     /// Several steps in one plan: where each worker updates its weights.
     /// Only without gradient synchronisation (whose own update ends a
     /// single step).
@@ -986,7 +991,7 @@ pub fn simulate_parallel(
     let varied = options.jitter > 0.0 || options.slow_chance > 0.0 || !options.stragglers.is_empty();
     let jitter = varied.then(|| {
         use rand::RngExt;
-        let mut rng = baton_engine::seeded_rng(options.seed);
+        let mut rng = baton_engine::seeded_stream(options.seed, 2 * options.stream);
         let (j, chance) = (options.jitter, options.slow_chance);
         // A worker's group runs at its slowest rank's pace.
         let slowdown = |w: usize| {
@@ -1053,7 +1058,7 @@ pub fn simulate_parallel(
             pending_sends: vec![0; workers],
             due: Vec::new(),
             link_jitter: (options.link_jitter > 0.0)
-                .then(|| (options.link_jitter, baton_engine::seeded_stream(options.seed, 1))),
+                .then(|| (options.link_jitter, baton_engine::seeded_stream(options.seed, 2 * options.stream + 1))),
         },
         jitter,
         work: vec![VecDeque::new(); workers],
