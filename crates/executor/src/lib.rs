@@ -545,7 +545,7 @@ struct Transfers {
     /// Scratch list of transfers whose last byte has left.
     due: Vec<TransferId>,
     /// With link jitter: its amount and the generator its factors come
-    /// from (the seed's stream 1), drawn as transfers start.
+    /// from (the seed's stream `2 * stream + 1`), drawn as transfers start.
     link_jitter: Option<(f64, baton_engine::SimRng)>,
 }
 
