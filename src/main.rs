@@ -464,6 +464,9 @@ fn main() -> ExitCode {
         Command::Split(a) => {
             outputs(&[("--apply", "scenario with the proposed split", &a.apply), json(&a.json, "result")]).and_then(
                 |mut o| {
+                    // A scenario is the user's own work: it reaches the disk
+                    // before it replaces the old one.
+                    o.durable("--apply");
                     let r = SplitRequest {
                         scenario: &a.scenario,
                         sets: &a.sets,

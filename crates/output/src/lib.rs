@@ -13,11 +13,11 @@
 //! * anything else that exists (a device such as `/dev/null`, a FIFO) cannot
 //!   be replaced and is written in place, after every regular file is ready.
 //!
-//! Commit order: every regular file is staged and flushed to disk first; then
-//! standard output and the in-place destinations are written; only when all
-//! of that succeeded are the staged files renamed onto their destinations. A
-//! failure at any point before the renames leaves every regular destination
-//! as it was.
+//! Commit order: every regular file is staged first (and, when asked for
+//! with [`Outputs::durable`], flushed to the disk); then standard output and
+//! the in-place destinations are written; only when all of that succeeded
+//! are the staged files renamed onto their destinations. A failure at any
+//! point before the renames leaves every regular destination as it was.
 //!
 //! It deliberately knows nothing about what the bytes are: reports, charts
 //! and tables are made elsewhere.
@@ -175,6 +175,8 @@ struct Entry {
     shown: PathBuf,
     destination: Destination,
     sink: Sink,
+    /// Flushed to the disk before the rename ([`Outputs::durable`]).
+    durable: bool,
 }
 
 /// One output that was written, for the "written to" lines.
@@ -227,9 +229,23 @@ impl Outputs {
                 shown: path.to_path_buf(),
                 destination,
                 sink: Sink::Empty,
+                durable: false,
             });
         }
         Ok(Outputs { entries })
+    }
+
+    /// Asks for `option`'s file to reach the disk before it replaces its
+    /// destination (one `fsync` of the staged file): for an output that
+    /// overwrites something the user keeps, such as a scenario rewritten
+    /// in place, so that a crash right after the rename cannot leave it
+    /// empty. Other outputs are only renamed into place: a reader still
+    /// never sees half a file, and a failed command still leaves the old
+    /// one, without a flush to the disk per file.
+    pub fn durable(&mut self, option: &str) {
+        for e in self.entries.iter_mut().filter(|e| e.option == option) {
+            e.durable = true;
+        }
     }
 
     /// Whether any output goes to standard output (a command then prints its
@@ -291,7 +307,7 @@ impl Outputs {
     /// staged files replace their destinations. Outputs never filled are
     /// left alone. Returns what was written, in request order.
     pub fn commit(self) -> Result<Vec<Written>, OutputError> {
-        for e in &self.entries {
+        for e in self.entries.iter().filter(|e| e.durable) {
             if let Sink::Staged(tmp) = &e.sink {
                 tmp.as_file().sync_all().map_err(|err| write_error(&e.shown, err))?;
             }

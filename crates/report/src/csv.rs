@@ -55,8 +55,13 @@ pub fn write<W: io::Write>(trace: &Trace, out: W) -> Result<(), ReportError> {
         rows.push((t.start.as_ns(), t.end.as_ns(), t.src, SYNC, c.bucket, c.piece, None));
     }
     rows.sort_unstable();
-    let mut w = ::csv::Writer::from_writer(out);
-    w.write_record(["device", "kind", "micro_batch", "stage", "start_ns", "end_ns", "slack_ns"])?;
+    // Every field is a number or a kind name (letters only): nothing needs
+    // quoting, so each line is formatted straight into a buffer written out
+    // in large pieces.
+    let mut out = out;
+    let mut buf: Vec<u8> = Vec::with_capacity(1 << 16);
+    buf.extend_from_slice(b"device,kind,micro_batch,stage,start_ns,end_ns,slack_ns\n");
+    let mut num = itoa::Buffer::new();
     for (start, end, device, kind, mb, stage, slack) in rows {
         let kind = match kind {
             SEND => "send",
@@ -64,8 +69,24 @@ pub fn write<W: io::Write>(trace: &Trace, out: W) -> Result<(), ReportError> {
             TENSOR => "tensor",
             k => OpKind::ALL[k as usize].as_str(),
         };
-        w.serialize((device, kind, mb, stage, start, end, slack))?;
+        buf.extend_from_slice(num.format(device).as_bytes());
+        buf.push(b',');
+        buf.extend_from_slice(kind.as_bytes());
+        for x in [mb as u64, stage as u64, start, end] {
+            buf.push(b',');
+            buf.extend_from_slice(num.format(x).as_bytes());
+        }
+        buf.push(b',');
+        if let Some(x) = slack {
+            buf.extend_from_slice(num.format(x).as_bytes());
+        }
+        buf.push(b'\n');
+        if buf.len() >= 1 << 16 {
+            out.write_all(&buf)?;
+            buf.clear();
+        }
     }
-    w.flush()?;
+    out.write_all(&buf)?;
+    out.flush()?;
     Ok(())
 }
