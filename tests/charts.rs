@@ -237,3 +237,47 @@ fn sweep_charts_mark_memory_stops_and_undrawn_values() {
     assert!(t.iter().any(|l| l == "chunks=2") && t.iter().any(|l| l == "chunks=1"));
     assert!(t.iter().any(|l| l.starts_with("each point is the best over pipeline.chunks")));
 }
+
+#[test]
+fn a_dense_chart_draws_runs_too_narrow_to_tell_apart_as_one() {
+    // 16 stages, 1,024 micro-batches: 32,768 ops and as many transfers on a
+    // chart of at most 1,800 px. Runs of ops narrower than a pixel become
+    // one bar whose tooltip counts them; every op is in exactly one bar.
+    let set = ["--set", "pipeline.micro_batches=1024"];
+    let svg = chart(&[
+        "run",
+        "benches/scenarios/p32-interleaved.yaml",
+        "--set",
+        "pipeline.stages=16",
+        "--set",
+        "cluster.devices=16",
+        "--set",
+        "pipeline.chunks=1",
+        "--set",
+        "pipeline.schedule=1f1b",
+        "--set",
+        "model.layers.0.repeat=16",
+        set[0],
+        set[1],
+        "--svg",
+        "-",
+    ]);
+    assert!(svg.len() < 2_000_000, "{} bytes", svg.len());
+    assert!(svg.contains("too narrow to draw one by one at this width"));
+    let ops_group = &svg[svg.find("<g id=\"ops\"").unwrap()..];
+    let ops_group = &ops_group[..ops_group.find("\n</g>").unwrap()];
+    let mut drawn = 0usize;
+    for t in ops_group.split("<g><title>").skip(1) {
+        let t = &t[..t.find("</title>").unwrap()];
+        drawn += match t.split_once(" ops on device ") {
+            Some((n, _)) => n.parse::<usize>().unwrap(),
+            None => 1,
+        };
+    }
+    assert_eq!(drawn, 16 * 2 * 1024);
+    assert!(texts(&svg).iter().any(|t| t.starts_with("Runs of ops and of transfers too narrow")));
+    // The demo is not dense: one bar per op, as always.
+    let demo = chart(&["run", DEMO, "--svg", "-"]);
+    assert!(!demo.contains("too narrow to draw one by one"));
+    assert_eq!(op_spans(&demo).len(), 4 * 2 * 8);
+}

@@ -148,6 +148,13 @@ const COMM_H: f64 = 16.0;
 const COMM_ROW: f64 = 7.0;
 /// The narrowest send or receive mark, so a short transfer stays visible.
 const MIN_MARK_PX: f64 = 3.0;
+/// A chart with more ops and transfer marks than this per pixel of its
+/// plotting width is dense: there, runs of bars (and of marks) too narrow to
+/// tell apart are drawn as one, with one tooltip, and the idle gaps inside
+/// such a run are left out. Below it every element is drawn on its own.
+const DENSE_PER_PX: f64 = 4.0;
+/// In a dense chart, a bar or mark narrower than this (px) joins a run.
+const MERGE_PX: f64 = 1.0;
 const LABEL_FONT_PX: f64 = 10.0;
 /// Average width of a character, as a fraction of the font size (sans-serif).
 const EM_PER_CHAR: f64 = 0.56;
@@ -414,6 +421,7 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
     // Captions: one per run, then notes, wrapped.
     let caption_chars = ((wf - 2.0 * margin) / (TEXT_PX * EM_PER_CHAR)) as usize;
     let mut captions: Vec<String> = Vec::new();
+    let dense = total as f64 > DENSE_PER_PX * (wf - label_w as f64 - 2.0 * margin).max(1.0);
     for run in runs {
         let report = run.report;
         let chunks_note = if report.chunks > 1 {
@@ -460,6 +468,10 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         let note =
             format!("Showing {} to {} from the step's start (--window).", format_ns(w.start_ns), format_ns(w.end_ns));
         captions.extend(wrap(&note, caption_chars, 2));
+    }
+    if dense {
+        let note = "Runs of ops and of transfers too narrow to tell apart at this width are drawn as one bar each (its tooltip says what it holds); --width or --window shows each.";
+        captions.extend(wrap(note, caption_chars, 2));
     }
     if runs.len() > 1 {
         let shortest = runs.iter().map(|r| r.report.step_time_ns).min().unwrap_or(0).max(1);
@@ -582,12 +594,36 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
             );
         }
     }
+    // Each shown device's ops as runs to draw: one op each, or in a dense
+    // chart runs of ops too narrow to tell apart.
+    let groups: Vec<Vec<Vec<Group>>> = runs
+        .iter()
+        .enumerate()
+        .map(|(r, run)| {
+            let t0 = run.trace.start().as_ns();
+            run.trace
+                .ops
+                .iter()
+                .enumerate()
+                .map(|(d, recs)| {
+                    if layouts[r].of_device[d].is_none() {
+                        return Vec::new();
+                    }
+                    let spans = recs.iter().map(|rec| span(rec.start.as_ns() - t0, rec.end.as_ns() - t0));
+                    group_runs(spans, dense)
+                })
+                .collect()
+        })
+        .collect();
     body.push_str("</g>\n<g id=\"idle\">\n");
     for (r, run) in runs.iter().enumerate() {
         let t0 = run.trace.start().as_ns();
         for g in &run.report.gaps {
             let Some((x0, x1)) = span(g.start_ns.saturating_sub(t0), g.end_ns.saturating_sub(t0)) else { continue };
             let Some(lane) = layouts[r].of_device.get(g.device as usize).copied().flatten() else { continue };
+            if dense && inside_a_run(&groups[r][g.device as usize], x0, x1) {
+                continue;
+            }
             let lane = first_lane[r] + lane;
             let _ = writeln!(
                 body,
@@ -616,7 +652,29 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
         for (d, recs) in trace.ops.iter().enumerate() {
             let Some(lane) = layouts[r].of_device[d] else { continue };
             let y = lane_y(first_lane[r] + lane);
-            for rec in recs {
+            for g in &groups[r][d] {
+                if g.first == g.last {
+                    continue;
+                }
+                let members = &recs[g.first..=g.last];
+                let merged = merged_ops(members, p, chunks);
+                let _ = writeln!(
+                    body,
+                    "<g><title>{}{} ops on device {d}, {} to {} ({}): too narrow to draw one by one at this width</title><rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"/></g>",
+                    if run.label.is_empty() { String::new() } else { format!("{}: ", xml_escape(&run.label)) },
+                    members.len(),
+                    format_ns(members[0].start.as_ns()),
+                    format_ns(members[members.len() - 1].end.as_ns()),
+                    merged.1,
+                    g.x0,
+                    y,
+                    (g.x1 - g.x0).max(0.5),
+                    lane_h,
+                    hex(merged.0)
+                );
+            }
+            let singles = groups[r][d].iter().filter(|g| g.first == g.last).map(|g| &recs[g.first]);
+            for rec in singles {
                 let Some((x0, x1)) = span(rec.start.as_ns() - t0, rec.end.as_ns() - t0) else { continue };
                 let w = (x1 - x0).max(0.5);
                 let rgb = bar_rgb(rec.op.kind, rec.op.stage / p, chunks);
@@ -660,58 +718,31 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
             let t0 = trace.start().as_ns();
             let prefix = if run.label.is_empty() { String::new() } else { format!("{}: ", xml_escape(&run.label)) };
             let lane = |d: u32| layouts[r].of_device.get(d as usize).copied().flatten().map(|l| first_lane[r] + l);
-            // A transfer's two marks: bytes leaving under the sender, data in
-            // flight under the receiver.
-            let mut marks = |what: String,
-                             (src, dst): (u32, u32),
-                             start: u64,
-                             sent: u64,
-                             end: u64,
-                             colours: [Rgb; 2],
-                             sides: [&str; 2]| {
-                let send_y = lane(src).map(|l| lane_y(l) + lane_h + 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
-                let recv_y =
-                    lane(dst).map(|l| lane_y(l) + lane_h + 2.0 + comm_h / 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
-                for (side, y, until, colour) in
-                    [(sides[0], send_y, sent, colours[0]), (sides[1], recv_y, end, colours[1])]
-                {
-                    let Some(y) = y else { continue };
-                    let Some((x0, x1)) = span(start - t0, until - t0) else { continue };
-                    let _ = writeln!(
-                        body,
-                        "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{side}: {what}</title></rect>",
-                        x0,
-                        y,
-                        (x1 - x0).max(MIN_MARK_PX),
-                        comm_row,
-                        hex(colour)
-                    );
-                }
-            };
             let held = |b: Option<u32>| {
                 b.and_then(|l| trace.link_names.get(l as usize))
                     .map(|n| format!("; held back most on {}", xml_escape(n)))
                     .unwrap_or_default()
             };
-            for t in &trace.transfers {
-                let what = format!(
-                    "{} of micro-batch {} from device {} to device {}, {} bytes: sending {} to {}, arrived {}{}",
-                    t.flow.as_str(),
-                    t.micro_batch,
-                    t.src,
-                    t.dst,
-                    t.bytes,
-                    format_ns(t.start.as_ns()),
-                    format_ns(t.sent.as_ns()),
-                    format_ns(t.end.as_ns()),
-                    held(t.bottleneck)
-                );
-                let (start, sent, end) = (t.start.as_ns(), t.sent.as_ns(), t.end.as_ns());
-                marks(what, (t.src, t.dst), start, sent, end, [SEND, RECEIVE], ["send", "receive"]);
-            }
-            for t in &trace.sync_transfers {
+            // What transfer `k` carries (pipeline transfers first, then the
+            // collectives'), for its tooltip.
+            let what = |k: usize| -> String {
+                if let Some(t) = trace.transfers.get(k) {
+                    return format!(
+                        "{} of micro-batch {} from device {} to device {}, {} bytes: sending {} to {}, arrived {}{}",
+                        t.flow.as_str(),
+                        t.micro_batch,
+                        t.src,
+                        t.dst,
+                        t.bytes,
+                        format_ns(t.start.as_ns()),
+                        format_ns(t.sent.as_ns()),
+                        format_ns(t.end.as_ns()),
+                        held(t.bottleneck)
+                    );
+                }
+                let t = &trace.sync_transfers[k - trace.transfers.len()];
                 let c = &trace.collectives[t.collective as usize];
-                let what = format!(
+                format!(
                     "{} {} of piece {} bucket {}, round {}: device {} to device {}, {} bytes: sending {} to {}, arrived {}{}",
                     c.algorithm.name(),
                     c.phase.as_str(),
@@ -725,9 +756,95 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
                     format_ns(t.sent.as_ns()),
                     format_ns(t.end.as_ns()),
                     held(t.bottleneck)
+                )
+            };
+            // A transfer's two marks: bytes leaving under the sender, data in
+            // flight under the receiver; (transfer, side, y, x0, x1).
+            let mut marks: Vec<(usize, usize, f64, f64, f64)> = Vec::new();
+            let ends = trace
+                .transfers
+                .iter()
+                .map(|t| (t.src, t.dst, t.start.as_ns(), t.sent.as_ns(), t.end.as_ns(), 0usize))
+                .chain(
+                    trace
+                        .sync_transfers
+                        .iter()
+                        .map(|t| (t.src, t.dst, t.start.as_ns(), t.sent.as_ns(), t.end.as_ns(), 2)),
                 );
-                let (start, sent, end) = (t.start.as_ns(), t.sent.as_ns(), t.end.as_ns());
-                marks(what, (t.src, t.dst), start, sent, end, [SYNC_SEND, SYNC_RECEIVE], ["sync send", "sync receive"]);
+            for (k, (src, dst, start, sent, end, sides)) in ends.enumerate() {
+                let send_y = lane(src).map(|l| lane_y(l) + lane_h + 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
+                let recv_y =
+                    lane(dst).map(|l| lane_y(l) + lane_h + 2.0 + comm_h / 2.0 + (comm_h / 2.0 - comm_row) / 2.0);
+                for (side, y, until) in [(sides, send_y, sent), (sides + 1, recv_y, end)] {
+                    let Some(y) = y else { continue };
+                    let Some((x0, x1)) = span(start - t0, until - t0) else { continue };
+                    marks.push((k, side, y, x0, x1));
+                }
+            }
+            const SIDES: [(&str, Rgb); 4] =
+                [("send", SEND), ("receive", RECEIVE), ("sync send", SYNC_SEND), ("sync receive", SYNC_RECEIVE)];
+            if dense {
+                // Each row's marks in time order; a run of narrow marks of one
+                // kind that touch as drawn becomes one.
+                marks
+                    .sort_by(|a, b| (a.2, a.1, a.3).partial_cmp(&(b.2, b.1, b.3)).unwrap_or(std::cmp::Ordering::Equal));
+                let mut i = 0;
+                while i < marks.len() {
+                    let (k, side, y, x0, x1) = marks[i];
+                    let mut j = i + 1;
+                    // Where the run's marks, as drawn, end.
+                    let mut right = x1.max(x0 + MIN_MARK_PX);
+                    if x1 - x0 < MERGE_PX {
+                        while j < marks.len() {
+                            let m = marks[j];
+                            if m.2 != y || m.1 != side || m.4 - m.3 >= MERGE_PX || m.3 > right {
+                                break;
+                            }
+                            right = right.max(m.4).max(m.3 + MIN_MARK_PX);
+                            j += 1;
+                        }
+                    }
+                    let (name, colour) = SIDES[side];
+                    if j == i + 1 {
+                        let _ = writeln!(
+                            body,
+                            "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{name}: {}</title></rect>",
+                            x0,
+                            y,
+                            (x1 - x0).max(MIN_MARK_PX),
+                            comm_row,
+                            hex(colour),
+                            what(k)
+                        );
+                    } else {
+                        let _ = writeln!(
+                            body,
+                            "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{} {name} marks, from {}: too narrow to draw one by one at this width</title></rect>",
+                            x0,
+                            y,
+                            right - x0,
+                            comm_row,
+                            hex(colour),
+                            j - i,
+                            what(k)
+                        );
+                    }
+                    i = j;
+                }
+            } else {
+                for (k, side, y, x0, x1) in marks {
+                    let (name, colour) = SIDES[side];
+                    let _ = writeln!(
+                        body,
+                        "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{name}: {}</title></rect>",
+                        x0,
+                        y,
+                        (x1 - x0).max(MIN_MARK_PX),
+                        comm_row,
+                        hex(colour),
+                        what(k)
+                    );
+                }
             }
         }
         body.push_str("</g>\n");
@@ -788,6 +905,83 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
     };
     svg.insert_str(pos, &body);
     Ok(svg)
+}
+
+/// A run of a lane's ops drawn as one bar: ops `first..=last` over pixels
+/// `x0..x1` (one op when `first == last`).
+#[derive(Clone, Copy, Debug, PartialEq)]
+struct Group {
+    x0: f64,
+    x1: f64,
+    first: usize,
+    last: usize,
+}
+
+/// The runs to draw of ops with these pixel spans (`None`: outside the
+/// window): every op on its own, or when `dense` consecutive ops narrower
+/// than [`MERGE_PX`] with less than that between them as one run.
+fn group_runs(spans: impl Iterator<Item = Option<(f64, f64)>>, dense: bool) -> Vec<Group> {
+    let mut out: Vec<Group> = Vec::new();
+    let mut open = false;
+    for (i, sp) in spans.enumerate() {
+        let Some((x0, x1)) = sp else {
+            open = false;
+            continue;
+        };
+        let narrow = dense && x1 - x0 < MERGE_PX;
+        if narrow && open {
+            if let Some(g) = out.last_mut() {
+                if x0 - g.x1 < MERGE_PX {
+                    g.x1 = g.x1.max(x1);
+                    g.last = i;
+                    continue;
+                }
+            }
+        }
+        out.push(Group { x0, x1, first: i, last: i });
+        open = narrow;
+    }
+    out
+}
+
+/// Whether `x0..x1` lies within a run of several ops (runs in order).
+fn inside_a_run(groups: &[Group], x0: f64, x1: f64) -> bool {
+    let k = groups.partition_point(|g| g.x0 <= x0);
+    k > 0 && {
+        let g = &groups[k - 1];
+        g.last > g.first && x1 <= g.x1
+    }
+}
+
+/// A merged run's colour (the kind and chunk that take most of its time)
+/// and what it holds, e.g. `12 forward, 12 backward`.
+fn merged_ops(members: &[baton_executor::OpRecord], p: u32, chunks: u32) -> (Rgb, String) {
+    let mut by: Vec<((OpKind, u32), u64, usize)> = Vec::new();
+    for m in members {
+        let key = (m.op.kind, m.op.stage / p);
+        let ns = m.end.as_ns() - m.start.as_ns();
+        match by.iter_mut().find(|(k, _, _)| *k == key) {
+            Some(e) => {
+                e.1 += ns;
+                e.2 += 1;
+            }
+            None => by.push((key, ns, 1)),
+        }
+    }
+    let top = by.iter().fold(None::<&((OpKind, u32), u64, usize)>, |best, e| match best {
+        Some(b) if b.1 >= e.1 => Some(b),
+        _ => Some(e),
+    });
+    let rgb = top.map_or(bar_rgb(OpKind::Forward, 0, chunks), |e| bar_rgb(e.0 .0, e.0 .1, chunks));
+    let mut counts: Vec<(OpKind, usize)> = Vec::new();
+    for ((kind, _), _, n) in &by {
+        match counts.iter_mut().find(|(k, _)| k == kind) {
+            Some(c) => c.1 += n,
+            None => counts.push((*kind, *n)),
+        }
+    }
+    let text: Vec<String> = counts.iter().map(|(k, n)| format!("{n} {}", k.as_str())).collect();
+    (rgb, text.join(", "))
 }
 
 #[cfg(test)]
