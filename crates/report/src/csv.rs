@@ -54,7 +54,10 @@ pub fn write<W: io::Write>(trace: &Trace, out: W) -> Result<(), ReportError> {
         let c = &trace.collectives[t.collective as usize];
         rows.push((t.start.as_ns(), t.end.as_ns(), t.src, SYNC, c.bucket, c.piece, None));
     }
-    rows.sort_unstable();
+    // Each device's ops and each kind of transfer come in time order: a
+    // stable sort merges those runs (equal rows are identical, so the order
+    // is the same as any sort's).
+    rows.sort();
     // Every field is a number or a kind name (letters only): nothing needs
     // quoting, so each line is formatted straight into a buffer written out
     // in large pieces.
