@@ -1111,6 +1111,9 @@ pub(crate) fn run_options(s: &Scenario, one_replica: bool) -> RunOptions {
         slow_factor: s.cluster.slow_factor,
         link_jitter: s.cluster.link_jitter,
         stream: 0,
+        // Every plan a scenario runs was built by the schedule crate or
+        // checked by `order::parse` when the scenario was read.
+        plan_checked: true,
         step_updates: None,
     }
 }

@@ -149,6 +149,8 @@ fn unflushed(s: &Scenario, fast: bool, topo: &Topology) -> Result<SimulatedStep,
         let tensor = if fast { tensor_config_fast(&x) } else { tensor_config(&x) };
         let mut options = run_options(&x, false);
         options.step_updates = Some(StepUpdates { after, duration: update });
+        // A plan of several steps is checked again before it runs.
+        options.plan_checked = false;
         let kind = plan.kind;
         let mut trace =
             baton_executor::simulate_parallel(plan, &stage_costs(&x), topo.clone(), options, None, tensor.as_ref())?;

@@ -881,6 +881,10 @@ pub struct RunOptions {
     /// seed's first two; flushed step `k` of several uses `k`, so steps
     /// and `--trials` draws never share their numbers).
     pub stream: u64,
+    /// The caller vouches that the plan is well formed (made by
+    /// `baton_schedule::build`, or read by `order::parse`, which checks
+    /// it): [`validate`] is not run again. Leave `false` for any other plan.
+    pub plan_checked: bool,
     /// Several steps in one plan: where each worker updates its weights.
     /// Only without gradient synchronisation (whose own update ends a
     /// single step).
@@ -943,7 +947,9 @@ pub fn simulate_parallel(
     sync: Option<&SyncConfig>,
     tensor: Option<&TensorConfig>,
 ) -> Result<Trace, ExecError> {
-    validate(&plan)?;
+    if !options.plan_checked {
+        validate(&plan)?;
+    }
     let t = tensor.map_or(1, |c| c.ranks.max(1)) as usize;
     if t > 4096 {
         return Err(ExecError::Sync(format!("{t} devices per tensor group is more than 4096")));
