@@ -270,12 +270,90 @@ pub enum Fired<E, K> {
     Deadline(K),
 }
 
+/// Movable deadlines: a few (the common case: a model keeps one deadline per
+/// source, such as its link network) in a short list searched in place;
+/// past [`Movable::FEW`] keys, a priority queue.
+enum Movable<K: Hash + Eq> {
+    Few(Vec<(K, (SimTime, u64))>),
+    Many(PriorityQueue<K, Reverse<(SimTime, u64)>, BuildHasherDefault<KeyHasher>>),
+}
+
+impl<K: Hash + Eq> Movable<K> {
+    const FEW: usize = 8;
+
+    fn len(&self) -> usize {
+        match self {
+            Movable::Few(v) => v.len(),
+            Movable::Many(q) => q.len(),
+        }
+    }
+
+    fn set(&mut self, key: K, due: (SimTime, u64)) {
+        match self {
+            Movable::Few(v) => {
+                if let Some(e) = v.iter_mut().find(|e| e.0 == key) {
+                    e.1 = due;
+                    return;
+                }
+                if v.len() < Self::FEW {
+                    v.push((key, due));
+                    return;
+                }
+                let mut q = PriorityQueue::with_default_hasher();
+                for (k, d) in v.drain(..) {
+                    q.push(k, Reverse(d));
+                }
+                q.push(key, Reverse(due));
+                *self = Movable::Many(q);
+            }
+            Movable::Many(q) => {
+                q.push(key, Reverse(due));
+            }
+        }
+    }
+
+    fn remove(&mut self, key: &K) -> Option<(SimTime, u64)> {
+        match self {
+            Movable::Few(v) => {
+                let i = v.iter().position(|e| e.0 == *key)?;
+                Some(v.swap_remove(i).1)
+            }
+            Movable::Many(q) => q.remove(key).map(|(_, Reverse(d))| d),
+        }
+    }
+
+    fn get(&self, key: &K) -> Option<(SimTime, u64)> {
+        match self {
+            Movable::Few(v) => v.iter().find(|e| e.0 == *key).map(|e| e.1),
+            Movable::Many(q) => q.get_priority(key).map(|Reverse(d)| *d),
+        }
+    }
+
+    /// The earliest `(time, sequence)`.
+    fn peek(&self) -> Option<(SimTime, u64)> {
+        match self {
+            Movable::Few(v) => v.iter().map(|e| e.1).min(),
+            Movable::Many(q) => q.peek().map(|(_, Reverse(d))| *d),
+        }
+    }
+
+    fn pop(&mut self) -> Option<(K, (SimTime, u64))> {
+        match self {
+            Movable::Few(v) => {
+                let i = (0..v.len()).min_by_key(|&i| v[i].1)?;
+                Some(v.swap_remove(i))
+            }
+            Movable::Many(q) => q.pop().map(|(k, Reverse(d))| (k, d)),
+        }
+    }
+}
+
 /// The pending-event set: fixed events plus movable deadlines, one order.
 pub struct Scheduler<E, K: Hash + Eq> {
     now: SimTime,
     next_seq: u64,
     fixed: BinaryHeap<Reverse<Fixed<E>>>,
-    movable: PriorityQueue<K, Reverse<(SimTime, u64)>, BuildHasherDefault<KeyHasher>>,
+    movable: Movable<K>,
     delivered: u64,
 }
 
@@ -292,7 +370,7 @@ impl<E, K: Hash + Eq> Scheduler<E, K> {
             now: SimTime::ZERO,
             next_seq: 0,
             fixed: BinaryHeap::new(),
-            movable: PriorityQueue::with_default_hasher(),
+            movable: Movable::Few(Vec::new()),
             delivered: 0,
         }
     }
@@ -343,23 +421,23 @@ impl<E, K: Hash + Eq> Scheduler<E, K> {
     pub fn set_deadline(&mut self, key: K, at: SimTime) {
         let at = at.max(self.now);
         let seq = self.take_seq();
-        self.movable.push(key, Reverse((at, seq)));
+        self.movable.set(key, (at, seq));
     }
 
     /// Removes the deadline of `key`, if any; returns when it was due.
     pub fn cancel_deadline(&mut self, key: &K) -> Option<SimTime> {
-        self.movable.remove(key).map(|(_, Reverse((t, _)))| t)
+        self.movable.remove(key).map(|(t, _)| t)
     }
 
     /// When the deadline of `key` is due, if it is pending.
     pub fn deadline_of(&self, key: &K) -> Option<SimTime> {
-        self.movable.get_priority(key).map(|Reverse((t, _))| *t)
+        self.movable.get(key).map(|(t, _)| t)
     }
 
     /// When the earliest pending item is due, if any.
     pub fn peek_time(&self) -> Option<SimTime> {
         let fixed = self.fixed.peek().map(|Reverse(f)| f.at());
-        let movable = self.movable.peek().map(|(_, Reverse((t, _)))| *t);
+        let movable = self.movable.peek().map(|(t, _)| t);
         match (fixed, movable) {
             (Some(a), Some(b)) => Some(a.min(b)),
             (a, b) => a.or(b),
@@ -369,7 +447,7 @@ impl<E, K: Hash + Eq> Scheduler<E, K> {
     /// Pops the earliest pending item by `(time, sequence)` and advances `now`.
     pub fn pop(&mut self) -> Option<(SimTime, Fired<E, K>)> {
         let fixed_key = self.fixed.peek().map(|Reverse(f)| (f.at(), f.seq()));
-        let movable_key = self.movable.peek().map(|(_, Reverse(p))| *p);
+        let movable_key = self.movable.peek();
         let take_fixed = match (fixed_key, movable_key) {
             (None, None) => return None,
             (Some(_), None) => true,
@@ -380,7 +458,7 @@ impl<E, K: Hash + Eq> Scheduler<E, K> {
             let Reverse(f) = self.fixed.pop()?;
             (f.at(), Fired::Event(f.event))
         } else {
-            let (k, Reverse((at, _))) = self.movable.pop()?;
+            let (k, (at, _)) = self.movable.pop()?;
             (at, Fired::Deadline(k))
         };
         debug_assert!(at >= self.now, "time went backwards");
@@ -457,6 +535,36 @@ mod tests {
         s.schedule(SimTime(2), ());
         assert_eq!(s.pop(), Some((SimTime(10), Fired::Event(()))));
         assert_eq!(s.pop(), None);
+    }
+
+    #[test]
+    fn many_deadlines_keep_the_same_order_as_a_plain_list() {
+        // Past a few keys the deadlines move to a priority queue; the order
+        // of (time, sequence) must not change. A plain list is the model.
+        let mut s: Scheduler<u32, u32> = Scheduler::new();
+        let mut model: Vec<(u32, u64, u64)> = Vec::new(); // (key, time, seq)
+        let mut seq = 0u64;
+        for round in 0..3u64 {
+            for k in 0..20u32 {
+                let at = (k as u64 * 7 + round * 13) % 23;
+                s.set_deadline(k, SimTime(at));
+                model.retain(|e| e.0 != k);
+                model.push((k, at, seq));
+                seq += 1;
+                if k % 5 == 4 {
+                    assert_eq!(
+                        s.cancel_deadline(&(k - 1)).map(|t| t.0),
+                        model.iter().find(|e| e.0 == k - 1).map(|e| e.1)
+                    );
+                    model.retain(|e| e.0 != k - 1);
+                }
+            }
+        }
+        model.sort_by_key(|e| (e.1, e.2));
+        let want: Vec<(SimTime, Fired<u32, u32>)> =
+            model.iter().map(|e| (SimTime(e.1), Fired::Deadline(e.0))).collect();
+        let got: Vec<_> = std::iter::from_fn(|| s.pop()).collect();
+        assert_eq!(got, want);
     }
 
     #[test]
