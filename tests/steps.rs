@@ -25,6 +25,15 @@ fn pipeline(p: u32, m: u32, schedule: &str, extra: &str) -> Scenario {
     parse(&text, "s.yaml", "s", &[]).unwrap()
 }
 
+/// Device `d`'s updates: (step, start ns, end ns).
+fn updates_on(trace: &baton::executor::Trace, d: usize) -> Vec<(u32, u64, u64)> {
+    trace.ops[d]
+        .iter()
+        .filter(|r| r.op.kind == baton::schedule::OpKind::Update)
+        .map(|r| (r.op.micro_batch, r.start.as_ns(), r.end.as_ns()))
+        .collect()
+}
+
 fn steps_of(s: &Scenario) -> baton::report::Steps {
     baton::simulate(s).unwrap().report.steps.expect("a steps section")
 }
@@ -56,12 +65,7 @@ fn flushed_steps_are_single_steps_plus_their_updates() {
     one.pipeline.steps = 1;
     assert_eq!(baton::simulate(&one).unwrap().report.step_time_ns, 38_000);
     // Each step's update is numbered by its step.
-    let updates: Vec<(u32, u64, u64)> = run.trace.ops[0]
-        .iter()
-        .filter(|r| r.op.kind == baton::schedule::OpKind::Update)
-        .map(|r| (r.op.micro_batch, r.start.as_ns(), r.end.as_ns()))
-        .collect();
-    assert_eq!(updates, vec![(0, 33_000, 38_000), (1, 71_000, 76_000), (2, 109_000, 114_000)]);
+    assert_eq!(updates_on(&run.trace, 0), vec![(0, 33_000, 38_000), (1, 71_000, 76_000), (2, 109_000, 114_000)]);
     assert_eq!(run.report.micro_batches, 8);
     assert_eq!(run.report.ops, 3 * (2 * 8 * 4 + 4));
 }
@@ -114,12 +118,7 @@ fn without_a_flush_one_f_one_b_runs_on_as_one_long_pipeline() {
     s.training.update_ns = 5_000;
     let run = baton::simulate(&s).unwrap();
     assert_eq!(run.report.steps.unwrap().step_ns, vec![38_000; 3]);
-    let updates: Vec<(u32, u64, u64)> = run.trace.ops[0]
-        .iter()
-        .filter(|r| r.op.kind == baton::schedule::OpKind::Update)
-        .map(|r| (r.op.micro_batch, r.start.as_ns(), r.end.as_ns()))
-        .collect();
-    assert_eq!(updates, vec![(0, 33_000, 38_000), (1, 71_000, 76_000), (2, 109_000, 114_000)]);
+    assert_eq!(updates_on(&run.trace, 0), vec![(0, 33_000, 38_000), (1, 71_000, 76_000), (2, 109_000, 114_000)]);
 }
 
 #[test]

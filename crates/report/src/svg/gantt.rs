@@ -784,67 +784,47 @@ pub fn render(runs: &[Run<'_>], options: &GanttOptions) -> Result<String, Report
             const SIDES: [(&str, Rgb); 4] =
                 [("send", SEND), ("receive", RECEIVE), ("sync send", SYNC_SEND), ("sync receive", SYNC_RECEIVE)];
             if dense {
-                // Each row's marks in time order; a run of narrow marks of one
-                // kind that touch as drawn becomes one.
+                // Each row's marks in time order, so that a run of narrow
+                // marks of one kind that touch as drawn can become one.
                 marks
                     .sort_by(|a, b| (a.2, a.1, a.3).partial_cmp(&(b.2, b.1, b.3)).unwrap_or(std::cmp::Ordering::Equal));
-                let mut i = 0;
-                while i < marks.len() {
-                    let (k, side, y, x0, x1) = marks[i];
-                    let mut j = i + 1;
-                    // Where the run's marks, as drawn, end.
-                    let mut right = x1.max(x0 + MIN_MARK_PX);
-                    if x1 - x0 < MERGE_PX {
-                        while j < marks.len() {
-                            let m = marks[j];
-                            if m.2 != y || m.1 != side || m.4 - m.3 >= MERGE_PX || m.3 > right {
-                                break;
-                            }
-                            right = right.max(m.4).max(m.3 + MIN_MARK_PX);
-                            j += 1;
+            }
+            let mut i = 0;
+            while i < marks.len() {
+                let (k, side, y, x0, x1) = marks[i];
+                let mut j = i + 1;
+                // Where the run's marks, as drawn, end.
+                let mut right = x1.max(x0 + MIN_MARK_PX);
+                if dense && x1 - x0 < MERGE_PX {
+                    while j < marks.len() {
+                        let m = marks[j];
+                        if m.2 != y || m.1 != side || m.4 - m.3 >= MERGE_PX || m.3 > right {
+                            break;
                         }
+                        right = right.max(m.4).max(m.3 + MIN_MARK_PX);
+                        j += 1;
                     }
-                    let (name, colour) = SIDES[side];
-                    if j == i + 1 {
-                        let _ = writeln!(
-                            body,
-                            "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{name}: {}</title></rect>",
-                            x0,
-                            y,
-                            (x1 - x0).max(MIN_MARK_PX),
-                            comm_row,
-                            hex(colour),
-                            what(k)
-                        );
-                    } else {
-                        let _ = writeln!(
-                            body,
-                            "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{} {name} marks, from {}: too narrow to draw one by one at this width</title></rect>",
-                            x0,
-                            y,
-                            right - x0,
-                            comm_row,
-                            hex(colour),
-                            j - i,
-                            what(k)
-                        );
-                    }
-                    i = j;
                 }
-            } else {
-                for (k, side, y, x0, x1) in marks {
-                    let (name, colour) = SIDES[side];
-                    let _ = writeln!(
-                        body,
-                        "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{prefix}{name}: {}</title></rect>",
-                        x0,
-                        y,
-                        (x1 - x0).max(MIN_MARK_PX),
-                        comm_row,
-                        hex(colour),
+                let (name, colour) = SIDES[side];
+                let tip = if j == i + 1 {
+                    format!("{prefix}{name}: {}", what(k))
+                } else {
+                    format!(
+                        "{prefix}{} {name} marks, from {}: too narrow to draw one by one at this width",
+                        j - i,
                         what(k)
-                    );
-                }
+                    )
+                };
+                let _ = writeln!(
+                    body,
+                    "<rect x=\"{:.2}\" y=\"{:.2}\" width=\"{:.2}\" height=\"{:.2}\" fill=\"{}\"><title>{tip}</title></rect>",
+                    x0,
+                    y,
+                    right - x0,
+                    comm_row,
+                    hex(colour),
+                );
+                i = j;
             }
         }
         body.push_str("</g>\n");
