@@ -3,8 +3,9 @@
 //! (`pipeline.flush: false`, weights as `pipeline.weight_versions` says).
 //!
 //! Flushed steps are simulated one by one (step `k` drawing its variation
-//! from the seed's stream pair `k`) and joined: the barrier means nothing of step `k + 1` can start before
-//! the end of step `k`, so each step runs on an idle cluster. Steps without
+//! from the seed's stream pair `k`) and joined: the barrier means nothing
+//! of step `k + 1` can start before the end of step `k`, so each step runs
+//! on an idle cluster. Steps without
 //! a flush are one plan of `steps * m` micro-batches (micro-batch `i` of
 //! step `k` is `k * m + i`): one step's order repeated on each device
 //! (`one`), or the schedule built for all of them so the next step's
